@@ -29,6 +29,8 @@ from .errors import InputError
 
 __all__ = [
     "grid_coordinates",
+    "Polyhedron",
+    "Ellipsoid",
     "polyhedron",
     "cube",
     "octahedron",
@@ -43,6 +45,10 @@ __all__ = [
     "complex_object",
     "far_field",
     "strain_from_gradient",
+    "rotation_matrix",
+    "SimulatedScan",
+    "detector_frame_grid",
+    "simulate_scan",
 ]
 
 
@@ -80,9 +86,90 @@ def grid_coordinates(shape, voxel_size=1.0):
     return np.stack(np.meshgrid(*axes, indexing="ij"))
 
 
+class Polyhedron:
+    """Convex polyhedron {r : n_i·(r − c) ≤ d_i for every face i}, evaluable
+    at any points (a shape the simulator can sample on any grid).
+
+    Parameters
+    ----------
+    normals : (F, 3) array
+        Outward face normals in the sample frame (normalised here).
+    distances : (F,) array
+        Distance of each face plane from the centre, Å.
+    center : 3 floats
+        Centre, Å.
+    """
+
+    def __init__(self, normals, distances, center=(0.0, 0.0, 0.0)):
+        normals = np.atleast_2d(np.asarray(normals, dtype=float))
+        distances = np.atleast_1d(np.asarray(distances, dtype=float))
+        if normals.ndim != 2 or normals.shape[1] != 3 or len(distances) != len(normals):
+            raise InputError("polyhedron: expected normals of shape (F, 3) and F distances")
+        if np.any(distances <= 0):
+            raise InputError("polyhedron: face distances must be positive (Å)")
+        self.normals = normals / np.linalg.norm(normals, axis=1, keepdims=True)
+        self.distances = distances
+        self.center = np.asarray(center, dtype=float).reshape(3)
+
+    def rotated(self, rotation):
+        """The same polyhedron with its normals rotated by ``rotation`` (3×3)."""
+        R = np.asarray(rotation, float)
+        return Polyhedron(self.normals @ R.T, self.distances, R @ self.center)
+
+    def signed_distance(self, coords):
+        """max_i (n_i·(r − c) − d_i): negative inside, Å (exact near faces)."""
+        coords = np.asarray(coords, float)
+        r = coords - self.center.reshape((3,) + (1,) * (coords.ndim - 1))
+        out = np.full(coords.shape[1:], -np.inf)
+        for n, d in zip(self.normals, self.distances):
+            np.maximum(out, np.tensordot(n, r, axes=1) - d, out=out)
+        return out
+
+    def density(self, coords, edge_width=0.0):
+        """Electron density in [0, 1] at the points: 1 inside, 0 outside, a
+        linear ramp of ``edge_width`` Å across the faces (to limit aliasing)."""
+        sd = self.signed_distance(coords)
+        if edge_width <= 0:
+            return (sd <= 0).astype(np.float32)
+        return np.clip(0.5 - sd / edge_width, 0.0, 1.0).astype(np.float32)
+
+    def inscribed_extent(self):
+        """Largest face distance, Å (an upper bound of the half-size)."""
+        return float(np.max(self.distances))
+
+
+class Ellipsoid:
+    """Ellipsoid with semi-axes (a, b, c) Å along the (rotated) sample axes."""
+
+    def __init__(self, semi_axes, center=(0.0, 0.0, 0.0), rotation=None):
+        self.semi_axes = _as3(semi_axes, "semi_axes")
+        self.center = np.asarray(center, float).reshape(3)
+        self.rotation = np.eye(3) if rotation is None else np.asarray(rotation, float)
+
+    def rotated(self, rotation):
+        R = np.asarray(rotation, float)
+        return Ellipsoid(self.semi_axes, R @ self.center, R @ self.rotation)
+
+    def signed_distance(self, coords):
+        coords = np.asarray(coords, float)
+        r = coords - self.center.reshape((3,) + (1,) * (coords.ndim - 1))
+        r = np.tensordot(self.rotation.T, r, axes=1)
+        rho = np.sqrt(np.sum((r / self.semi_axes.reshape((3,) + (1,) * (coords.ndim - 1))) ** 2, axis=0))
+        return (rho - 1.0) * float(np.min(self.semi_axes))
+
+    def density(self, coords, edge_width=0.0):
+        sd = self.signed_distance(coords)
+        if edge_width <= 0:
+            return (sd <= 0).astype(np.float32)
+        return np.clip(0.5 - sd / edge_width, 0.0, 1.0).astype(np.float32)
+
+    def inscribed_extent(self):
+        return float(np.max(self.semi_axes))
+
+
 def polyhedron(shape, voxel_size, normals, distances, center=(0.0, 0.0, 0.0),
                rotation=None, supersample=1):
-    """Convex polyhedron {r : n_i·(r − c) ≤ d_i for every face i}.
+    """Convex polyhedron {r : n_i·(r − c) ≤ d_i for every face i} on a grid.
 
     Parameters
     ----------
@@ -104,35 +191,22 @@ def polyhedron(shape, voxel_size, normals, distances, center=(0.0, 0.0, 0.0),
     -------
     ndarray of bool (supersample == 1) or float32
     """
-    normals = np.atleast_2d(np.asarray(normals, dtype=float))
-    distances = np.atleast_1d(np.asarray(distances, dtype=float))
-    if normals.shape[1] != 3 or len(distances) != len(normals):
-        raise InputError("polyhedron: expected normals of shape (F, 3) and F distances")
-    if np.any(distances <= 0):
-        raise InputError("polyhedron: face distances must be positive (Å)")
-    normals = normals / np.linalg.norm(normals, axis=1, keepdims=True)
+    poly = Polyhedron(normals, distances, (0.0, 0.0, 0.0))
     if rotation is not None:
-        normals = normals @ np.asarray(rotation, dtype=float).T
+        poly = poly.rotated(rotation)
+    poly.center = np.asarray(center, float).reshape(3)
     vs = _as3(voxel_size, "voxel_size")
-    c = np.asarray(center, dtype=float)
     s = int(supersample)
+    base = grid_coordinates(shape, vs)
     if s <= 1:
-        r = grid_coordinates(shape, vs) - c[:, None, None, None]
-        inside = np.ones(shape, dtype=bool)
-        for n, d in zip(normals, distances):
-            inside &= np.tensordot(n, r, axes=1) <= d
-        return inside
+        return poly.signed_distance(base) <= 0
     frac = np.zeros(shape, dtype=np.float64)
     offsets = (np.arange(s) + 0.5) / s - 0.5
-    base = grid_coordinates(shape, vs) - c[:, None, None, None]
     for ox in offsets:
         for oy in offsets:
             for oz in offsets:
                 r = base + (np.array([ox, oy, oz]) * vs)[:, None, None, None]
-                inside = np.ones(shape, dtype=bool)
-                for n, d in zip(normals, distances):
-                    inside &= np.tensordot(n, r, axes=1) <= d
-                frac += inside
+                frac += poly.signed_distance(r) <= 0
     return (frac / s**3).astype(np.float32)
 
 
@@ -491,3 +565,154 @@ def far_field(obj):
     index n//2 (forward FFT of DESIGN.md): fftshift(fftn(ifftshift(obj)))."""
     obj = np.asarray(obj)
     return np.fft.fftshift(np.fft.fftn(np.fft.ifftshift(obj))).astype(np.complex64)
+
+
+# --------------------------------------------------------------------------
+# rocking scans
+# --------------------------------------------------------------------------
+
+@dataclass
+class SimulatedScan:
+    """A simulated rocking scan and what made it.
+
+    Attributes
+    ----------
+    frames : (F, R, C) uint32 ndarray
+        Detector counts, frames × rows × columns (the whole detector).
+    angles : dict name → degrees (array over frames for the rocked circle,
+        floats for the others)
+    rocking_circle : str
+    mask : (R, C) bool ndarray, True on detector gaps (hot pixels are *not*
+        flagged: finding them is the preparation stage's job)
+    hkl : tuple
+    g_sample : (3,) Å⁻¹
+    peak_pixel : (frame, row, column) of the Bragg condition
+    linear_map : (3, 3) q steps per (frame, row, column) index, Å⁻¹, lab frame
+        at the peak angles
+    hot_pixels : (K, 2) int array of the injected hot pixels (row, column)
+    """
+
+    frames: np.ndarray
+    angles: dict
+    rocking_circle: str
+    mask: np.ndarray
+    hkl: tuple
+    g_sample: np.ndarray
+    peak_pixel: tuple
+    linear_map: np.ndarray
+    hot_pixels: np.ndarray
+
+
+def detector_frame_grid(linear_map, shape):
+    """Real-space basis conjugate to a detector-frame q map (METHODS.md).
+
+    With q ≈ M·n for index offsets n = (frame, row, column), the DFT of an
+    N₀×N₁×N₂ array has real-space voxel positions r = T·m (m integer index
+    offsets from n//2) with T = 2π M⁻ᵀ diag(1/N₀, 1/N₁, 1/N₂). Returns T
+    (3×3, Å per index step; columns along the array's axes)."""
+    M = np.asarray(linear_map, float)
+    N = np.asarray(shape, float)
+    return 2 * np.pi * np.linalg.inv(M).T / N[None, :]
+
+
+def simulate_scan(instrument, crystal, hkl, shape, field_, *, rocking_circle, n_frames,
+                  step_deg, free_circles, fixed_angles=None, peak_pixel=None, window=(128, 128),
+                  peak_counts=1e5, background=0.5, hot_pixels=4, coherence_sigma=None,
+                  supersample=2, seed=0, bragg_angles=None):
+    """Simulate the rocking scan of one reflection of a crystal.
+
+    The crystal (``shape`` with ``density(coords)`` and the displacement
+    ``field_``, both in the sample frame, Å) is sampled on the real-space grid
+    conjugate to the detector's local linear q map at the peak
+    (:func:`detector_frame_grid`), ``supersample`` times finer per axis to
+    keep the faceted edges from aliasing, and its far field is the forward
+    FFT (DESIGN.md), so A(n) = Σ ρ(r) exp(−i q(n)·r) with q(n) = M·n. The
+    window of ``window`` pixels around the peak pixel and ``n_frames`` frames
+    holds the signal; the rest of the detector sees background only.
+
+    Parameters
+    ----------
+    instrument : braggstrain.instrument.Diffractometer
+    crystal : braggstrain.crystal.Crystal (with its orientation)
+    hkl : 3 ints
+    shape : object with ``density(coords, edge_width)`` (e.g. :class:`Polyhedron`)
+    field_ : displacement field (``displacement(coords)``), or None
+    rocking_circle : name of the sample circle that is stepped
+    n_frames : number of frames; the Bragg condition is at frame n_frames//2
+    step_deg : rocking step, degrees
+    free_circles : circles solved to reach the Bragg condition
+    fixed_angles : the other circles' angles, degrees
+    peak_pixel : (row, column) where the Bragg peak falls (default: the
+        direct-beam pixel)
+    window : (rows, columns) of the simulated signal
+    peak_counts : expected counts in the brightest voxel
+    background : mean flat background, counts per pixel per frame
+    hot_pixels : number of hot pixels injected (very high counts in every frame)
+    coherence_sigma : optional (3,) Gaussian width (voxels) of a partial-
+        coherence blur applied to the intensity
+    seed : random seed (Poisson noise, hot pixels)
+    bragg_angles : optional pre-solved angles dict (skips the solver)
+
+    Returns
+    -------
+    SimulatedScan
+    """
+    from scipy import ndimage
+
+    rng = np.random.default_rng(seed)
+    refl = crystal.reflection(hkl, instrument.energy_kev)
+    g = refl.g_sample
+    det = instrument.detector
+    pk = det.direct_beam if peak_pixel is None else peak_pixel
+    pk = (int(round(pk[0])), int(round(pk[1])))
+    if bragg_angles is None:
+        bragg_angles = instrument.solve_bragg(g, free=free_circles, fixed=fixed_angles or {}, pixel=pk)
+    M, _, Rp = instrument.linear_map(bragg_angles, rocking_circle, step_deg, pk)
+    win = (int(n_frames), int(window[0]), int(window[1]))
+    if pk[0] - win[1] // 2 < 0 or pk[0] - win[1] // 2 + win[1] > det.shape[0] or \
+            pk[1] - win[2] // 2 < 0 or pk[1] - win[2] // 2 + win[2] > det.shape[1]:
+        raise InputError(f"simulate: a window of {window} pixels around the peak pixel {pk} does not fit "
+                         f"on the detector of shape {det.shape}")
+    s = int(supersample)
+    big = tuple(n * s for n in win)
+    T = detector_frame_grid(M, big)  # lab frame at the peak, Å per index
+    axes = [np.arange(n) - n // 2 for n in big]
+    # positions, lab frame at the peak → sample frame
+    Ts = Rp.T @ T
+    coords = np.empty((3,) + big)
+    mi = np.meshgrid(*axes, indexing="ij", sparse=True)
+    for i in range(3):
+        coords[i] = Ts[i, 0] * mi[0] + Ts[i, 1] * mi[1] + Ts[i, 2] * mi[2]
+    edge = float(np.mean(np.linalg.norm(Ts, axis=0)))
+    rho = shape.density(coords, edge_width=edge).astype(np.complex64)
+    if field_ is not None:
+        inside = rho.real > 0
+        u = field_.displacement(coords[:, inside])
+        rho[inside] *= np.exp(-1j * (g @ u)).astype(np.complex64)
+    del coords
+    amp = np.fft.fftshift(np.fft.fftn(np.fft.ifftshift(rho)))
+    del rho
+    sl = tuple(slice(n * s // 2 - n // 2, n * s // 2 - n // 2 + n) for n in win)
+    inten = np.abs(amp[sl]) ** 2
+    del amp
+    if coherence_sigma is not None:
+        inten = ndimage.gaussian_filter(inten, coherence_sigma, mode="constant")
+    inten *= float(peak_counts) / inten.max()
+    frames = np.full((win[0],) + tuple(det.shape), float(background))
+    r0, c0 = pk[0] - win[1] // 2, pk[1] - win[2] // 2
+    frames[:, r0:r0 + win[1], c0:c0 + win[2]] += inten
+    counts = rng.poisson(frames).astype(np.uint32)
+    gaps = det.gap_mask()
+    counts[:, gaps] = 0
+    hp = np.empty((0, 2), int)
+    if hot_pixels:
+        rows = rng.integers(r0, r0 + win[1], size=int(hot_pixels))
+        cols = rng.integers(c0, c0 + win[2], size=int(hot_pixels))
+        hp = np.column_stack([rows, cols])
+        for r, c in hp:
+            counts[:, r, c] = rng.integers(int(peak_counts) * 5, int(peak_counts) * 20, size=win[0])
+    angles = {k: float(v) for k, v in bragg_angles.items()}
+    angles[rocking_circle] = bragg_angles[rocking_circle] + step_deg * (np.arange(win[0]) - win[0] // 2)
+    return SimulatedScan(frames=counts, angles=angles, rocking_circle=rocking_circle, mask=gaps,
+                         hkl=tuple(int(v) for v in hkl), g_sample=g, peak_pixel=(win[0] // 2, pk[0], pk[1]),
+                         linear_map=M, hot_pixels=hp)
