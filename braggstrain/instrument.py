@@ -339,17 +339,23 @@ class Diffractometer:
 
         rng = np.random.default_rng(seed)
         best = None
+        found = 0
         lo, hi = np.radians(lims[:, 0]), np.radians(lims[:, 1])
         for i in range(int(starts)):
             x0 = rng.uniform(lo, hi) if i else np.clip(np.zeros(len(free)), lo, hi)
+            x0 = np.clip(x0, lo + 1e-9, hi - 1e-9)
             try:
                 r = least_squares(resid, x0, bounds=(lo, hi), xtol=1e-15, ftol=1e-15, gtol=1e-15)
             except ValueError:
                 continue
             cost = np.linalg.norm(r.fun)
+            # prefer exact solutions, then the one with the smallest circle travel
             score = (cost > 1e-9, np.sum(np.abs(r.x)))
             if best is None or score < best[0]:
                 best = (score, r)
+            found += cost <= 1e-9
+            if found >= 6:
+                break
         if best is None or np.linalg.norm(best[1].fun) > 1e-9:
             res = np.inf if best is None else np.linalg.norm(best[1].fun)
             raise GeometryError(f"no angles of circles {free} within their limits put G = {np.round(g, 5)} Å⁻¹ "

@@ -94,6 +94,9 @@ class atomic_path:
 
     def __exit__(self, exc_type, exc, tb):
         if exc_type is None:
+            umask = os.umask(0)
+            os.umask(umask)
+            os.chmod(self.tmp, 0o666 & ~umask)
             os.replace(self.tmp, self.path)
         else:
             try:
