@@ -1,0 +1,42 @@
+"""Phase retrieval for Bragg coherent diffraction imaging.
+
+Entry points: :func:`reconstruct` (one random start) and :func:`ensemble`
+(many starts, ranked, aligned and averaged).  The plan of stages is plain
+data (:class:`Stage`, :func:`plan_from_config`, :func:`default_plan`) that a
+pipeline TOML file can hold.  See docs/phasing.md.
+"""
+
+from .fft import FFTBackend, default_threads, export_wisdom, import_wisdom, load_wisdom, save_wisdom
+from .plan import Stage, default_plan, options_from_config, plan_from_config, plan_to_config
+from .coherence import CoherenceSettings
+from .engine import History, Metrics, OversamplingWarning, Reconstruction, reconstruct
+from .ensemble import EnsembleResult, RunSummary, ensemble
+from .metrics import PRTF, align, complex_error, prtf, twin
+
+__all__ = [
+    "reconstruct",
+    "ensemble",
+    "Reconstruction",
+    "EnsembleResult",
+    "RunSummary",
+    "History",
+    "Metrics",
+    "Stage",
+    "default_plan",
+    "plan_from_config",
+    "plan_to_config",
+    "options_from_config",
+    "CoherenceSettings",
+    "OversamplingWarning",
+    "PRTF",
+    "prtf",
+    "align",
+    "complex_error",
+    "twin",
+    "FFTBackend",
+    "default_threads",
+    "export_wisdom",
+    "import_wisdom",
+    "save_wisdom",
+    "load_wisdom",
+]

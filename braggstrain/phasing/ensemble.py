@@ -1,0 +1,242 @@
+"""Many random starts: run, rank, align and average.
+
+Each run is reproducible from (seed, run index) alone: the random start is
+drawn from ``SeedSequence(seed, spawn_key=(0, run))``, the free voxels from
+``SeedSequence(seed, spawn_key=(1,))`` (the same for all runs, so their free
+log-likelihoods compare), every run uses the same thread count, and the
+parent's FFTW wisdom is shipped to the workers so that every process uses the
+very same FFT plan.  A run on a Dask cluster, a resumed run or the default
+local pool therefore give bit-identical objects.
+"""
+
+from __future__ import annotations
+
+import multiprocessing
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from ..errors import InputError, PhasingError
+from . import projections as _k
+from .engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
+from .fft import FFTBackend, default_threads, export_wisdom, import_wisdom
+from .metrics import PRTF, align, prtf, twin
+
+__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS"]
+
+# metric name -> True when larger is better
+RANKING_METRICS = {
+    "free_nll": False,
+    "nll": False,
+    "free_amplitude_error": False,
+    "amplitude_error": False,
+    "sharpness": True,
+}
+
+
+@dataclass
+class RunSummary:
+    """Outcome of one run of an ensemble."""
+
+    run: int
+    seed: int
+    status: str
+    message: str
+    metrics: Metrics
+    iterations: int
+    elapsed: float
+
+
+@dataclass
+class EnsembleResult:
+    """Average of the best runs of an ensemble (plain arrays, picklable).
+
+    Attributes
+    ----------
+    obj : complex64 (n0, n1, n2)
+        Mean of the kept runs after alignment to the best one (same layout as
+        :attr:`Reconstruction.obj`).
+    support : bool
+        Voxels inside the support of at least half the kept runs (aligned).
+    runs : list of RunSummary
+        Every run, in run order, with its status and metrics.
+    ranking : list of int
+        Run indices of the successful runs, best first.
+    kept : list of int
+        The runs averaged (the first ``keep`` of ``ranking``).
+    alignment : list of dict
+        Per kept run: ``shift`` (voxels), ``twin``, ``phase`` (rad) and
+        ``overlap`` with the best run.
+    prtf : PRTF
+        Phase-retrieval transfer function of the kept runs.
+    best : Reconstruction
+        The best single run.
+    metric : str
+        Ranking metric.
+    seed : int
+    ramp : ndarray (3,)
+        Phase ramp removed (see :attr:`Reconstruction.ramp`).
+    """
+
+    obj: np.ndarray
+    support: np.ndarray
+    runs: list
+    ranking: list
+    kept: list
+    alignment: list
+    prtf: PRTF
+    best: Reconstruction
+    metric: str
+    seed: int
+    ramp: np.ndarray = field(default_factory=lambda: np.zeros(3))
+
+
+def _task(args):
+    """Worker entry point (module level so it pickles): one run of an ensemble."""
+    data, stages, opts, run, wisdom = args
+    import_wisdom(wisdom)
+    return _run(data, stages, opts, run)
+
+
+class _Serial:
+    def map(self, fn, iterable):
+        return map(fn, iterable)
+
+
+def _collect(executor, results):
+    """Materialise the results of ``executor.map``; gather futures (Dask) if needed."""
+    results = list(results)
+    if results and not isinstance(results[0], Reconstruction) and hasattr(results[0], "result"):
+        if hasattr(executor, "gather"):
+            results = list(executor.gather(results))
+        else:
+            results = [f.result() for f in results]
+    return results
+
+
+def _align_support(sup, info):
+    s = twin(sup.astype(np.complex64)).real > 0.5 if info["twin"] else sup
+    return np.roll(s, tuple(int(round(v)) for v in info["shift"]), axis=(0, 1, 2))
+
+
+def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, executor=None,
+             progress=False, metric="free_nll", threads=1, coherence=False, background=None,
+             free_fraction=0.03, fft_backend="auto", initial_threshold=0.04, remove_ramp=True,
+             center=True) -> EnsembleResult:
+    """Independent random starts, ranked, aligned and averaged.
+
+    Parameters
+    ----------
+    intensity, mask, plan, coherence, background, free_fraction, fft_backend,
+    initial_threshold, remove_ramp, center
+        As for :func:`~braggstrain.phasing.reconstruct`.
+    runs : int
+        Number of random starts.
+    keep : int
+        Number of best runs averaged (at most the number of successful runs).
+    seed : int, optional
+        Base seed; run ``i`` is reproducible from (seed, i), and run 0 is the
+        run :func:`reconstruct` makes with the same seed and threads.
+    executor : object with ``map(fn, iterable)``, optional
+        Where the runs execute.  Default: a local process pool (spawned
+        workers, one per core, at most ``runs``).  A ``concurrent.futures``
+        pool or a ``dask.distributed.Client`` (whose ``map`` returns futures,
+        gathered here) work as well.
+    progress : bool
+        A tqdm bar over finished runs.
+    metric : str
+        Ranking metric, one of ``free_nll`` (default), ``nll``,
+        ``free_amplitude_error``, ``amplitude_error`` (lower is better) or
+        ``sharpness`` (higher is better).
+    threads : int
+        Threads per run (default 1: the runs themselves are the parallel
+        unit).  Keep it fixed to reproduce results across executors.
+
+    Returns
+    -------
+    EnsembleResult
+
+    Raises
+    ------
+    PhasingError
+        When no run succeeds (the message lists the statuses).
+    """
+    if isinstance(runs, bool) or not isinstance(runs, (int, np.integer)) or runs < 1:
+        raise InputError(f"runs: expected a positive integer, got {runs!r}")
+    if isinstance(keep, bool) or not isinstance(keep, (int, np.integer)) or not 1 <= keep <= runs:
+        raise InputError(f"keep: expected an integer in 1..runs ({runs}), got {keep!r}")
+    if metric not in RANKING_METRICS:
+        raise InputError(f"metric: expected one of {sorted(RANKING_METRICS)}, got {metric!r}")
+    if executor is not None and not callable(getattr(executor, "map", None)):
+        raise InputError(f"executor: expected an object with a map(fn, iterable) method, "
+                         f"got {type(executor).__name__}")
+    stages = _stages(plan)
+    seed = _as_seed(seed)
+    opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, False)
+    data = _prepare(intensity, mask, None, seed, free_fraction, initial_threshold, opts.threads)
+    if metric.startswith("free") and data.free_idx.size == 0:
+        raise InputError(f"metric: '{metric}' needs held-out voxels, but free_fraction is 0")
+
+    # Plan the FFT once here so that every worker imports the same wisdom,
+    # and load (or compile) the kernels before workers start.
+    FFTBackend(data.shape, threads=opts.threads, backend=opts.fft_backend)
+    wisdom = export_wisdom()
+    _k.warm_up()
+    tasks = [(data, stages, opts, r, wisdom) for r in range(runs)]
+
+    own_pool = None
+    if executor is None:
+        workers = min(runs, default_threads())
+        if workers > 1:
+            own_pool = ProcessPoolExecutor(max_workers=workers,
+                                           mp_context=multiprocessing.get_context("spawn"))
+            executor = own_pool
+        else:
+            executor = _Serial()
+    try:
+        raw = executor.map(_task, tasks)
+        if progress and own_pool is not None or isinstance(executor, _Serial):
+            from tqdm import tqdm
+
+            raw = tqdm(raw, total=runs, disable=not progress, unit="run")
+        results = _collect(executor, raw)
+    finally:
+        if own_pool is not None:
+            own_pool.shutdown()
+
+    summaries = [RunSummary(r.run, r.seed, r.status, r.message, r.metrics, r.iterations,
+                            r.elapsed) for r in results]
+    good = [r for r in results if r.ok]
+    if not good:
+        raise PhasingError("ensemble: no run succeeded: " +
+                           "; ".join(f"run {r.run}: {r.status} ({r.message})" for r in results))
+    higher = RANKING_METRICS[metric]
+
+    def score(r):
+        v = r.metrics.get(metric)
+        return (np.isnan(v), -v if higher else v)
+
+    ranked = sorted(good, key=score)
+    kept = ranked[:keep]
+    ref = kept[0]
+    aligned = [ref.obj]
+    supports = [ref.support]
+    infos = [{"run": ref.run, "shift": np.zeros(3), "twin": False, "phase": 0.0, "overlap": 1.0}]
+    for r in kept[1:]:
+        obj, info = align(r.obj, ref.obj)
+        info["run"] = r.run
+        aligned.append(obj)
+        supports.append(_align_support(r.support, info))
+        infos.append(info)
+    avg = np.mean(np.stack(aligned), axis=0).astype(np.complex64)
+    votes = np.sum(np.stack(supports), axis=0)
+    support = votes * 2 >= len(supports)
+    intensity_arr = np.asarray(intensity, dtype=np.float64)
+    mask_arr = None if mask is None else np.asarray(mask, bool)
+    trf = prtf(aligned, np.where(np.isfinite(intensity_arr), intensity_arr, 0), mask_arr,
+               ramp=ref.ramp)
+    return EnsembleResult(obj=avg, support=support, runs=summaries,
+                          ranking=[r.run for r in ranked], kept=[r.run for r in kept],
+                          alignment=infos, prtf=trf, best=ref, metric=metric, seed=seed,
+                          ramp=ref.ramp)

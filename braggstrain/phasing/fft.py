@@ -1,0 +1,204 @@
+"""FFT backend of the phasing loop: planned in-place 3-D transforms.
+
+One :class:`FFTBackend` owns one aligned complex64 work array and transforms
+it in place, forward or backward, without allocating anything per call when
+pyFFTW is available.  The transforms are *unnormalised* in both directions
+(numpy's forward convention, and an inverse that omits the ``1/N``); the
+caller folds ``1/N`` into its next element-wise pass, which saves one pass
+over the array per iteration.
+
+pyFFTW plans are made with ``FFTW_MEASURE`` by default.  FFTW keeps the
+*wisdom* gathered while planning for the life of the process, so the second
+plan of the same shape is instant; :func:`export_wisdom` /
+:func:`import_wisdom` carry it to worker processes (the ensemble does this),
+which also makes every worker use the very same plan, hence bit-identical
+transforms, and :func:`save_wisdom` / :func:`load_wisdom` keep it on disk.
+
+Without pyFFTW, ``scipy.fft`` with ``workers`` is used; it returns a new
+array per transform, which is copied back into the work array.
+"""
+
+from __future__ import annotations
+
+import base64
+import json
+import os
+import tempfile
+import threading
+
+# Two OpenMP runtimes share the cores in the loop (the one bundled with
+# pyFFTW's FFTW and the one behind numba's parallel kernels).  With the default
+# active waiting, the idle pool of one spins while the other works; passive
+# waiting lets them hand the two cores back and forth.  Only a default: a
+# value set by the user wins, and it only acts if set before the runtimes load.
+os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
+
+import numpy as np
+import scipy.fft
+
+from ..errors import InputError
+
+try:  # pyFFTW is a declared dependency, but keep working without it.
+    import pyfftw
+
+    HAVE_PYFFTW = True
+except ImportError:  # pragma: no cover - exercised only where pyFFTW is absent
+    pyfftw = None
+    HAVE_PYFFTW = False
+
+__all__ = [
+    "FFTBackend",
+    "HAVE_PYFFTW",
+    "default_threads",
+    "export_wisdom",
+    "import_wisdom",
+    "save_wisdom",
+    "load_wisdom",
+]
+
+_BACKENDS = ("auto", "pyfftw", "scipy")
+_EFFORTS = ("FFTW_ESTIMATE", "FFTW_MEASURE", "FFTW_PATIENT", "FFTW_EXHAUSTIVE")
+_plan_lock = threading.Lock()  # FFTW's planner is not thread safe
+
+
+def default_threads() -> int:
+    """Number of cores this process may run on (the default thread count)."""
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - not Linux
+        return max(1, os.cpu_count() or 1)
+
+
+def _check_threads(threads):
+    if threads is None:
+        return default_threads()
+    if isinstance(threads, bool) or not isinstance(threads, (int, np.integer)) or threads < 1:
+        raise InputError(f"threads: expected a positive integer or None, got {threads!r}")
+    return int(threads)
+
+
+class FFTBackend:
+    """In-place forward/backward 3-D FFT of one complex64 work array.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        Shape of the arrays to transform (3-D in the phasing loop, any
+        dimension works).
+    threads : int, optional
+        Threads for the transforms; default all cores of this process.
+    backend : {"auto", "pyfftw", "scipy"}
+        ``"auto"`` takes pyFFTW when it is installed, else ``scipy.fft``.
+    effort : str
+        FFTW planner effort, one of ``FFTW_ESTIMATE``, ``FFTW_MEASURE``
+        (default), ``FFTW_PATIENT``, ``FFTW_EXHAUSTIVE``.
+
+    Attributes
+    ----------
+    buffer : ndarray of complex64
+        The work array; :meth:`forward` and :meth:`backward` transform it in
+        place.
+    name : str
+        ``"pyfftw"`` or ``"scipy"``, the backend actually used.
+    """
+
+    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE"):
+        shape = tuple(int(n) for n in shape)
+        if not shape or any(n < 1 for n in shape):
+            raise InputError(f"shape: expected positive sizes, got {shape}")
+        if backend not in _BACKENDS:
+            raise InputError(f"fft backend: expected one of {_BACKENDS}, got {backend!r}")
+        if effort not in _EFFORTS:
+            raise InputError(f"fft effort: expected one of {_EFFORTS}, got {effort!r}")
+        if backend == "pyfftw" and not HAVE_PYFFTW:
+            raise InputError("fft backend: 'pyfftw' requested but pyFFTW is not installed")
+        self.shape = shape
+        self.threads = _check_threads(threads)
+        self.size = int(np.prod(shape))
+        self.name = "pyfftw" if (backend != "scipy" and HAVE_PYFFTW) else "scipy"
+        axes = tuple(range(len(shape)))
+        self._axes = axes
+        if self.name == "pyfftw":
+            self.buffer = pyfftw.empty_aligned(shape, dtype=np.complex64)
+            flags = (effort, "FFTW_DESTROY_INPUT")
+            with _plan_lock:  # planning (MEASURE) scribbles over the buffer
+                self._fwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
+                                        direction="FFTW_FORWARD", flags=flags,
+                                        threads=self.threads)
+                self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
+                                        direction="FFTW_BACKWARD", flags=flags,
+                                        threads=self.threads)
+            self.buffer[...] = 0
+        else:
+            self.buffer = np.zeros(shape, dtype=np.complex64)
+
+    def forward(self):
+        """Unnormalised forward transform of :attr:`buffer`, in place."""
+        if self.name == "pyfftw":
+            self._fwd.execute()
+        else:
+            self.buffer[...] = scipy.fft.fftn(self.buffer, axes=self._axes,
+                                              workers=self.threads, overwrite_x=True)
+
+    def backward(self):
+        """Unnormalised backward transform of :attr:`buffer` (no ``1/N``), in place."""
+        if self.name == "pyfftw":
+            self._bwd.execute()
+        else:
+            self.buffer[...] = scipy.fft.ifftn(self.buffer, axes=self._axes, norm="forward",
+                                               workers=self.threads, overwrite_x=True)
+
+    def __repr__(self):
+        return f"FFTBackend(shape={self.shape}, threads={self.threads}, name={self.name!r})"
+
+
+def export_wisdom():
+    """FFTW wisdom gathered so far in this process (``None`` without pyFFTW)."""
+    if not HAVE_PYFFTW:
+        return None
+    return pyfftw.export_wisdom()
+
+
+def import_wisdom(wisdom) -> bool:
+    """Merge wisdom from :func:`export_wisdom` into this process's planner.
+
+    Returns ``True`` if any wisdom was imported.
+    """
+    if not HAVE_PYFFTW or wisdom is None:
+        return False
+    return any(pyfftw.import_wisdom(tuple(wisdom)))
+
+
+def save_wisdom(path) -> None:
+    """Write this process's FFTW wisdom to ``path`` atomically (temp file, then replace)."""
+    wisdom = export_wisdom()
+    if wisdom is None:
+        return
+    path = os.fspath(path)
+    folder = os.path.dirname(os.path.abspath(path))
+    os.makedirs(folder, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=folder, prefix=".wisdom-", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w") as fh:
+            json.dump({"fftw_wisdom": [base64.b64encode(w).decode("ascii") for w in wisdom]}, fh)
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+
+
+def load_wisdom(path) -> bool:
+    """Import wisdom written by :func:`save_wisdom`; ``False`` if the file is absent."""
+    path = os.fspath(path)
+    if not os.path.exists(path):
+        return False
+    try:
+        with open(path) as fh:
+            wisdom = tuple(base64.b64decode(w) for w in json.load(fh)["fftw_wisdom"])
+    except Exception as exc:
+        raise InputError(f"{path}: field 'fftw_wisdom': expected the JSON written by "
+                         f"save_wisdom ({exc})") from exc
+    if len(wisdom) != 3:
+        raise InputError(f"{path}: field 'fftw_wisdom': expected three entries, got {len(wisdom)}")
+    return import_wisdom(wisdom)

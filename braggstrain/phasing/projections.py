@@ -1,0 +1,269 @@
+"""Fused element-wise passes of the phasing loop (numba kernels).
+
+Every kernel works in place on flat (1-D) views of C-contiguous arrays, so
+each compiles once per dtype set; all are cached on disk (``cache=True``).
+One iteration of ER, HIO or RAAR costs two passes over the data besides the
+two FFTs:
+
+1. :func:`modulus_step` (or :func:`modulus_step_model` under partial
+   coherence or a background): the modulus projection in reciprocal space,
+   with the ``1/N`` of the inverse FFT folded in, and the amplitude misfit
+   summed on the way;
+2. :func:`support_step`: the real-space update of ER, HIO or RAAR, which also
+   copies the new iterate into the FFT buffer for the next forward transform.
+
+The measured amplitude ``amp`` has the mask folded in: ``amp < 0`` marks a
+voxel that is not measured (detector gap, hot pixel, beam stop) or held out
+for the free log-likelihood; the modulus projection leaves such voxels free
+(only the ``1/N`` scale is applied).
+
+Formulas (METHODS.md; Fienup, Appl. Opt. 21, 2758 (1982); Luke, Inverse
+Problems 21, 37 (2005)), with ``p = P_M x`` the modulus-projected iterate and
+``S`` the support:
+
+- ER:   x <- p on S, 0 off S;
+- HIO:  x <- p on S, x - beta p off S;
+- RAAR: x <- p on S, beta x + (1 - 2 beta) p off S, which is
+  [beta/2 (R_S R_M + I) + (1 - beta) P_M] x written out per voxel.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+from numba import njit, prange
+
+__all__ = [
+    "ALGORITHM_CODES",
+    "modulus_step",
+    "modulus_step_model",
+    "support_step",
+    "intensity_of",
+    "masked_modulus",
+    "poisson_sum_field",
+    "poisson_sum_model",
+    "masked_magnitude",
+    "gaussian_multiply",
+    "threshold_real",
+    "warm_up",
+]
+
+ALGORITHM_CODES = {"ER": 0, "HIO": 1, "RAAR": 2}
+
+_JIT = dict(parallel=True, cache=True, nogil=True)
+_TINY = 1e-30
+
+
+@njit(**_JIT)
+def modulus_step(psi, amp, scale):
+    """Modulus projection in place: psi <- scale * amp * psi/|psi| where amp >= 0.
+
+    Parameters
+    ----------
+    psi : complex64 (n,)
+        Far field of the iterate (unnormalised forward FFT); overwritten.
+    amp : float32 (n,)
+        Measured amplitude sqrt(I); negative where the voxel is left free.
+    scale : float32
+        Factor applied to every voxel (``1/N`` of the following inverse FFT).
+
+    Returns
+    -------
+    float
+        Sum over constrained voxels of (|psi| - amp)^2.
+    """
+    err = 0.0
+    for i in prange(psi.size):
+        a = amp[i]
+        z = psi[i]
+        if a < 0:
+            psi[i] = z * scale
+        else:
+            m = math.sqrt(z.real * z.real + z.imag * z.imag)
+            d = m - a
+            err += d * d
+            if m > 0:
+                psi[i] = z * np.float32(a * scale / m)
+            else:
+                psi[i] = np.complex64(a * scale)
+    return err
+
+
+@njit(**_JIT)
+def modulus_step_model(psi, amp, model, background, scale):
+    """Modulus step against a model intensity: psi <- scale * psi * sqrt(I / (model + b)).
+
+    With ``model = |psi|^2`` and ``b = 0`` this is :func:`modulus_step`; under
+    partial coherence ``model`` is ``|psi|^2`` convolved with the coherence
+    function (Clark et al., Nat. Commun. 3, 993 (2012)), and ``b`` is the flat
+    background per voxel.
+
+    Returns
+    -------
+    float
+        Sum over constrained voxels of (sqrt(model + b) - amp)^2.
+    """
+    err = 0.0
+    for i in prange(psi.size):
+        a = amp[i]
+        z = psi[i]
+        if a < 0:
+            psi[i] = z * scale
+        else:
+            m = model[i] + background
+            if m > _TINY:
+                r = math.sqrt(m)
+                d = r - a
+                err += d * d
+                psi[i] = z * np.float32(a * scale / r)
+            else:
+                err += a * a
+                psi[i] = np.complex64(a * scale)
+    return err
+
+
+@njit(**_JIT)
+def support_step(x, buf, support, code, beta):
+    """Real-space update of ER (code 0), HIO (1) or RAAR (2), in place.
+
+    ``buf`` holds ``p = P_M x`` on entry; on exit ``x`` and ``buf`` both hold
+    the new iterate (``buf`` is then ready for the next forward FFT).
+    """
+    c1 = np.float32(beta)
+    c2 = np.float32(1.0 - 2.0 * beta)
+    for i in prange(x.size):
+        p = buf[i]
+        if support[i]:
+            v = p
+        elif code == 0:
+            v = np.complex64(0)
+        elif code == 1:
+            v = x[i] - c1 * p
+        else:
+            v = c1 * x[i] + c2 * p
+        x[i] = v
+        buf[i] = v
+
+
+@njit(**_JIT)
+def intensity_of(psi, out):
+    """out <- |psi|^2 (float32)."""
+    for i in prange(psi.size):
+        z = psi[i]
+        out[i] = z.real * z.real + z.imag * z.imag
+
+
+@njit(**_JIT)
+def poisson_sum_field(psi, amp, background):
+    """Sum over constrained voxels of I_c - I ln I_c with I_c = |psi|^2 + b.
+
+    The ln Gamma(I + 1) term of the Poisson negative log-likelihood does not
+    depend on the model and is added by the caller.
+    """
+    s = 0.0
+    for i in prange(psi.size):
+        a = amp[i]
+        if a >= 0:
+            z = psi[i]
+            ic = max(z.real * z.real + z.imag * z.imag + background, _TINY)
+            s += ic - a * a * math.log(ic)
+    return s
+
+
+@njit(**_JIT)
+def poisson_sum_model(model, amp, background):
+    """As :func:`poisson_sum_field` with I_c = model + b."""
+    s = 0.0
+    for i in prange(model.size):
+        a = amp[i]
+        if a >= 0:
+            ic = max(model[i] + background, _TINY)
+            s += ic - a * a * math.log(ic)
+    return s
+
+
+@njit(**_JIT)
+def masked_magnitude(x, support, buf):
+    """buf <- |x| on the support, 0 elsewhere (input of the shrink-wrap blur)."""
+    for i in prange(x.size):
+        if support[i]:
+            z = x[i]
+            buf[i] = np.complex64(math.sqrt(z.real * z.real + z.imag * z.imag))
+        else:
+            buf[i] = np.complex64(0)
+
+
+@njit(**_JIT)
+def gaussian_multiply(buf, g0, g1, g2):
+    """buf[i, j, k] *= g0[i] g1[j] g2[k] (separable transfer function, 3-D)."""
+    n0, n1, n2 = buf.shape
+    for i in prange(n0):
+        a = g0[i]
+        for j in range(n1):
+            b = a * g1[j]
+            for k in range(n2):
+                buf[i, j, k] = buf[i, j, k] * np.float32(b * g2[k])
+
+
+@njit(**_JIT)
+def threshold_real(buf, fraction, support):
+    """support <- Re(buf) >= fraction * max Re(buf); returns the support size."""
+    top = -np.inf
+    for i in range(buf.size):
+        v = buf[i].real
+        if v > top:
+            top = v
+    level = fraction * top
+    count = 0
+    for i in prange(buf.size):
+        inside = buf[i].real >= level and top > 0
+        support[i] = inside
+        count += 1 if inside else 0
+    return count
+
+
+def masked_modulus(psi, amplitude, mask):
+    """Modulus projection of a far field leaving masked voxels free.
+
+    Convenience wrapper over :func:`modulus_step` for any shape.
+
+    Parameters
+    ----------
+    psi : ndarray of complex
+        Far field, any shape.
+    amplitude : ndarray of float
+        Measured amplitude sqrt(I), same shape (values >= 0).
+    mask : ndarray of bool or None
+        True where a voxel was not measured; there psi is returned unchanged.
+
+    Returns
+    -------
+    ndarray of complex64
+        The projected far field (a new array).
+    """
+    out = np.ascontiguousarray(psi, dtype=np.complex64).copy()
+    amp = np.ascontiguousarray(amplitude, dtype=np.float32).copy()
+    if mask is not None:
+        amp[np.asarray(mask, dtype=bool)] = -1.0
+    modulus_step(out.reshape(-1), amp.reshape(-1), np.float32(1.0))
+    return out
+
+
+def warm_up():
+    """Compile (or load from numba's cache) every kernel on tiny arrays."""
+    n = 8
+    psi = np.ones(n, np.complex64)
+    amp = np.ones(n, np.float32)
+    model = np.ones(n, np.float32)
+    sup = np.ones(n, np.bool_)
+    modulus_step(psi, amp, np.float32(1.0))
+    modulus_step_model(psi, amp, model, np.float32(0.0), np.float32(1.0))
+    support_step(psi, psi.copy(), sup, 1, 0.9)
+    intensity_of(psi, model)
+    poisson_sum_field(psi, amp, np.float32(0.0))
+    poisson_sum_model(model, amp, np.float32(0.0))
+    masked_magnitude(psi, sup, psi.copy())
+    g = np.ones(2, np.float32)
+    gaussian_multiply(np.ones((2, 2, 2), np.complex64), g, g, g)
+    threshold_real(psi, 0.5, sup)
