@@ -38,6 +38,30 @@ _CENTRING = {
 _SLIP_PLANES = {"F": [(1, 1, 1)], "I": [(1, 1, 0)]}
 
 
+# Cubic elements that xrayutilities' database lacks, built from their space
+# group and a room-temperature lattice parameter (Å). Values from memory of
+# the standard tables (e.g. Kittel, Introduction to Solid State Physics, 8th
+# ed., ch. 1, Table 3-4 lists them to three figures).
+_EXTRA_ELEMENTS = {
+    "Ni": (225, 3.5240, "4a"),
+    "Pd": (225, 3.8907, "4a"),
+    "Al": (225, 4.0495, "4a"),
+    "Fe": (229, 2.8665, "2a"),
+    "Mo": (229, 3.1470, "2a"),
+    "Cr": (229, 2.8846, "2a"),
+    "Ta": (229, 3.3013, "2a"),
+    "Nb": (229, 3.3004, "2a"),
+}
+
+
+def _extra_material(name):
+    import xrayutilities as xu
+
+    sg, a, wyck = _EXTRA_ELEMENTS[name]
+    el = getattr(xu.materials.elements, name)
+    return xu.materials.Crystal(name, xu.materials.SGLattice(sg, a, atoms=[el], pos=[wyck]))
+
+
 def wavelength(energy_kev):
     """X-ray wavelength in Å for a photon energy in keV: λ = hc/E (CODATA 2018)."""
     e = np.asarray(energy_kev, dtype=float)
@@ -130,9 +154,12 @@ class Crystal:
 
         if isinstance(material, str):
             mat = getattr(xu.materials, material, None)
+            if not isinstance(mat, xu.materials.Crystal) and material in _EXTRA_ELEMENTS:
+                mat = _extra_material(material)
             if not isinstance(mat, xu.materials.Crystal):
-                known = sorted(n for n in dir(xu.materials)
-                               if isinstance(getattr(xu.materials, n, None), xu.materials.Crystal))
+                known = sorted([n for n in dir(xu.materials)
+                                if isinstance(getattr(xu.materials, n, None), xu.materials.Crystal)]
+                               + list(_EXTRA_ELEMENTS))
                 import difflib
                 close = difflib.get_close_matches(material, known, n=3)
                 hint = f" (did you mean {', '.join(close)}?)" if close else ""

@@ -1,0 +1,76 @@
+"""Pipeline-file validation and the simulate / inspect commands."""
+
+import numpy as np
+import pytest
+
+from braggstrain.cli import main
+from braggstrain.config import build_crystal, build_instrument, load_config
+from braggstrain.errors import ConfigError
+from braggstrain.scanio import read_scan
+
+from conftest import DEMO, small_toml
+
+
+def test_demo_pipeline_is_valid():
+    cfg = load_config(DEMO)
+    assert len(cfg["reflection"]) == 4
+    cr = build_crystal(cfg)
+    # [111] along sample z (the demo's orientation)
+    g = cr.g_sample((1, 1, 1))
+    np.testing.assert_allclose(g / np.linalg.norm(g), [0, 0, 1], atol=1e-12)
+    inst = build_instrument(cfg)
+    assert inst.detector.pixel_size == (75e-6, 75e-6)
+    # at least three of the four G are non-coplanar (a 3×3 minor has full rank)
+    G = np.array([cr.g_sample(r["hkl"]) for r in cfg["reflection"]])
+    assert np.linalg.matrix_rank(G, tol=1e-6) == 3
+
+
+@pytest.mark.parametrize("edit,key", [
+    (lambda t: t.replace("energy_kev = 9.0", "energy_kev = 9.0\nenergy_kv = 9.0"), "did you mean 'energy_kev'"),
+    (lambda t: t.replace("energy_kev = 9.0", 'energy_kev = "nine"'), "instrument.energy_kev"),
+    (lambda t: t.replace('material = "Pt"', 'material = "Unobtainium"'), "crystal"),
+    (lambda t: t.replace("distance_m = 0.5", "distance_m = -0.5"), "instrument.detector.distance_m"),
+    (lambda t: t.replace("hkl = [1, 1, 1]", "hkl = [1, 1]"), "reflection[0].hkl"),
+    (lambda t: t.replace('axis = "x+"', 'axis = "q+"', 1), "sample_circles[0].axis"),
+])
+def test_config_errors_name_the_key(tmp_path, edit, key):
+    p = tmp_path / "bad.toml"
+    p.write_text(edit(small_toml()))
+    with pytest.raises(ConfigError) as e:
+        cfg = load_config(p)
+        build_crystal(cfg)
+    assert key in str(e.value) and str(p) in str(e.value)
+
+
+def test_not_toml(tmp_path):
+    p = tmp_path / "bad.toml"
+    p.write_text("[crystal\nmaterial = ")
+    with pytest.raises(ConfigError, match="not valid TOML"):
+        load_config(p)
+
+
+def test_simulate_and_inspect(tmp_path, small_config, capsys):
+    out = tmp_path / "sim"
+    assert main(["-q", "simulate", str(small_config), "--out", str(out)]) == 0
+    scans = sorted((out / "scans").glob("*.h5"))
+    assert len(scans) == 4 and (out / "truth.h5").exists() and (out / "pipeline.toml").exists()
+    s = read_scan(scans[0])
+    assert s.frames.shape == (32, 96, 96) and s.hkl == (1, 1, 1)
+    assert main(["inspect", str(scans[0])]) == 0
+    text = capsys.readouterr().out
+    assert "max counts" in text and "eta" in text
+
+
+def test_simulate_forbidden_reflection_exits_2(tmp_path, capsys):
+    p = tmp_path / "bad.toml"
+    p.write_text(small_toml(hkls=((1, 0, 0), (1, 1, 1), (2, 0, 0))))
+    assert main(["simulate", str(p), "--out", str(tmp_path / "o")]) == 2
+    err = capsys.readouterr().err
+    assert "reflection[0].hkl" in err and "forbidden" in err
+
+
+def test_simulated_scan_escaping_output_folder_is_refused(tmp_path, capsys):
+    p = tmp_path / "bad.toml"
+    p.write_text(small_toml().replace('scan = "scans/r0.h5"', 'scan = "../escape.h5"'))
+    assert main(["simulate", str(p), "--out", str(tmp_path / "o")]) == 2
+    assert not (tmp_path / "escape.h5").exists()
