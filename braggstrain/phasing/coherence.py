@@ -33,6 +33,13 @@ class CoherenceSettings:
     ----------
     half_width : int
         The kernel spans (2 w + 1)^3 voxels of reciprocal space.
+    initial_sigma : float
+        Width (voxels) of the Gaussian the kernel starts from at its first
+        update (the kernel is a delta before); Richardson-Lucy is
+        multiplicative, so voxels where the kernel starts at zero stay zero.
+    start : int
+        First iteration of the run at which the kernel is updated (a coherent
+        estimate forms first).
     rl_iterations : int
         Richardson-Lucy iterations per kernel update.
     symmetric : bool
@@ -42,6 +49,8 @@ class CoherenceSettings:
     """
 
     half_width: int = 4
+    initial_sigma: float = 1.0
+    start: int = 100
     rl_iterations: int = 10
     symmetric: bool = True
 
@@ -55,7 +64,7 @@ class CoherenceSettings:
         if isinstance(value, cls):
             return value
         if isinstance(value, dict):
-            allowed = {"half_width", "rl_iterations", "symmetric"}
+            allowed = {"half_width", "initial_sigma", "start", "rl_iterations", "symmetric"}
             bad = set(value) - allowed
             if bad:
                 raise InputError(f"coherence: unknown key(s) {sorted(bad)}; known: {sorted(allowed)}")
@@ -65,6 +74,11 @@ class CoherenceSettings:
             if not (isinstance(s.rl_iterations, int) and s.rl_iterations >= 1):
                 raise InputError(f"coherence.rl_iterations: expected a positive integer, "
                                  f"got {s.rl_iterations!r}")
+            if not (isinstance(s.start, int) and s.start >= 0):
+                raise InputError(f"coherence.start: expected an integer >= 0, got {s.start!r}")
+            if not (isinstance(s.initial_sigma, (int, float)) and 0 < s.initial_sigma <= s.half_width):
+                raise InputError(f"coherence.initial_sigma: expected a width in (0, half_width] "
+                                 f"voxels, got {s.initial_sigma!r}")
             return s
         raise InputError(f"coherence: expected true/false or a table of settings, got {value!r}")
 
@@ -157,6 +171,8 @@ class CoherenceModel:
         if total <= 0:
             return
         k = self.kernel
+        if self.is_delta:
+            k = gaussian_kernel(self.settings.initial_sigma, self.settings.half_width)
         for _ in range(self.settings.rl_iterations):
             full = np.zeros(self.shape, dtype=np.float32)
             full[self._idx] = k

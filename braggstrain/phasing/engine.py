@@ -461,7 +461,8 @@ def _iterate(data, stages, opts, run, rng, t0):
                 fft.forward()
                 if needs_model:
                     _k.intensity_of(bflat, model)
-                    if checkpoint and coh is not None and stage.coherence_update and it_global > 0:
+                    if (checkpoint and coh is not None and stage.coherence_update
+                            and it_global >= opts.coherence.start):
                         coh.update(model, intensity, constrained, float(background))
                     if checkpoint and bg_mode == "fit" and it_global > 0:
                         if coh is not None:

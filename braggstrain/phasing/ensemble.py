@@ -196,10 +196,10 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
             executor = _Serial()
     try:
         raw = executor.map(_task, tasks)
-        if progress and own_pool is not None or isinstance(executor, _Serial):
+        if progress:
             from tqdm import tqdm
 
-            raw = tqdm(raw, total=runs, disable=not progress, unit="run")
+            raw = tqdm(raw, total=runs, unit="run", desc="phasing runs")
         results = _collect(executor, raw)
     finally:
         if own_pool is not None:

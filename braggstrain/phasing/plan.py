@@ -76,8 +76,8 @@ class Stage:
         modulus, in (0, 1).
     coherence_update : bool
         When partial coherence is switched on, refine the coherence function
-        (Richardson-Lucy) during this stage; the first stage of the default
-        plan keeps it off so that a coherent estimate forms first.
+        (Richardson-Lucy) during this stage (from the iteration
+        ``CoherenceSettings.start`` of the run on).
     """
 
     algorithm: str = "HIO"
@@ -187,7 +187,7 @@ def default_plan() -> list[Stage]:
     crystals of the test suite.
     """
     return [
-        Stage("HIO", 400, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15, coherence_update=False),
+        Stage("HIO", 400, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
         Stage("RAAR", 300, 0.8, "shrinkwrap", 20, (1.5, 1.0), 0.2),
         Stage("ER", 180, None, "shrinkwrap", 30, (1.0, 1.0), 0.2),
     ]

@@ -119,25 +119,35 @@ def support_health(size, initial_size, total, min_voxels=27, collapse_ratio=1 / 
 
 
 def estimate_oversampling(intensity_fft, measured=None, threshold=0.05, threads=1):
-    """Estimated oversampling ratio per axis, sigma_k = N_k / L_k.
+    """Estimated oversampling ratio per axis, sigma_k = N_k / L_k (rough).
 
-    L_k, the crystal's extent along axis k, is half the extent of the
-    thresholded autocorrelation (METHODS.md: sigma = 2 pi / (L dq) = N / L
-    on an N-point grid).  The estimate is rough (a few tens of %) and meant
-    for a warning; phase retrieval needs sigma >= 2 (common practice).
+    L_k, the crystal's extent along axis k, comes from the autocorrelation
+    projected on that axis (the 1-D autocorrelation of the crystal's
+    projected density, which spans 2 L_k): its extent at ``threshold`` of
+    the maximum, calibrated on a box (whose autocorrelation is a tent,
+    spanning 2 L (1 - threshold) at that level).  METHODS.md: sigma =
+    2 pi / (L dq) = N / L on an N-point grid; phase retrieval needs
+    sigma >= 2 (common practice).  Rounder or pointed crystals read high.
+
+    When the projected autocorrelation does not fall below ``threshold``
+    anywhere (it wraps around the periodic array: sigma < 2), the width at
+    half maximum is used instead (a box's tent is L wide there), capped
+    just below 2.
 
     Returns
     -------
     ndarray (3,) of float
     """
-    ac = scipy.fft.fftshift(autocorrelation(intensity_fft, measured, threads))
-    inside = ac >= np.float32(threshold) * ac.max()
+    ac = autocorrelation(intensity_fft, measured, threads)
     ratios = []
-    for axis, n in enumerate(inside.shape):
-        other = tuple(a for a in range(inside.ndim) if a != axis)
-        extent = int(np.count_nonzero(inside.any(axis=other)))
-        # the thresholded autocorrelation of a solid of extent L spans about
-        # 2 L (1 - threshold): undo the (1 - threshold) shrink of a linear tent
-        length = max(extent / (2.0 * (1.0 - threshold)), 1.0)
-        ratios.append(n / length)
+    for axis, n in enumerate(ac.shape):
+        other = tuple(a for a in range(ac.ndim) if a != axis)
+        prof = ac.sum(axis=other, dtype=np.float64)
+        prof = np.fft.fftshift(prof / prof.max())
+        if prof.min() < threshold:
+            length = np.count_nonzero(prof >= threshold) / (2.0 * (1.0 - threshold))
+            ratios.append(n / max(length, 1.0))
+        else:
+            length = np.count_nonzero(prof >= 0.5)
+            ratios.append(min(n / max(length, 1.0), 1.95))
     return np.asarray(ratios)
