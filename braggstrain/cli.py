@@ -81,6 +81,137 @@ def cmd_inspect(args):
     return 0
 
 
+def _timing_table(timings, wall):
+    lines = ["stage        seconds   share"]
+    for k, v in timings.items():
+        lines.append(f"{k:10s} {v:9.1f} {100 * v / wall:6.1f} %")
+    lines.append(f"{'total':10s} {wall:9.1f}")
+    return "\n".join(lines)
+
+
+def _summary(res):
+    r = res["results"]
+    tf = r["tensor"]
+    lines = []
+    sup = tf.support
+    eps = tf.strain
+    names = ["xx", "yy", "zz"]
+    stats = []
+    for i in range(3):
+        v = eps[i, i][sup]
+        v = v[np.isfinite(v)]
+        if v.size:
+            stats.append(f"ε_{names[i]} {np.mean(v):+.2e} ± {np.std(v):.1e}")
+    lines.append(f"strain inside the crystal ({int(sup.sum())} voxels): " + ", ".join(stats))
+    lines.append(f"G set condition number {tf.condition_number:.2f}")
+    ml = r.get("mean_lattice") or {}
+    if ml.get("lattice_parameter") is not None:
+        lines.append(f"mean lattice parameter from the peak positions: {ml['lattice_parameter']:.5f} Å")
+    for d in r["dislocations"]:
+        b = " ".join(f"{v:+.2f}" for v in np.atleast_1d(d.burgers)) if d.burgers is not None else "unknown"
+        lines.append(f"dislocation: b = [{b}], {d.character_deg:.0f}° character, length {d.length / 10:.0f} nm, "
+                     f"seen in {len(d.visible_in)} reflections")
+    if not r["dislocations"]:
+        lines.append("no dislocations found")
+    for k, v in res["paths"].items():
+        if isinstance(v, (list, tuple)):
+            lines.append(f"{k}: {len(v)} files in {Path(v[0]).parent if v else '-'}")
+        else:
+            lines.append(f"{k}: {v}")
+    return "\n".join(lines)
+
+
+def cmd_run(args):
+    from .config import load_config
+    from .pipeline import run_pipeline
+
+    cfg = load_config(args.config)
+    res = run_pipeline(cfg, args.out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
+                       progress=not args.quiet, log=None if args.quiet else print)
+    _print(_summary(res), args.quiet)
+    _print(_timing_table(res["timings"], res["wall_s"]), args.quiet)
+    return 0
+
+
+def cmd_demo(args):
+    from .config import load_config
+    from .demo import simulate_experiment
+    from .pipeline import run_pipeline
+
+    out = Path(args.out)
+    demo = Path(__file__).resolve().parent / "data" / "demo.toml"
+    cfg = load_config(demo)
+    _print(f"simulating the demo crystal into {out} ...", args.quiet)
+    sim = simulate_experiment(cfg, out, log=None if args.quiet else print)
+    cfg = load_config(sim["pipeline"])
+    _print("running the pipeline on the simulated scans ...", args.quiet)
+    res = run_pipeline(cfg, out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
+                       progress=not args.quiet, log=None if args.quiet else print)
+    _print(_summary(res), args.quiet)
+    try:
+        from .demo import compare_to_truth
+
+        _print(compare_to_truth(res["results"], out / "truth.h5"), args.quiet)
+    except (ImportError, BraggStrainError) as e:  # pragma: no cover - comparison is informative only
+        _print(f"(no comparison with the truth: {e})", args.quiet)
+    _print(_timing_table(res["timings"], res["wall_s"]), args.quiet)
+    return 0
+
+
+def cmd_prepare(args):
+    from .config import load_config
+    from .pipeline import _scan_for, check_options
+    from .prepare import prepare_scan, summarize_prepared, write_prepared
+
+    cfg = load_config(args.config)
+    opts = check_options(cfg)
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+    for i, r in enumerate(cfg["reflection"]):
+        scan, _ = _scan_for(cfg, i, r)
+        prep = prepare_scan(scan, **opts["prepare"])
+        name = r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m")
+        path = write_prepared(prep, out / f"{name}_prepared.h5")
+        _print(f"{name} {tuple(r['hkl'])} → {path}", args.quiet)
+        for line in summarize_prepared(prep).splitlines():
+            _print("  " + line, args.quiet)
+    return 0
+
+
+def cmd_report(args):
+    from . import outputs
+
+    results = outputs.read_results(args.results)
+    out = Path(args.out) if args.out else Path(args.results).resolve().parent
+    figs = outputs.make_figures(results, out / "figures")
+    path = outputs.write_report(results, out, figures=figs)
+    _print(f"report: {path} ({len(figs)} figures)", args.quiet)
+    return 0
+
+
+def cmd_export(args):
+    from . import outputs
+
+    if not args.vtk:
+        raise InputError("export: choose a format, e.g. --vtk")
+    out = Path(args.out) if args.out else Path(args.results).resolve().parent / "vtk"
+    paths = outputs.export_vtk(args.results, out)
+    for p in paths:
+        _print(f"wrote {p}", args.quiet)
+    return 0
+
+
+def cmd_plan(args):
+    from .config import load_config
+    from . import plan
+
+    cfg = load_config(args.config)
+    out = Path(args.out) if args.out else Path(args.config).resolve().parent / "plan"
+    result = plan.plan_from_config(cfg, out)
+    print(plan.format_plan_table(result))
+    return 0
+
+
 def build_parser():
     p = argparse.ArgumentParser(prog="braggstrain",
                                 description="Strain tensor, lattice rotation and dislocations of a nanocrystal "
@@ -94,9 +225,47 @@ def build_parser():
     s.add_argument("--out", required=True, help="output folder for scan files, truth.h5 and pipeline.toml")
     s.set_defaults(func=cmd_simulate)
 
-    s = sub.add_parser("inspect", help="describe a scan file")
+    s = sub.add_parser("inspect", help="describe a scan file, raw and after preparation")
     s.add_argument("file", help="braggstrain scan file (HDF5)")
     s.set_defaults(func=cmd_inspect)
+
+    def add_exec(sp):
+        sp.add_argument("--resume", action="store_true", help="reuse checkpoints whose inputs did not change")
+        sp.add_argument("--scheduler", default=None,
+                        help="run phase retrieval on Dask: 'local' starts a LocalCluster, else a scheduler address")
+        sp.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+
+    s = sub.add_parser("demo", help="simulate the built-in demo crystal and run the whole pipeline on it")
+    s.add_argument("out", help="output folder")
+    add_exec(s)
+    s.set_defaults(func=cmd_demo)
+
+    s = sub.add_parser("run", help="run the pipeline a pipeline file describes")
+    s.add_argument("config", help="pipeline file (TOML)")
+    s.add_argument("--out", required=True, help="output folder")
+    add_exec(s)
+    s.set_defaults(func=cmd_run)
+
+    s = sub.add_parser("prepare", help="prepare every scan of a pipeline file and write it to HDF5")
+    s.add_argument("config", help="pipeline file (TOML)")
+    s.add_argument("--out", required=True, help="output folder")
+    s.set_defaults(func=cmd_prepare)
+
+    s = sub.add_parser("report", help="rebuild the figures and the HTML report from a results file")
+    s.add_argument("results", help="results.h5")
+    s.add_argument("--out", default=None, help="output folder (default: beside the results file)")
+    s.set_defaults(func=cmd_report)
+
+    s = sub.add_parser("export", help="export a results file for other programs")
+    s.add_argument("results", help="results.h5")
+    s.add_argument("--vtk", action="store_true", help="VTK ImageData (.vti) files for ParaView")
+    s.add_argument("--out", default=None, help="output folder (default: vtk/ beside the results file)")
+    s.set_defaults(func=cmd_export)
+
+    s = sub.add_parser("plan", help="plan which reflections to measure, at which angles")
+    s.add_argument("config", help="pipeline file (TOML) with [crystal], [instrument] and [plan]")
+    s.add_argument("--out", default=None, help="folder for the figure and the pipeline fragment")
+    s.set_defaults(func=cmd_plan)
     return p
 
 

@@ -1,0 +1,603 @@
+"""The pipeline: DESIGN.md's stages wired into one small graph.
+
+Per reflection: prepare → (grid, for the orthogonal route) → phase → sample
+frame; then, over all reflections: register → tensor → defects → outputs.
+The stages are the plain functions of their modules; this module only
+
+* reads their options from the validated pipeline dict (every option table is
+  checked up front against the function it feeds, with a did-you-mean);
+* checkpoints every stage's output to ``OUT/checkpoints`` as HDF5 named by a
+  hash of the stage's inputs and options (written atomically), so
+  ``resume=True`` reruns only what changed or is missing;
+* decides where phase retrieval runs: a local process pool by default, or a
+  Dask cluster (``scheduler="local"`` starts a ``LocalCluster``, any other
+  value is a scheduler address). Each random start is one task, reproducible
+  from (seed, reflection, run), so every executor gives identical results.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import difflib
+import inspect
+import os
+import platform
+import time
+from datetime import datetime, timezone
+from pathlib import Path
+
+import numpy as np
+
+from .config import build_crystal, build_instrument, resolve_path
+from .errors import BraggStrainError, ConfigError, InputError, TensorError
+from .objects import SampleObject
+from .store import file_digest, hash_inputs, load_tree, save_tree
+
+__all__ = ["run_pipeline", "check_options", "PipelineRun", "STAGES"]
+
+STAGES = ("prepare", "grid", "phase", "frame", "register", "tensor", "defects", "outputs")
+
+# Keys of the option tables that are the pipeline's own (not a stage function's).
+_FRAME_OWN = {"route", "voxel_nm"}
+_TENSOR_OWN = {"min_overlap", "voxel_nm", "upsample", "twin_tolerance"}
+_DEFECTS_OWN = {"enabled"}
+_OUTPUT_KEYS = {"vtk": bool, "figures": bool, "report": bool}
+
+
+def _kwargs_of(fn, skip):
+    sig = inspect.signature(fn)
+    return {n for n, p in sig.parameters.items()
+            if p.kind in (p.KEYWORD_ONLY, p.POSITIONAL_OR_KEYWORD) and n not in skip}
+
+
+def _check_keys(table, allowed, where, src):
+    for k in table:
+        if k not in allowed:
+            close = difflib.get_close_matches(k, sorted(allowed), n=1)
+            hint = f" (did you mean '{close[0]}'?)" if close else ""
+            raise ConfigError(f"{src}: unknown key '{where}.{k}'{hint}; expected one of {sorted(allowed)}")
+
+
+def check_options(cfg):
+    """Validate the stage option tables against the functions they feed.
+
+    Returns a dict stage → keyword arguments. Raises ConfigError naming the
+    key for an unknown key or a bad value.
+    """
+    from . import defects, frame, prepare, regrid, tensor
+    from .phasing import options_from_config
+
+    src = cfg.get("_source", "<pipeline>")
+    out = {}
+    p = dict(cfg["prepare"])
+    _check_keys(p, _kwargs_of(prepare.prepare_scan, {"scan"}), "prepare", src)
+    for k in ("bin", "crop", "max_crop", "pad"):
+        if isinstance(p.get(k), list):
+            p[k] = tuple(p[k])
+    out["prepare"] = p
+    ph = dict(cfg["phasing"])
+    try:
+        out["phasing"] = options_from_config(ph)
+    except ConfigError as e:
+        raise ConfigError(f"{src}: key 'phasing': {e}") from None
+    fr = dict(cfg["frame"])
+    route = fr.get("route", frame.DEFAULT_ROUTE)
+    if route not in frame.ROUTES:
+        raise ConfigError(f"{src}: key 'frame.route': value {route!r}; expected one of {list(frame.ROUTES)}")
+    allowed = _FRAME_OWN | _kwargs_of(frame.detector_to_sample, {"recon", "prepared", "g_vector", "ramp",
+                                                                  "support", "voxel_size", "shape", "origin"})
+    allowed |= {"grid_" + k for k in _kwargs_of(regrid.regrid, {"prepared"})}
+    _check_keys(fr, allowed, "frame", src)
+    out["frame"] = fr
+    te = dict(cfg["tensor"])
+    allowed = _TENSOR_OWN | _kwargs_of(tensor.strain_tensor, {"objects", "g_vectors", "voxel_size", "support",
+                                                              "weights", "labels", "warn"})
+    _check_keys(te, allowed, "tensor", src)
+    out["tensor"] = te
+    de = dict(cfg["defects"])
+    allowed = _DEFECTS_OWN | _kwargs_of(defects.find_dislocations, {"objects", "hkls", "g_vectors", "voxel_size",
+                                                                     "support", "crystal"})
+    _check_keys(de, allowed, "defects", src)
+    out["defects"] = de
+    ou = dict(cfg["output"])
+    _check_keys(ou, set(_OUTPUT_KEYS), "output", src)
+    for k, t in _OUTPUT_KEYS.items():
+        if k in ou and not isinstance(ou[k], t):
+            raise ConfigError(f"{src}: key 'output.{k}': value {ou[k]!r}; expected true or false")
+    out["output"] = ou
+    if len(cfg["reflection"]) < 3:
+        raise ConfigError(f"{src}: key 'reflection': {len(cfg['reflection'])} reflection(s); the strain tensor "
+                          "needs at least three non-coplanar reflections")
+    return out
+
+
+class PipelineRun:
+    """Bookkeeping of one run: checkpoints, timings, log."""
+
+    def __init__(self, out_dir, resume, log):
+        self.out = Path(out_dir)
+        self.ck = self.out / "checkpoints"
+        self.resume = resume
+        self.log = log
+        self.timings = {}
+        self.reused = []
+        self.phasing_seconds = 0.0
+
+    def path(self, stage, name, key):
+        return self.ck / f"{stage}-{name}-{key}.h5"
+
+    def cached(self, stage, name, key):
+        p = self.path(stage, name, key)
+        if self.resume and p.exists():
+            try:
+                tree, attrs = load_tree(p)
+                if attrs.get("key") == key:
+                    self.reused.append(f"{stage}:{name}")
+                    return tree
+            except (BraggStrainError, OSError):
+                pass
+        return None
+
+    def save(self, stage, name, key, tree):
+        self.ck.mkdir(parents=True, exist_ok=True)
+        save_tree(self.path(stage, name, key), tree, attrs={"key": key, "stage": stage, "name": name})
+
+    @contextlib.contextmanager
+    def timed(self, stage):
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.timings[stage] = self.timings.get(stage, 0.0) + time.perf_counter() - t0
+
+
+# ---------------------------------------------------------------------------
+# conversions between stage outputs and checkpoint trees
+# ---------------------------------------------------------------------------
+
+def _sample_to_tree(so):
+    return {"obj": so.obj, "voxel_size": so.voxel_size, "g_vector": so.g_vector, "support": so.support,
+            "origin": so.origin, "hkl": list(so.hkl) if so.hkl is not None else None, "meta": _plain(so.meta)}
+
+
+def _tree_to_sample(t):
+    return SampleObject(t["obj"], t["voxel_size"], t["g_vector"], t["support"], t["origin"],
+                        tuple(t["hkl"]) if t["hkl"] is not None else None, t.get("meta", {}))
+
+
+def _plain(v):
+    """Convert a nested structure to checkpoint-storable plain values."""
+    if isinstance(v, dict):
+        return {str(k): _plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_plain(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return v
+    if isinstance(v, (np.integer, np.floating, np.bool_)):
+        return v.item()
+    if v is None or isinstance(v, (bool, int, float, str)):
+        return v
+    if hasattr(v, "__dataclass_fields__"):
+        return {k: _plain(getattr(v, k)) for k in v.__dataclass_fields__}
+    return str(v)
+
+
+def _phase_to_tree(ens):
+    best = ens.best
+    hist = {}
+    h = best.history
+    for k in getattr(h, "__dataclass_fields__", {}):
+        val = getattr(h, k)
+        if isinstance(val, (list, np.ndarray)) and len(val) and not isinstance(val[0], str):
+            try:
+                hist[k] = np.asarray(val, dtype=float)
+            except (TypeError, ValueError):
+                pass
+    runs = []
+    for r in ens.runs:
+        m = _plain(r.metrics)
+        m.update({"run": r.run, "seed": r.seed, "status": r.status, "iterations": r.iterations,
+                  "elapsed": r.elapsed, "message": r.message})
+        runs.append(m)
+    pr = ens.prtf
+    return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
+            "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
+            "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed),
+            "prtf": {"q": np.asarray(getattr(pr, "q", []), float), "values": np.asarray(getattr(pr, "values", []), float),
+                     "resolution": float(getattr(pr, "resolution", np.nan) if getattr(pr, "resolution", None) is not None else np.nan)}}
+
+
+# ---------------------------------------------------------------------------
+# executors
+# ---------------------------------------------------------------------------
+
+@contextlib.contextmanager
+def _executor(scheduler, workers):
+    """Yield (executor, description) for the random starts."""
+    n = int(workers) if workers else (os.cpu_count() or 1)
+    if scheduler is None:
+        from concurrent.futures import ProcessPoolExecutor
+        import multiprocessing as mp
+
+        if n <= 1:
+            yield None, "in-process (1 worker)"
+            return
+        ex = ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context("spawn"))
+        try:
+            yield ex, f"local process pool ({n} workers)"
+        finally:
+            ex.shutdown(wait=True, cancel_futures=True)
+        return
+    try:
+        from dask.distributed import Client, LocalCluster
+    except ImportError:
+        raise InputError("--scheduler: dask.distributed is not installed; install the 'cluster' extra "
+                         "(pip install 'braggstrain[cluster]')") from None
+    if scheduler == "local":
+        cluster = LocalCluster(n_workers=n, threads_per_worker=1, processes=True, dashboard_address=None)
+        client = Client(cluster)
+        try:
+            yield client, f"Dask LocalCluster ({n} workers)"
+        finally:
+            client.close()
+            cluster.close()
+    else:
+        try:
+            client = Client(scheduler, timeout="20s")
+        except (OSError, TimeoutError) as e:
+            raise InputError(f"--scheduler: cannot reach the Dask scheduler at {scheduler!r} ({e})") from None
+        try:
+            yield client, f"Dask cluster at {scheduler}"
+        finally:
+            client.close()
+
+
+# ---------------------------------------------------------------------------
+# the run
+# ---------------------------------------------------------------------------
+
+def _scan_for(cfg, i, r):
+    """Read reflection i's scan: a braggstrain scan file, or a frame stack with angles."""
+    from .scanio import Scan, read_frame_stack, read_scan
+
+    src = cfg.get("_source", "<pipeline>")
+    if r["scan"] is not None:
+        p = resolve_path(cfg, r["scan"], f"reflection[{i}].scan")
+        if not p.exists():
+            raise ConfigError(f"{src}: key 'reflection[{i}].scan': file {p} not found")
+        return read_scan(p), file_digest(p)
+    if r["frames"] is None:
+        raise ConfigError(f"{src}: key 'reflection[{i}]': expected 'scan' (a scan file) or 'frames' (a frame stack)")
+    p = resolve_path(cfg, r["frames"], f"reflection[{i}].frames")
+    if not p.exists():
+        raise ConfigError(f"{src}: key 'reflection[{i}].frames': {p} not found")
+    frames = read_frame_stack(p, r["dataset"])
+    inst = build_instrument(cfg)
+    angles = {}
+    given = r["angles"] or {}
+    for c in inst.circles:
+        if c.name not in given:
+            raise ConfigError(f"{src}: key 'reflection[{i}].angles.{c.name}': missing; expected degrees or "
+                              "{start, step} for the rocked circle")
+        v = given[c.name]
+        if isinstance(v, dict):
+            if set(v) - {"start", "step"} or "start" not in v or "step" not in v:
+                raise ConfigError(f"{src}: key 'reflection[{i}].angles.{c.name}': expected {{start, step}} (degrees)")
+            angles[c.name] = v["start"] + v["step"] * np.arange(frames.shape[0])
+        elif isinstance(v, list):
+            angles[c.name] = np.asarray(v, float)
+        else:
+            angles[c.name] = float(v)
+    rock = r["rocking_circle"]
+    if rock is None:
+        raise ConfigError(f"{src}: key 'reflection[{i}].rocking_circle': expected the name of the rocked circle")
+    mask = None
+    scan = Scan(frames=frames, angles=angles, rocking_circle=rock, instrument=inst, mask=mask,
+                hkl=tuple(r["hkl"]), path=str(p))
+    digest = file_digest(p) if p.is_file() else hash_inputs(frames)
+    return scan, digest
+
+
+def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, progress=True, log=print):
+    """Run the whole pipeline of a validated pipeline dict into ``out_dir``.
+
+    Parameters
+    ----------
+    cfg : dict from :func:`braggstrain.config.load_config`
+    out_dir : output folder (created); every file is written inside it
+    resume : reuse checkpoints whose input hash matches
+    scheduler : None (local process pool), "local" (a Dask LocalCluster) or a
+        Dask scheduler address
+    workers : worker processes (default: all cores)
+    progress : tqdm bars for phasing
+    log : callable for progress lines, or None
+
+    Returns
+    -------
+    dict with the results bundle (``results``), the output paths, the
+    timings (s per stage), the wall time and the phasing share
+    """
+    from . import defects as dfx
+    from . import frame as frm
+    from . import prepare as prp
+    from . import regrid as rgd
+    from . import tensor as tns
+    from .phasing import ensemble
+
+    say = log or (lambda *a, **k: None)
+    t_start = time.perf_counter()
+    opts = check_options(cfg)
+    crystal = build_crystal(cfg)
+    src = cfg.get("_source", "<pipeline>")
+    out = Path(out_dir)
+    out.mkdir(parents=True, exist_ok=True)
+    run = PipelineRun(out, resume, say)
+    hkls = [tuple(r["hkl"]) for r in cfg["reflection"]]
+    names = [r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m") for r in cfg["reflection"]]
+    if len(set(names)) != len(names):
+        raise ConfigError(f"{src}: key 'reflection': names must be unique, got {names}")
+    g_ref = []
+    for i, h in enumerate(hkls):
+        try:
+            g_ref.append(crystal.reflection(h).g_sample)
+        except BraggStrainError as e:
+            raise ConfigError(f"{src}: key 'reflection[{i}].hkl': {e}") from None
+    g_ref = np.array(g_ref)
+    cond = tns.condition_number(g_ref)
+    max_cond = float(opts["tensor"].get("max_condition", 30.0))
+    if not np.isfinite(cond) or cond > max_cond:
+        raise ConfigError(f"{src}: key 'reflection': the reflections {hkls} are coplanar or ill-conditioned "
+                          f"(condition number {cond:.3g} > {max_cond:g}); expected three or more non-coplanar")
+    # read every scan up front, so bad input fails before any work is done
+    scans = []
+    for i, r in enumerate(cfg["reflection"]):
+        scans.append(_scan_for(cfg, i, r))
+    ph_opts = dict(opts["phasing"])
+    runs = int(ph_opts.pop("runs", 8))
+    keep = int(ph_opts.pop("keep", 4))
+    base_seed = int(ph_opts.pop("seed", 0))
+    fr_opts = dict(opts["frame"])
+    route = fr_opts.pop("route", frm.DEFAULT_ROUTE)
+    voxel_nm = fr_opts.pop("voxel_nm", None)
+    grid_opts = {k[5:]: v for k, v in fr_opts.items() if k.startswith("grid_")}
+    fr_opts = {k: v for k, v in fr_opts.items() if not k.startswith("grid_")}
+    if voxel_nm is not None:
+        fr_opts["voxel_size"] = float(voxel_nm) * 10.0
+
+    per_refl = []
+    with _executor(scheduler, workers) as (executor, where):
+        say(f"phase retrieval runs on: {where}")
+        for j, ((scan, digest), name, h) in enumerate(zip(scans, names, hkls)):
+            # -- prepare
+            k_prep = hash_inputs("prepare", digest, opts["prepare"])
+            with run.timed("prepare"):
+                pp = run.path("prepare", name, k_prep)
+                prepared = None
+                if resume and pp.exists():
+                    try:
+                        prepared = prp.read_prepared(pp)
+                        run.reused.append(f"prepare:{name}")
+                    except BraggStrainError:
+                        prepared = None
+                if prepared is None:
+                    prepared = prp.prepare_scan(scan, **opts["prepare"])
+                    run.ck.mkdir(parents=True, exist_ok=True)
+                    prp.write_prepared(prepared, pp)
+            data = prepared
+            k_data = k_prep
+            # -- grid (orthogonal route only)
+            if route == "orthogonal":
+                k_grid = hash_inputs("grid", k_prep, grid_opts)
+                with run.timed("grid"):
+                    data = rgd.regrid(prepared, **grid_opts)
+                k_data = k_grid
+            intensity = np.asarray(data.intensity, np.float32)
+            mask = np.asarray(data.mask, bool)
+            # -- phase
+            seed_j = base_seed + 7919 * j
+            k_phase = hash_inputs("phase", k_data, {k: v for k, v in cfg["phasing"].items()}, runs, keep, seed_j)
+            with run.timed("phase"):
+                tree = run.cached("phase", name, k_phase)
+                if tree is None:
+                    say(f"  {name} {h}: phasing {intensity.shape} with {runs} random starts (keep {keep})")
+                    t0 = time.perf_counter()
+                    ens = ensemble(intensity, mask, runs=runs, keep=keep, seed=seed_j, executor=executor,
+                                   progress=progress, **ph_opts)
+                    run.phasing_seconds += time.perf_counter() - t0
+                    tree = _phase_to_tree(ens)
+                    run.save("phase", name, k_phase, tree)
+            # -- sample frame
+            k_frame = hash_inputs("frame", k_phase, route, fr_opts, g_ref[j])
+            with run.timed("frame"):
+                ft = run.cached("frame", name, k_frame)
+                if ft is None:
+                    so = frm.to_sample_frame(tree["obj"], data, support=tree["support"], g_vector=g_ref[j],
+                                             ramp=tree["ramp"], **fr_opts)
+                    so.hkl = h
+                    so.meta["name"] = name
+                    ft = _sample_to_tree(so)
+                    run.save("frame", name, k_frame, ft)
+            so = _tree_to_sample(ft)
+            per_refl.append({"name": name, "hkl": h, "prepared": prepared, "phase": tree, "sample": so,
+                             "key": k_frame, "scan": str(scan.path)})
+            say(f"  {name} {h}: σ = {np.round(prepared.oversampling, 2).tolist()}, kept {len(tree['kept'])} of "
+                f"{runs} runs, sample-frame voxel {np.round(so.voxel_size / 10, 2).tolist()} nm")
+
+    # -- register
+    te_opts = dict(opts["tensor"])
+    reg_kw = {k: te_opts.pop(k) for k in ("min_overlap", "upsample", "twin_tolerance") if k in te_opts}
+    vox = te_opts.pop("voxel_nm", None)
+    if vox is not None:
+        reg_kw["voxel_size"] = float(vox) * 10.0
+    k_reg = hash_inputs("register", [p["key"] for p in per_refl], reg_kw)
+    with run.timed("register"):
+        rt = run.cached("register", "all", k_reg)
+        if rt is None:
+            reg, report = tns.register([p["sample"] for p in per_refl], return_report=True, **reg_kw)
+            rt = {"objects": [_sample_to_tree(o) for o in reg], "report": _plain(report)}
+            run.save("register", "all", k_reg, rt)
+    registered = [_tree_to_sample(t) for t in rt["objects"]]
+    common_vs = registered[0].voxel_size
+    G = np.array([o.g_vector for o in registered])
+    labels = [p["name"] for p in per_refl]
+
+    # -- tensor
+    k_ten = hash_inputs("tensor", k_reg, te_opts)
+    with run.timed("tensor"):
+        tt = run.cached("tensor", "all", k_ten)
+        if tt is None:
+            import warnings
+
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                tf = tns.strain_tensor([o.obj for o in registered], G, common_vs,
+                                       support=np.logical_and.reduce([o.support for o in registered]),
+                                       labels=labels, **te_opts)
+            for w in caught:
+                say(f"  warning: {w.message}")
+            tt = _plain(tf)
+            tt["warnings"] = [str(w.message) for w in caught]
+            run.save("tensor", "all", k_ten, tt)
+    tfield = _tree_to_tensor(tt)
+
+    # -- mean lattice from the peak positions
+    g_meas = []
+    for p in per_refl:
+        pr = p["prepared"]
+        ramp = np.asarray(p["phase"]["ramp"], float)
+        g_meas.append(pr.rotation.T @ (pr.q_center + pr.linear_map @ ramp))
+    try:
+        ml = tns.mean_lattice_strain(np.array(g_meas), g_ref, lattice_parameter=crystal.lattice_parameters[0])
+        mean_lattice = _plain(ml)
+    except TensorError as e:
+        mean_lattice = {"error": str(e)}
+
+    # -- defects
+    de_opts = dict(opts["defects"])
+    enabled = de_opts.pop("enabled", True)
+    k_def = hash_inputs("defects", k_reg, de_opts, enabled)
+    dislocations = []
+    with run.timed("defects"):
+        if enabled:
+            dt = run.cached("defects", "all", k_def)
+            if dt is None:
+                lines = dfx.find_dislocations([o.obj for o in registered], [o.hkl for o in registered], G,
+                                              common_vs, tfield.support, crystal, **de_opts)
+                dt = {"lines": [_plain(d) for d in lines]}
+                run.save("defects", "all", k_def, dt)
+            dislocations = [_tree_to_dislocation(d) for d in dt["lines"]]
+
+    # -- outputs
+    results = _bundle(cfg, crystal, per_refl, registered, rt["report"], tfield, dislocations, mean_lattice,
+                      run, base_seed, runs, keep, route)
+    paths = {}
+    with run.timed("outputs"):
+        from . import outputs as outp
+
+        ou = opts["output"]
+        wall = time.perf_counter() - t_start
+        results["provenance"]["timings"] = dict(run.timings)
+        results["provenance"]["wall_s"] = wall
+        paths["results"] = outp.write_results(out / "results.h5", results)
+        if ou.get("figures", True) or ou.get("report", True):
+            figs = outp.make_figures(results, out / "figures")
+            paths["figures"] = figs
+            if ou.get("report", True):
+                paths["report"] = outp.write_report(results, out, figures=figs)
+        if ou.get("vtk", True):
+            paths["vtk"] = outp.export_vtk(results, out / "vtk")
+        if dislocations:
+            paths["dislocations"] = dfx.write_dislocation_table(dislocations, out / "dislocations")
+    wall = time.perf_counter() - t_start
+    return {"results": results, "paths": paths, "timings": dict(run.timings), "wall_s": wall,
+            "phasing_s": run.phasing_seconds, "phasing_share": run.phasing_seconds / wall if wall else 0.0,
+            "reused": run.reused}
+
+
+def _tree_to_tensor(t):
+    from .tensor import TensorField
+
+    kw = {}
+    for k in TensorField.__dataclass_fields__:
+        if k in t:
+            v = t[k]
+            if k == "reference":
+                v = tuple(int(x) for x in v)
+            elif k == "labels":
+                v = list(v)
+            elif k in ("condition_number",):
+                v = float(v)
+            kw[k] = v
+    return TensorField(**kw)
+
+
+def _tree_to_dislocation(d):
+    from .defects import Dislocation
+
+    kw = {}
+    for k in Dislocation.__dataclass_fields__:
+        if k in d:
+            v = d[k]
+            if isinstance(v, list) and k in ("visible_in", "invisible_in"):
+                v = [tuple(x) if isinstance(x, list) else x for x in v]
+            kw[k] = v
+    return Dislocation(**kw)
+
+
+def _versions():
+    import importlib.metadata as md
+
+    out = {"python": platform.python_version()}
+    for pkg in ("braggstrain", "numpy", "scipy", "xrayutilities", "scikit-image", "h5py", "matplotlib",
+                "pyFFTW", "numba", "dask", "distributed"):
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            pass
+    return out
+
+
+def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, mean_lattice, run, seed, runs,
+            keep, route):
+    """The results bundle the outputs stage writes (see braggstrain.outputs)."""
+    vs = registered[0].voxel_size
+    support = tf.support
+    amps = []
+    refl = []
+    for p, o in zip(per_refl, registered):
+        a = np.abs(o.obj).astype(np.float32)
+        med = np.median(a[o.support]) if np.any(o.support) else 1.0
+        a = a / (med if med > 0 else 1.0)
+        amps.append(a)
+        ph = np.angle(o.obj).astype(np.float32)
+        try:
+            from .fields import displacement_along_g
+
+            disp = displacement_along_g(o.obj, o.g_vector, vs, o.support)
+            disp = np.asarray(getattr(disp, "displacement", disp), np.float32)
+        except BraggStrainError:
+            disp = np.full(o.obj.shape, np.nan, np.float32)
+        pr = p["prepared"]
+        t = p["phase"]
+        final = t["runs"][t["kept"][0]] if t["kept"] else {}
+        meta_reg = o.meta.get("registration", {}) if isinstance(o.meta, dict) else {}
+        refl.append({
+            "name": p["name"], "hkl": tuple(int(v) for v in p["hkl"]), "g_vector": o.g_vector,
+            "scan": p["scan"], "max_counts": float(pr.max_counts), "oversampling": np.asarray(pr.oversampling, float),
+            "runs": runs, "kept": len(t["kept"]), "run_metrics": t["runs"], "final_metrics": final,
+            "prtf": t["prtf"], "history": t["history"], "amplitude": a, "phase": ph, "displacement": disp,
+            "support": o.support, "shift_vox": np.asarray(meta_reg.get("shift_vox", np.zeros(3)), float),
+            "twin": bool(meta_reg.get("twin", False)), "route": route,
+        })
+    return {
+        "grid": {"voxel_size": vs, "origin": registered[0].origin, "shape": tuple(support.shape)},
+        "support": support, "amplitude": np.mean(amps, axis=0).astype(np.float32),
+        "reflections": refl, "tensor": tf, "dislocations": dislocations,
+        "registration": reg_report, "mean_lattice": mean_lattice,
+        "crystal": {"material": crystal.name, "lattice_parameters": list(crystal.lattice_parameters),
+                    "U": crystal.U},
+        "provenance": {"pipeline_text": cfg.get("_text", ""), "pipeline_file": cfg.get("_source", ""),
+                       "versions": _versions(), "seeds": {"phasing": seed, "runs": runs, "keep": keep},
+                       "timings": dict(run.timings), "reused": list(run.reused),
+                       "created": datetime.now(timezone.utc).isoformat(timespec="seconds")},
+    }
