@@ -258,6 +258,11 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
             f"objects: {J} reflection(s) {', '.join(labels)}; the strain tensor needs at least three "
             f"non-coplanar reflections")
     vs = _voxel_size(voxel_size)
+    for j, o in enumerate(objects):
+        if isinstance(o, SampleObject) and not np.allclose(o.voxel_size, vs, rtol=1e-6):
+            raise TensorError(
+                f"objects[{j}] {labels[j]}: voxel size {tuple(o.voxel_size)} Å differs from voxel_size "
+                f"{tuple(vs)} Å; expected one common grid (use register first)")
     shape = arrays[0].shape
     if support is None:
         if all(s is not None for s in sups):

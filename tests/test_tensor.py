@@ -425,6 +425,9 @@ def test_bad_input(pt, grid):
         T.strain_tensor([obj] * 3, G3, H, weights=np.ones(4))
     with pytest.raises(TensorError, match="support"):
         T.strain_tensor([obj] * 3, G3, H, support=support[:-1])
+    so = [SampleObject(obj, H, g, support, hkl=h) for g, h in zip(G3, SET3)]
+    with pytest.raises(TensorError, match=r"objects\[0\] \(1 1 1\): voxel size .* differs from voxel_size"):
+        T.strain_tensor(so, G3, 2 * H)
     with pytest.raises(TensorError, match="g_measured"):
         T.mean_lattice_strain(G3[:2], G3)
     with pytest.raises(TensorError, match="SampleObject"):
