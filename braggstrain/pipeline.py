@@ -483,7 +483,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             if dt is None:
                 lines = dfx.find_dislocations([o.obj for o in registered], [o.hkl for o in registered], G,
                                               common_vs, tfield.support, crystal, **de_opts)
-                dt = {"lines": [_plain(d) for d in lines]}
+                dt = {"lines": [_disl_to_tree(d) for d in lines]}
                 run.save("defects", "all", k_def, dt)
             dislocations = [_tree_to_dislocation(d) for d in dt["lines"]]
 
@@ -531,16 +531,44 @@ def _tree_to_tensor(t):
     return TensorField(**kw)
 
 
-def _tree_to_dislocation(d):
+def _disl_to_tree(d):
+    """A Dislocation as a checkpoint tree (hkl-keyed dicts become pair lists)."""
+    t = {}
+    for k in d.__dataclass_fields__:
+        v = getattr(d, k)
+        if k in ("windings", "agreement"):
+            v = [[list(int(x) for x in h), (None if n is None else float(n))] for h, n in v.items()]
+        elif k in ("visible_in", "invisible_in", "slip_planes"):
+            v = [list(int(x) for x in h) for h in v]
+        elif k == "ends_at_surface" and v is not None:
+            v = [bool(e) for e in v]
+        t[k] = _plain(v)
+    return t
+
+
+def _tree_to_dislocation(t):
     from .defects import Dislocation
 
     kw = {}
     for k in Dislocation.__dataclass_fields__:
-        if k in d:
-            v = d[k]
-            if isinstance(v, list) and k in ("visible_in", "invisible_in"):
-                v = [tuple(x) if isinstance(x, list) else x for x in v]
-            kw[k] = v
+        if k not in t:
+            continue
+        v = t[k]
+        if k == "windings":
+            v = {tuple(int(x) for x in h): (None if n is None else int(round(n))) for h, n in v}
+        elif k == "agreement":
+            v = {tuple(int(x) for x in h): float(n) for h, n in v}
+        elif k in ("visible_in", "invisible_in", "slip_planes"):
+            v = [tuple(int(x) for x in h) for h in v]
+        elif k == "ends_at_surface" and v is not None:
+            v = tuple(bool(e) for e in v)
+        elif k in ("points", "directions", "local_character_deg"):
+            v = np.asarray(v, float)
+        elif k in ("burgers", "burgers_sample", "burgers_fit") and v is not None:
+            v = np.asarray(v, float)
+        elif k == "notes":
+            v = list(v)
+        kw[k] = v
     return Dislocation(**kw)
 
 

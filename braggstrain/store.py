@@ -142,7 +142,14 @@ def _canon(v):
     return _jsonable(v)
 
 
+#: bump when the content or layout of any stage checkpoint changes
+CHECKPOINT_FORMAT = 2
+
+
 def hash_inputs(*parts):
-    """A short stable hash of stage inputs (dicts, lists, arrays, numbers)."""
-    text = json.dumps(_canon(list(parts)), sort_keys=True, default=str)
+    """A short stable hash of stage inputs (dicts, lists, arrays, numbers),
+    including the checkpoint format and the package version."""
+    from . import __version__
+
+    text = json.dumps(_canon([CHECKPOINT_FORMAT, __version__, *parts]), sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:16]

@@ -26,7 +26,7 @@ detector_circles = [{{ name = "nu", axis = "z-" }}, {{ name = "delta", axis = "x
 [instrument.detector]
 shape = [96, 96]
 pixel_size_um = [75.0, 75.0]
-distance_m = 0.5
+distance_m = 0.25
 direct_beam = [48.0, 48.0]
 gaps = [[1, 70, 72]]
 
@@ -40,7 +40,7 @@ hot_pixels = 3
 frames = {frames}
 window = [{window}, {window}]
 rocking_circle = "eta"
-rocking_q_step = 1.2e-3
+rocking_q_step = 1.4e-3
 free_circles = ["eta", "chi", "phi", "delta"]
 fixed_angles = {{ nu = 0.0 }}
 truth_voxel_nm = 10.0
@@ -62,7 +62,7 @@ burgers = [0.0, 0.5, -0.5]
 """
 
 
-def small_toml(hkls=((1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2)), frames=32, window=32, extra=""):
+def small_toml(hkls=((1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2)), frames=48, window=48, extra=""):
     refl = "\n".join(f'[[reflection]]\nname = "r{i}"\nhkl = [{h[0]}, {h[1]}, {h[2]}]\nscan = "scans/r{i}.h5"\n'
                      for i, h in enumerate(hkls))
     return SMALL_TOML.format(reflections=refl, frames=frames, window=window, extra=extra)

@@ -29,7 +29,7 @@ def test_demo_pipeline_is_valid():
     (lambda t: t.replace("energy_kev = 9.0", "energy_kev = 9.0\nenergy_kv = 9.0"), "did you mean 'energy_kev'"),
     (lambda t: t.replace("energy_kev = 9.0", 'energy_kev = "nine"'), "instrument.energy_kev"),
     (lambda t: t.replace('material = "Pt"', 'material = "Unobtainium"'), "crystal"),
-    (lambda t: t.replace("distance_m = 0.5", "distance_m = -0.5"), "instrument.detector.distance_m"),
+    (lambda t: t.replace("distance_m = 0.25", "distance_m = -0.25"), "instrument.detector.distance_m"),
     (lambda t: t.replace("hkl = [1, 1, 1]", "hkl = [1, 1]"), "reflection[0].hkl"),
     (lambda t: t.replace('axis = "x+"', 'axis = "q+"', 1), "sample_circles[0].axis"),
 ])
@@ -55,7 +55,7 @@ def test_simulate_and_inspect(tmp_path, small_config, capsys):
     scans = sorted((out / "scans").glob("*.h5"))
     assert len(scans) == 4 and (out / "truth.h5").exists() and (out / "pipeline.toml").exists()
     s = read_scan(scans[0])
-    assert s.frames.shape == (32, 96, 96) and s.hkl == (1, 1, 1)
+    assert s.frames.shape == (48, 96, 96) and s.hkl == (1, 1, 1)
     assert main(["inspect", str(scans[0])]) == 0
     text = capsys.readouterr().out
     assert "max counts" in text and "eta" in text
