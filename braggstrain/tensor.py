@@ -263,6 +263,11 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
             raise TensorError(
                 f"objects[{j}] {labels[j]}: voxel size {tuple(o.voxel_size)} Å differs from voxel_size "
                 f"{tuple(vs)} Å; expected one common grid (use register first)")
+        if (isinstance(o, SampleObject) and isinstance(objects[0], SampleObject)
+                and not np.allclose(o.origin, objects[0].origin, atol=1e-6 * float(vs.min()))):
+            raise TensorError(
+                f"objects[{j}] {labels[j]}: origin {tuple(o.origin)} Å differs from objects[0] "
+                f"{tuple(objects[0].origin)} Å; expected one common grid (use register first)")
     shape = arrays[0].shape
     if support is None:
         if all(s is not None for s in sups):
@@ -533,7 +538,7 @@ def _displacement(arrays, G, vs, support, weights, ref, D0=None, tol=np.pi / 4):
     return out.reshape((3,) + support.shape)
 
 
-def _branch_correction(ph, w, G, Minv, tol, block=4096):
+def _branch_correction(ph, w, G, Minv, tol, max_reflections=8):
     """Re-solve voxels whose unwrapped phases disagree, allowing 2π·k_j.
 
     Each reflection's unwrapping puts its cuts (around dislocations) in its
@@ -546,7 +551,10 @@ def _branch_correction(ph, w, G, Minv, tol, block=4096):
     Volterra cut itself.
     """
     J = len(G)
+    if J > max_reflections:  # 3^J branch combinations: too many to try
+        return np.full((len(ph), 3), np.nan), np.zeros(len(ph), bool)
     K = np.array(list(itertools.product((-1, 0, 1), repeat=J)), float)  # (C, J)
+    block = max(16, int(2_000_000 // (len(K) * J)))  # bounds memory to ~100 MB
     nk = np.sum(np.abs(K), axis=1)
     u_out = np.full((len(ph), 3), np.nan)
     ok_out = np.zeros(len(ph), bool)
