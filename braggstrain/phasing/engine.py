@@ -23,7 +23,7 @@ from .coherence import CoherenceModel, CoherenceSettings
 from .fft import FFTBackend, _check_threads
 from .metrics import centre_of_mass_shift, peak_offset, remove_phase_ramp, sharpness
 from .plan import Stage, default_plan, plan_from_config
-from .support import autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
+from .support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
 
 __all__ = [
     "reconstruct",
@@ -150,6 +150,9 @@ class Reconstruction:
     elapsed : float
         Wall time of the run (s).
     plan : list of Stage
+    timings : dict
+        Wall time (s) of ``setup`` (plans, start), ``iterations`` (the loop)
+        and ``finish`` (final figures, centring).
     """
 
     obj: np.ndarray
@@ -169,6 +172,7 @@ class Reconstruction:
     threads: int
     elapsed: float
     plan: list = field(default_factory=list)
+    timings: dict = field(default_factory=dict)
 
     @property
     def ok(self) -> bool:
@@ -192,9 +196,8 @@ class _Data:
     """Validated data in FFT order, shared by all runs of an ensemble."""
 
     shape: tuple
-    amp: np.ndarray          # float32 flat, sqrt(I); -1 where not constrained
+    amp: np.ndarray          # float32 flat, sqrt(I), mask and free set folded in (projections)
     free_idx: np.ndarray     # int64 flat indices of held-out voxels
-    free_amp: np.ndarray     # float32 sqrt(I) there
     lgamma: float            # sum ln Gamma(I+1) over constrained voxels
     free_lgamma: float
     n_constrained: int
@@ -279,7 +282,8 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
     meas_f = scipy.fft.ifftshift(measured)
     del data
 
-    ratios = estimate_oversampling(data_f, meas_f, threads=threads)
+    ac = autocorrelation(data_f, meas_f, threads=threads)
+    ratios = estimate_oversampling(data_f, meas_f, threads=threads, ac=ac)
     for axis, r in enumerate(ratios):
         if r < 2:
             warnings.warn(f"intensity: oversampling along axis {axis} is about {r:.2f} (< 2 needed "
@@ -288,7 +292,7 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
                           stacklevel=3)
 
     if support is None:
-        sup_f = autocorrelation_support(data_f, meas_f, initial_threshold, threads=threads)
+        sup_f = autocorrelation_support(data_f, meas_f, initial_threshold, threads=threads, ac=ac)
         frac = sup_f.mean()
         if frac > 0.5:
             raise PhasingError(f"initial support: the thresholded autocorrelation covers "
@@ -307,39 +311,63 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
             raise InputError(f"support: covers {100 * frac:.1f}% of the array; expected at most 50% "
                              f"(a support larger than half the array cannot be oversampled)")
         sup_f = scipy.fft.ifftshift(sup)
+    del ac
 
     # Free (held-out) voxels: a fixed random set given the seed, the same for
     # every run of an ensemble; the few voxels around the peak stay constrained.
     free_rng = np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(1,)))
     meas_flat = meas_f.reshape(-1)
-    grids = np.meshgrid(*[np.minimum(np.arange(n), n - np.arange(n)) for n in shape], indexing="ij")
-    near_peak = (sum(g.astype(np.int64) ** 2 for g in grids) <= 4).reshape(-1)
-    candidates = np.flatnonzero(meas_flat & ~near_peak)
+    near_peak = _near_origin_indices(shape, radius2=4)
+    candidates = np.flatnonzero(meas_flat)
+    candidates = candidates[~np.isin(candidates, near_peak)]
     n_free = int(round(free_fraction * meas_flat.sum()))
     free_idx = np.sort(free_rng.choice(candidates, size=min(n_free, candidates.size), replace=False))
+    del candidates
 
-    inten = data_f.reshape(-1)
-    amp = np.sqrt(inten)
+    amp = data_f.reshape(-1)  # data_f is our own float32 copy: reuse it in place
+    np.sqrt(amp, out=amp)
     amp[~meas_flat] = -1.0
     free_amp = amp[free_idx].copy()
-    amp[free_idx] = -1.0
-    constrained = amp >= 0
-    i_con = inten[constrained].astype(np.float64)
-    i_free = inten[free_idx].astype(np.float64)
+    amp[free_idx] = _k.encode_free(free_amp)
+    n_con, sum_i, lgam = _constrained_sums(amp)
+    i_free = free_amp.astype(np.float64) ** 2
     return _Data(
         shape=shape,
-        amp=np.ascontiguousarray(amp, dtype=np.float32),
+        amp=amp,
         free_idx=free_idx.astype(np.int64),
-        free_amp=free_amp.astype(np.float32),
-        lgamma=float(gammaln(i_con + 1).sum()),
+        lgamma=lgam,
         free_lgamma=float(gammaln(i_free + 1).sum()),
-        n_constrained=int(constrained.sum()),
-        sum_i=float(i_con.sum()),
+        n_constrained=n_con,
+        sum_i=sum_i,
         free_sum_i=float(i_free.sum()),
         support0=np.ascontiguousarray(sup_f.reshape(-1)),
         ramp=ramp,
         seed=seed,
     )
+
+
+def _near_origin_indices(shape, radius2):
+    """Flat FFT-order indices of the voxels within sqrt(radius2) of the origin."""
+    r = int(np.floor(np.sqrt(radius2)))
+    d = np.arange(-r, r + 1)
+    g = np.stack(np.meshgrid(d, d, d, indexing="ij"), axis=-1).reshape(-1, 3)
+    g = g[(g ** 2).sum(axis=1) <= radius2]
+    return np.ravel_multi_index(tuple((g % np.asarray(shape)).T), shape)
+
+
+def _constrained_sums(amp, chunk=1 << 20):
+    """Count, sum I and sum ln Gamma(I + 1) over constrained voxels, in chunks (little memory)."""
+    n = 0
+    total = 0.0
+    lg = 0.0
+    for start in range(0, amp.size, chunk):
+        a = amp[start:start + chunk]
+        a = a[a >= 0].astype(np.float64)
+        i = a * a
+        n += a.size
+        total += float(i.sum())
+        lg += float(gammaln(i + 1.0).sum())
+    return n, total, lg
 
 
 def _fit_background(model, amp, current):
@@ -398,11 +426,12 @@ def _iterate(data, stages, opts, run, rng, t0):
 
     # Random start: measured moduli with random phases, back in real space,
     # restricted to the support (common practice, no source).
-    phases = rng.uniform(0.0, 2.0 * np.pi, size=n_vox).astype(np.float32)
-    start_amp = np.where(amp > 0, amp, np.float32(0))
-    start_amp[data.free_idx] = data.free_amp
-    bflat[:] = start_amp * np.exp(1j * phases).astype(np.complex64)
-    del phases, start_amp
+    bflat.real = _k.decode_amplitude(amp)
+    bflat.imag = 0
+    phases = rng.random(n_vox, dtype=np.float32)
+    phases *= np.float32(2.0 * np.pi)
+    bflat *= np.exp(1j * phases)
+    del phases
     fft.backward()
     x = np.empty(n_vox, dtype=np.complex64)
     x[:] = bflat * inv_n
@@ -424,28 +453,54 @@ def _iterate(data, stages, opts, run, rng, t0):
     stage_hist = np.zeros(total, dtype=np.int16)
     ck_it, ck_nll, ck_free, ck_bg = [], [], [], []
     n_free = data.free_idx.size
-    free_vals = np.empty(n_free, dtype=np.complex64)
-    free_mod = np.empty(n_free, dtype=np.float32)
     sum_i = max(data.sum_i, 1e-300)
     free_sum_i = max(data.free_sum_i, 1e-300)
+    nan = float("nan")
 
-    def free_metrics(with_nll, model_vals=None):
-        if n_free == 0:
-            return float("nan"), float("nan")
-        np.take(bflat, data.free_idx, out=free_vals)
-        np.abs(free_vals, out=free_mod)
-        e = float(((free_mod - data.free_amp).astype(np.float64) ** 2).sum() / free_sum_i)
-        if not with_nll:
-            return e, float("nan")
-        ic = (free_mod.astype(np.float64) ** 2 if model_vals is None
-              else model_vals.astype(np.float64)) + float(background)
-        ic = np.maximum(ic, 1e-30)
-        i = data.free_amp.astype(np.float64) ** 2
-        nll = float((ic - i * np.log(ic)).sum() + data.free_lgamma) / n_free
-        return e, nll
+    def poisson(sums):
+        s_con, s_free = sums
+        nll = (s_con + data.lgamma) / data.n_constrained
+        fnll = (s_free + data.free_lgamma) / n_free if n_free else nan
+        return nll, fnll
+
+    def figures(checkpoint, it_now):
+        """Forward-transformed iterate in bflat -> (err, free_err) after the modulus step."""
+        nonlocal background
+        if needs_model:
+            _k.intensity_of(bflat, model)
+            if (checkpoint and coh is not None and it_now is not None and stage_coh
+                    and it_now >= opts.coherence.start):
+                coh.update(model, intensity, constrained, float(background))
+            if checkpoint and bg_mode == "fit" and it_now:
+                if coh is not None:
+                    blurred = coh.blur(model.copy())
+                    background = np.float32(_fit_background(blurred, amp, background))
+                    del blurred
+                else:
+                    background = np.float32(_fit_background(model, amp, background))
+            if coh is not None:
+                coh.blur(model)
+            if checkpoint:
+                record(poisson(_k.poisson_sum_model(model, amp, background)), it_now)
+            return _k.modulus_step_model(bflat, amp, model, background, inv_n)
+        if checkpoint:
+            record(poisson(_k.poisson_sum_field(bflat, amp, background)), it_now)
+        return _k.modulus_step(bflat, amp, inv_n)
+
+    last = {}
+
+    def record(nlls, it_now):
+        last["nll"], last["free_nll"] = nlls
+        if it_now is not None:
+            ck_it.append(it_now)
+            ck_nll.append(nlls[0])
+            ck_free.append(nlls[1])
+            ck_bg.append(float(background))
 
     status, message = STATUS_OK, ""
     it_global = 0
+    stage_coh = False
+    t_loop = time.perf_counter()
     bar = tqdm(total=total, disable=not opts.progress, unit="it", leave=False)
     try:
         for si, stage in enumerate(stages):
@@ -454,45 +509,15 @@ def _iterate(data, stages, opts, run, rng, t0):
             every = stage.update_every
             n_updates = max(stage.iterations // every, 1)
             s0, s1 = stage.sigma
+            stage_coh = stage.coherence_update
             k_update = 0
             sup_size = int(support.sum())
             for it in range(stage.iterations):
-                checkpoint = it % every == 0
                 fft.forward()
-                if needs_model:
-                    _k.intensity_of(bflat, model)
-                    if (checkpoint and coh is not None and stage.coherence_update
-                            and it_global >= opts.coherence.start):
-                        coh.update(model, intensity, constrained, float(background))
-                    if checkpoint and bg_mode == "fit" and it_global > 0:
-                        if coh is not None:
-                            blurred = coh.blur(model.copy())
-                            background = np.float32(_fit_background(blurred, amp, background))
-                            del blurred
-                        else:
-                            background = np.float32(_fit_background(model, amp, background))
-                    if coh is not None:
-                        coh.blur(model)
-                    mvals = model[data.free_idx] if (checkpoint and n_free) else None
-                    fe, fnll = free_metrics(checkpoint, mvals if coh is not None else None)
-                    if checkpoint:
-                        s = _k.poisson_sum_model(model, amp, background)
-                        ck_it.append(it_global)
-                        ck_nll.append((s + data.lgamma) / data.n_constrained)
-                        ck_free.append(fnll)
-                        ck_bg.append(float(background))
-                    err = _k.modulus_step_model(bflat, amp, model, background, inv_n)
-                else:
-                    fe, fnll = free_metrics(checkpoint)
-                    if checkpoint:
-                        s = _k.poisson_sum_field(bflat, amp, background)
-                        ck_it.append(it_global)
-                        ck_nll.append((s + data.lgamma) / data.n_constrained)
-                        ck_free.append(fnll)
-                        ck_bg.append(float(background))
-                    err = _k.modulus_step(bflat, amp, inv_n)
+                err, ferr = figures(it % every == 0, it_global)
                 amp_err[it_global] = err / sum_i
-                free_err[it_global] = fe
+                if n_free:
+                    free_err[it_global] = ferr / free_sum_i
                 fft.backward()
                 _k.support_step(x, bflat, support, code, beta)
                 sup_hist[it_global] = sup_size
@@ -528,20 +553,13 @@ def _iterate(data, stages, opts, run, rng, t0):
         bar.close()
 
     # Final object: the iterate restricted to the support, and its figures.
+    t_finish = time.perf_counter()
     x[~support] = 0
     bflat[:] = x
     fft.forward()
-    if needs_model:
-        _k.intensity_of(bflat, model)
-        if coh is not None:
-            coh.blur(model)
-        nll = (_k.poisson_sum_model(model, amp, background) + data.lgamma) / data.n_constrained
-        fe, fnll = free_metrics(True, model[data.free_idx] if coh is not None and n_free else None)
-        err = _k.modulus_step_model(bflat, amp, model, background, inv_n)
-    else:
-        nll = (_k.poisson_sum_field(bflat, amp, background) + data.lgamma) / data.n_constrained
-        fe, fnll = free_metrics(True)
-        err = _k.modulus_step(bflat, amp, inv_n)
+    err, ferr = figures(True, None)
+    nll, fnll = last["nll"], last["free_nll"]
+    fe = ferr / free_sum_i if n_free else nan
 
     obj = scipy.fft.fftshift(x.reshape(shape))
     sup = scipy.fft.fftshift(support.reshape(shape))
@@ -573,7 +591,9 @@ def _iterate(data, stages, opts, run, rng, t0):
         coherence_kernel=None if coh is None else coh.kernel.copy(),
         coherence_sigma=None if coh is None else coh.sigma,
         fft_backend=fft.name, threads=opts.threads, elapsed=time.perf_counter() - t0,
-        plan=list(stages))
+        plan=list(stages),
+        timings={"setup": t_loop - t0, "iterations": t_finish - t_loop,
+                 "finish": time.perf_counter() - t_finish})
 
 
 def _stages(plan):

@@ -12,10 +12,16 @@ two FFTs:
 2. :func:`support_step`: the real-space update of ER, HIO or RAAR, which also
    copies the new iterate into the FFT buffer for the next forward transform.
 
-The measured amplitude ``amp`` has the mask folded in: ``amp < 0`` marks a
-voxel that is not measured (detector gap, hot pixel, beam stop) or held out
-for the free log-likelihood; the modulus projection leaves such voxels free
-(only the ``1/N`` scale is applied).
+The measured amplitude ``amp`` has the mask and the free set folded in:
+
+- ``amp >= 0``: a constrained voxel of measured amplitude ``amp = sqrt(I)``;
+- ``amp == -1`` (any value in [-1.5, 0)): not measured (detector gap, hot
+  pixel, beam stop);
+- ``amp <= -2``: held out for the free log-likelihood, with measured
+  amplitude ``-2 - amp`` (see :func:`encode_free`).
+
+The modulus projection leaves the last two kinds free (only the ``1/N``
+scale is applied), and the free misfit is summed in the same pass.
 
 Formulas (METHODS.md; Fienup, Appl. Opt. 21, 2758 (1982); Luke, Inverse
 Problems 21, 37 (2005)), with ``p = P_M x`` the modulus-projected iterate and
@@ -47,11 +53,28 @@ __all__ = [
     "gaussian_multiply",
     "threshold_real",
     "warm_up",
+    "encode_free",
+    "decode_amplitude",
 ]
 
 ALGORITHM_CODES = {"ER": 0, "HIO": 1, "RAAR": 2}
 
-_JIT = dict(parallel=True, cache=True, nogil=True)
+# 'reassoc' lets the reductions vectorise; no 'nnan'/'ninf', so a diverging
+# run still shows up as a NaN or inf misfit.
+_FAST = {"reassoc", "contract", "arcp", "nsz"}
+_JIT = dict(parallel=True, cache=True, nogil=True, fastmath=_FAST)
+FREE_OFFSET = np.float32(2.0)
+
+
+def encode_free(amplitude):
+    """Folded value of a held-out voxel of measured amplitude ``amplitude``."""
+    return -FREE_OFFSET - np.asarray(amplitude, dtype=np.float32)
+
+
+def decode_amplitude(amp):
+    """Measured amplitude of every voxel (constrained or held out); 0 where unmeasured."""
+    return np.where(amp >= 0, amp, np.where(amp <= -FREE_OFFSET, -FREE_OFFSET - amp, 0)).astype(
+        np.float32)
 _TINY = 1e-30
 
 
@@ -70,14 +93,19 @@ def modulus_step(psi, amp, scale):
 
     Returns
     -------
-    float
-        Sum over constrained voxels of (|psi| - amp)^2.
+    err, free_err : float
+        Sums of (|psi| - amp)^2 over the constrained and over the held-out
+        voxels.
     """
     err = 0.0
+    ferr = 0.0
     for i in prange(psi.size):
         a = amp[i]
         z = psi[i]
         if a < 0:
+            if a <= -2.0:
+                d = math.sqrt(z.real * z.real + z.imag * z.imag) - (-2.0 - a)
+                ferr += d * d
             psi[i] = z * scale
         else:
             m = math.sqrt(z.real * z.real + z.imag * z.imag)
@@ -87,7 +115,7 @@ def modulus_step(psi, amp, scale):
                 psi[i] = z * np.float32(a * scale / m)
             else:
                 psi[i] = np.complex64(a * scale)
-    return err
+    return err, ferr
 
 
 @njit(**_JIT)
@@ -101,14 +129,18 @@ def modulus_step_model(psi, amp, model, background, scale):
 
     Returns
     -------
-    float
-        Sum over constrained voxels of (sqrt(model + b) - amp)^2.
+    err, free_err : float
+        Sums of (sqrt(model + b) - amp)^2 over constrained and held-out voxels.
     """
     err = 0.0
+    ferr = 0.0
     for i in prange(psi.size):
         a = amp[i]
         z = psi[i]
         if a < 0:
+            if a <= -2.0:
+                d = math.sqrt(max(model[i] + background, 0.0)) - (-2.0 - a)
+                ferr += d * d
             psi[i] = z * scale
         else:
             m = model[i] + background
@@ -120,7 +152,7 @@ def modulus_step_model(psi, amp, model, background, scale):
             else:
                 err += a * a
                 psi[i] = np.complex64(a * scale)
-    return err
+    return err, ferr
 
 
 @njit(**_JIT)
@@ -156,31 +188,42 @@ def intensity_of(psi, out):
 
 @njit(**_JIT)
 def poisson_sum_field(psi, amp, background):
-    """Sum over constrained voxels of I_c - I ln I_c with I_c = |psi|^2 + b.
+    """Sums of I_c - I ln I_c, I_c = |psi|^2 + b, over constrained and held-out voxels.
 
     The ln Gamma(I + 1) term of the Poisson negative log-likelihood does not
     depend on the model and is added by the caller.
     """
     s = 0.0
+    sf = 0.0
     for i in prange(psi.size):
         a = amp[i]
         if a >= 0:
             z = psi[i]
             ic = max(z.real * z.real + z.imag * z.imag + background, _TINY)
             s += ic - a * a * math.log(ic)
-    return s
+        elif a <= -2.0:
+            z = psi[i]
+            f = -2.0 - a
+            ic = max(z.real * z.real + z.imag * z.imag + background, _TINY)
+            sf += ic - f * f * math.log(ic)
+    return s, sf
 
 
 @njit(**_JIT)
 def poisson_sum_model(model, amp, background):
     """As :func:`poisson_sum_field` with I_c = model + b."""
     s = 0.0
+    sf = 0.0
     for i in prange(model.size):
         a = amp[i]
         if a >= 0:
             ic = max(model[i] + background, _TINY)
             s += ic - a * a * math.log(ic)
-    return s
+        elif a <= -2.0:
+            f = -2.0 - a
+            ic = max(model[i] + background, _TINY)
+            sf += ic - f * f * math.log(ic)
+    return s, sf
 
 
 @njit(**_JIT)
