@@ -687,11 +687,11 @@ def _ring_windings(fields, trust, centers_idx, dirs_A, radii_A, vs):
             if not ok[s].all():
                 continue
             zz = z[s]
+            # wrapped steps round a closed ring sum to 2π × an integer exactly
             steps = np.angle(np.roll(zz, -1) * np.conj(zz))
-            w = steps.sum() / (2 * np.pi)
-            if abs(w - np.rint(w)) > 0.25 or np.abs(steps).max() > 0.75 * np.pi:
-                continue  # ring too coarse for the local phase gradient
-            vals.append(int(np.rint(w)))
+            if np.abs(steps).max() > 0.75 * np.pi:
+                continue  # ring too coarse for the local phase gradient: a step may have wrapped
+            vals.append(int(np.rint(steps.sum() / (2 * np.pi))))
         out.append(np.asarray(vals, int))
     return out
 
@@ -959,7 +959,11 @@ def _describe(path, pts_A, dirs, closed, length, fields, trust, hk, U, crystal, 
                     agreement=agreement, visible_in=visible, invisible_in=invisible,
                     local_character_deg=np.full(len(pts_A), np.nan), ends_at_surface=ends, notes=notes)
     if b is None:
-        if len(measured) < 3:
+        if len(hk) < 3:
+            why = f"only {len(hk)} reflection(s) were given"
+        elif not solvable:
+            why = "the reflections given are coplanar"
+        elif len(measured) < 3:
             why = f"only {len(measured)} reflection(s) have a trusted winding around this line"
         else:
             why = "the reflections with a trusted winding around this line are coplanar"

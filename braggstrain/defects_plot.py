@@ -105,17 +105,16 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
         known = ch.size == len(p) and np.all(np.isfinite(ch))
         if known:
             c = 0.5 * (ch[:-1] + ch[1:])
-            lc = Line3DCollection(segs, colors=cm(norm(c)), linewidths=3.0)
-        else:
-            lc = Line3DCollection(segs, colors="k", linewidths=2.0, linestyles="dashed")
-        ax.add_collection3d(lc)
+            ax.add_collection3d(Line3DCollection(segs, colors=cm(norm(c)), linewidths=3.0))
+        else:  # one polyline, so that the dashes show
+            ax.plot(p[:, 0], p[:, 1], p[:, 2], color="k", lw=2.0, ls="--")
         mid = p[len(p) // 2]
         label = f"{k + 1}"
         ax.text(mid[0], mid[1], mid[2], f"  {label}", fontsize=10, weight="bold")
-        b = format_lattice_vector(d.burgers) if d.burgers is not None else "b unknown"
-        desc = f"{label}: b = {b}"
         if d.burgers is not None:
-            desc += f", {d.character} ({d.character_deg:.0f}°)"
+            desc = f"{label}: b = {format_lattice_vector(d.burgers)}, {d.character} ({d.character_deg:.0f}°)"
+        else:
+            desc = f"{label}: b unknown (windings only)"
         desc += ", loop" if d.closed else ""
         handles.append(Line2D([0], [0], color=cm(norm(d.character_deg)) if known else "k",
                               lw=3 if known else 2, ls="-" if known else "--", label=desc))
@@ -144,7 +143,9 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
     cb.set_ticks([0, 30, 60, 90])
     ax.legend(handles=handles, loc="upper left", fontsize=8, frameon=True, bbox_to_anchor=(-0.05, 1.02))
     n = len(lines)
-    ax.set_title(title or f"{n} dislocation line{'s' if n != 1 else ''} (sample frame)", pad=18)
+    default = (f"{n} dislocation line{'s' if n != 1 else ''} (sample frame)" if n
+               else "no dislocation line found (sample frame)")
+    ax.set_title(title or default, pad=18)
     if path is not None:
         _save_atomic(fig, path, dpi)
     return fig

@@ -388,7 +388,7 @@ def test_phase_retrieval_reconstructions_give_no_false_lines():
         obj = fw.complex_object(sup, field.displacement(coords), g)
         inten = np.abs(fw.far_field(obj)) ** 2
         counts = rng.poisson(inten / inten.max() * 1e5).astype(float)
-        rec = phasing.reconstruct(counts, seed=1)
+        rec = phasing.reconstruct(counts, seed=1, threads=1)
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", BurgersWarning)  # one reflection: b unknown by design
             lines = find_dislocations([rec.obj], [h], [g], vs, rec.support, cr)
@@ -564,3 +564,7 @@ def test_figure_is_written(loop_and_lines, tmp_path):
     assert "screw" in fig.axes[1].get_ylabel()  # the colour bar of the character
     assert sorted(os.listdir(tmp_path)) == ["lines.png"]
     assert isinstance(lines[0], Dislocation)
+    empty = plot_dislocations([], sup, VS, tmp_path / "none.png")
+    assert "no dislocation line" in empty.axes[0].get_title()
+    with pytest.raises(InputError, match="Dislocation"):
+        plot_dislocations([{"points": []}], sup, VS)
