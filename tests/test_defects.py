@@ -267,6 +267,8 @@ def loop_and_lines():
 
 
 def test_loop_and_two_lines_count_and_burgers(loop_and_lines):
+    # Loop: solid-angle field u = bΩ/4π (Hirth & Lothe ch. 4); lines: Volterra
+    # fields (ch. 3); a glide loop's b lies in its {111} plane (Hull & Bacon ch. 3).
     lines, truth, sup, cr, *_ = loop_and_lines
     assert len(lines) == 3
     loops = [d for d in lines if d.closed]
@@ -292,6 +294,8 @@ def test_loop_and_two_lines_count_and_burgers(loop_and_lines):
 
 
 def test_sample_objects_are_accepted(loop_and_lines):
+    # Same data as SampleObjects (hkl, G, voxel size, support carried along)
+    # must give the same lines: an API consistency check, no outside source.
     lines, _, sup, cr, objs, hkls, gs = loop_and_lines
     so = [SampleObject(o, VS, g, sup, hkl=h) for o, g, h in zip(objs, gs, hkls)]
     again = find_dislocations(so, crystal=cr)
@@ -402,7 +406,7 @@ def test_phase_retrieval_reconstructions_give_no_false_lines():
 # too few reflections, bad input
 # --------------------------------------------------------------------------
 
-def test_two_reflections_report_lines_with_unknown_burgers(straight_cases):
+def test_two_reflections_report_lines_with_unknown_burgers(straight_cases, tmp_path):
     _, p0, xi, _, sup, cr = straight_cases["mixed"]
     hk = [(-1, 1, 1), (2, 0, 0)]
     gs = [cr.g_sample(h) for h in hk]
@@ -416,6 +420,14 @@ def test_two_reflections_report_lines_with_unknown_burgers(straight_cases):
     s = np.sign(np.mean(d.directions @ xi))
     assert d.windings == {h: -round(s * np.dot(h, B_TRUE)) for h in hk}
     assert any("Burgers vector unknown" in n for n in d.notes)
+    # an unknown b survives the results file and the table
+    with h5py.File(tmp_path / "res.h5", "w") as f:
+        write_dislocations_h5(f.create_group("dislocations"), lines)
+    with h5py.File(tmp_path / "res.h5", "r") as f:
+        (back,) = read_dislocations_h5(f["dislocations"])
+    assert back.burgers is None and back.slip_planes == [] and back.windings == d.windings
+    rec = json.load(open(write_dislocation_table(lines, tmp_path / "l.json"), encoding="utf-8"))["lines"][0]
+    assert rec["burgers_lattice"] is None and rec["character"] == "unknown"
 
 
 def test_coplanar_reflections_warn(straight_cases):
@@ -440,6 +452,7 @@ def small_case():
 
 
 def test_unregistered_objects_raise(small_case):
+    # Input handling (the bad-input check), no outside source.
     cr, sup, gs, objs = small_case
     cropped = [objs[0], objs[1][:-2], objs[2], objs[3]]
     with pytest.raises(InputError, match=r"objects\[1\].*not registered onto one grid"):
@@ -454,6 +467,7 @@ def test_unregistered_objects_raise(small_case):
 
 
 def test_bad_arguments_raise(small_case):
+    # Input handling: each error names the argument; no outside source.
     cr, sup, gs, objs = small_case
     with pytest.raises(InputError, match="g_vectors.*does not match"):
         find_dislocations(objs, HKLS, gs[::-1], VS, sup, cr)
@@ -501,6 +515,8 @@ def test_orientation_matches_scipy_align_vectors():
 
 
 def test_format_lattice_vector():
+    # Crystallographic notation of directions, e.g. ½[1 -1 0] written 1/2[1 -1 0]
+    # (common practice, no source).
     assert format_lattice_vector([0.5, -0.5, 0.0]) == "1/2[1 -1 0]"
     assert format_lattice_vector([1.0, 0.0, 0.0]) == "[1 0 0]"
     assert format_lattice_vector([0.5, 0.5, 0.5]) == "1/2[1 1 1]"
@@ -511,6 +527,7 @@ def test_format_lattice_vector():
 # --------------------------------------------------------------------------
 
 def test_table_csv_json_and_h5_round_trip(loop_and_lines, tmp_path):
+    # Round trip through the standard-library csv/json readers and h5py.
     lines = loop_and_lines[0]
     csv_path = write_dislocation_table(lines, tmp_path / "lines.csv")
     json_path = write_dislocation_table(lines, tmp_path / "lines.json")
@@ -542,6 +559,7 @@ def test_table_csv_json_and_h5_round_trip(loop_and_lines, tmp_path):
 
 
 def test_table_rejects_bad_paths(loop_and_lines, tmp_path):
+    # Input handling, no outside source.
     lines = loop_and_lines[0]
     with pytest.raises(InputError, match=r"\.csv or \.json"):
         write_dislocation_table(lines, tmp_path / "lines.txt")
@@ -552,6 +570,7 @@ def test_table_rejects_bad_paths(loop_and_lines, tmp_path):
 
 
 def test_figure_is_written(loop_and_lines, tmp_path):
+    # PNG signature from the PNG specification (ISO/IEC 15948, section 5.2).
     from braggstrain.defects_plot import plot_dislocations
 
     lines, _, sup, *_ = loop_and_lines
