@@ -93,7 +93,7 @@ def bunge_matrix(euler_deg):
     return rz(p2) @ rx(P) @ rz(p1)
 
 
-def mounting_matrix(spec, key="crystal.orientation.mounting"):
+def mounting_matrix(spec, key="plan.orientation.mounting"):
     """Rotation M (specimen → sample frame) from the mounting in the pipeline file.
 
     Parameters
@@ -175,7 +175,7 @@ def _measured_direction(instrument, m, key):
     return q / np.linalg.norm(q), float(np.linalg.norm(q))
 
 
-def orientation_from_measured(crystal, instrument, measured, key="crystal.orientation.measured"):
+def orientation_from_measured(crystal, instrument, measured, key="plan.orientation.measured"):
     """U from reflections found on the diffractometer.
 
     Each reflection's G direction in the sample frame is R_sᵀ·Q_lab of its
@@ -539,7 +539,7 @@ class _Geometry:
             J[:, :, c] = np.cross(cols[i], Q) if i < self.ns else -self.k * np.cross(cols[i], p)
         return f, p, Rs, J
 
-    def solve(self, G, X0, bounded, pull=False, iterations=60):
+    def solve(self, G, X0, bounded, pull=False, frozen=None, iterations=60):
         """Damped Newton (minimum-norm steps) from the starts X0, batched.
 
         ``bounded``: keep the free circles inside their limits (projected
@@ -548,7 +548,8 @@ class _Geometry:
         projection of the way home onto the null space of ∂f/∂θ).
 
         Returns X, |f| (Å⁻¹), p (scattered directions) and R_s of the final
-        points."""
+        points. ``frozen`` (N, n_free) bool holds some free circles of each
+        point at their starting angle (a slice through a solution family)."""
         X = X0.copy()
         fr = self.free
         lo, hi = self.limits[fr, 0], self.limits[fr, 1]
@@ -561,6 +562,8 @@ class _Geometry:
             pulling = pull and it < iterations - 8
             Xa = X[active]
             f, p, Rs, J = self.forward(Xa, G[active])
+            if frozen is not None:
+                J = np.where(frozen[active][:, None, :], 0.0, J)
             fn = np.linalg.norm(f, axis=1)
             if not pulling:
                 keep = fn > 1e-13
@@ -728,24 +731,42 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
     rng = np.random.default_rng(options.seed)
     nc = len(geo.names)
     fr = geo.free
+    # Starts per reflection: n_unb ignoring the limits (pulled toward home),
+    # n_bnd inside the limits, and with more than three free circles n_cut
+    # that hold all but three free circles at random angles within their
+    # limits (or at home) and solve the three (slices through the solution
+    # family).
+    n_free = len(fr)
     n_unb = max(int(options.starts) // 2, 1)
-    n_bnd = max(int(options.starts) - int(options.starts) // 2, 1) * (1 + 2 * (len(fr) - 3))
-    n_st = n_unb + n_bnd
+    n_bnd = max(int(options.starts) - int(options.starts) // 2, 1)
+    n_cut = 2 * n_bnd * (n_free - 3)
+    n_st = n_unb + n_bnd + n_cut
     lo, hi = geo.limits[fr, 0], geo.limits[fr, 1]
     G = np.repeat(np.array([r.g_sample for r in todo]), n_st, axis=0)
     Xr = np.tile(geo.x_fixed, (len(todo), n_st, 1))
-    Xr[:, :n_unb, fr] = rng.uniform(-np.pi, np.pi, size=(len(todo), n_unb, len(fr)))
-    Xr[:, n_unb:, fr] = rng.uniform(lo, hi, size=(len(todo), n_bnd, len(fr)))
+    Xr[:, :n_unb, fr] = rng.uniform(-np.pi, np.pi, size=(len(todo), n_unb, n_free))
+    Xr[:, n_unb:, fr] = rng.uniform(lo, hi, size=(len(todo), n_bnd + n_cut, n_free))
     Xr[:, n_unb, fr] = geo.home[fr]
     X0 = Xr.reshape(-1, nc)
     idx = np.arange(G.shape[0]).reshape(len(todo), n_st)
-    unb, bnd = idx[:, :n_unb].ravel(), idx[:, n_unb:].ravel()
+    unb, bnd, cut = (idx[:, :n_unb].ravel(), idx[:, n_unb:n_unb + n_bnd].ravel(),
+                     idx[:, n_unb + n_bnd:].ravel())
     X = np.empty_like(X0)
     res = np.empty(G.shape[0])
     P = np.empty((G.shape[0], 3))
     R = np.empty((G.shape[0], 3, 3))
     X[unb], res[unb], P[unb], R[unb] = geo.solve(G[unb], X0[unb], bounded=False, pull=True)
     X[bnd], res[bnd], P[bnd], R[bnd] = geo.solve(G[bnd], X0[bnd], bounded=True)
+    if cut.size:
+        held = np.argsort(rng.random((cut.size, n_free)), axis=1)[:, : n_free - 3]
+        frozen = np.zeros((cut.size, n_free), bool)
+        np.put_along_axis(frozen, held, True, axis=1)
+        # half the held circles sit at home (e.g. a detector arm kept in its plane)
+        at_home = frozen & (rng.random(frozen.shape) < 0.5)
+        Xcut = X0[cut]
+        Xcut[:, fr] = np.where(at_home, geo.home[fr], Xcut[:, fr])
+        X0[cut] = Xcut
+        X[cut], res[cut], P[cut], R[cut] = geo.solve(G[cut], X0[cut], bounded=False, frozen=frozen)
     conv = res <= _CONVERGED
     Xc, ok, viol = geo.in_limits(X)
     ai, af = geo.surface_angles(R, P)
@@ -765,10 +786,13 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
     g_floor = k * (math.sin(min_i) + math.sin(min_f))
     for j, rp in enumerate(todo):
         rows = idx[j][conv[idx[j]]]
-        if geo.normal is not None and rp.g_sample @ geo.normal < g_floor - 1e-12:
-            rp.reason = (f"beam blocked by the substrate: G points {'into' if rp.g_sample @ geo.normal < 0 else 'too close to'}"
-                         f" the surface (G·n = {rp.g_sample @ geo.normal:.3f} Å⁻¹; the incident and exit angles "
-                         f"cannot both reach {options.min_incidence_deg:g}° and {options.min_exit_deg:g}°)")
+        gn_ = rp.g_sample @ geo.normal if geo.normal is not None else np.inf
+        if gn_ <= g_floor + 1e-9 * rp.g_norm:
+            # G·n = 0 leaves only the knife edge α_in = α_out = 0: blocked too.
+            where = "into" if gn_ < -1e-9 * rp.g_norm else ("along" if gn_ <= 1e-9 * rp.g_norm else "too close to")
+            rp.reason = (f"beam blocked by the substrate: G points {where} the surface (G·n = {gn_:.3f} Å⁻¹; the "
+                         f"incident and exit angles cannot both exceed {options.min_incidence_deg:g}° and "
+                         f"{options.min_exit_deg:g}°)")
             continue
         good = rows[ok[rows] & clear[rows]]
         if good.size:
@@ -814,6 +838,18 @@ def _travel_matrix(settings):
     return np.abs(a[:, None, :] - a[None, :, :]).sum(-1)
 
 
+def _perms(n):
+    perms = np.array(list(itertools.permutations(range(n))))
+    return perms[perms[:, 0] < perms[:, -1]]  # a path and its reverse travel the same
+
+
+def _min_paths(D, combs):
+    """Shortest visiting-order travel of each set (rows of ``combs``) for the
+    pairwise travel matrix D."""
+    p = _perms(combs.shape[1])
+    return D[combs[:, p[:, :-1]], combs[:, p[:, 1:]]].sum(-1).min(-1)
+
+
 def set_travel(settings_deg):
     """Total circle travel (degrees) of the shortest sequence through settings.
 
@@ -826,8 +862,7 @@ def set_travel(settings_deg):
     if n < 2:
         return 0.0, list(range(n))
     D = _travel_matrix(settings)
-    perms = np.array(list(itertools.permutations(range(n))))
-    perms = perms[perms[:, 0] < perms[:, -1]]  # a path and its reverse travel the same
+    perms = _perms(n)
     lengths = D[perms[:, :-1], perms[:, 1:]].sum(1)
     b = int(np.argmin(lengths))
     return float(lengths[b]), perms[b].tolist()
@@ -919,7 +954,7 @@ def _collinear_groups(refls):
     return reps
 
 
-def _exhaustive(F, J, chunk=200_000):
+def _exhaustive(F, J, chunk=50_000):
     """Score every J-subset of the candidates' information matrices F (n, 3, 3).
 
     Yields (combinations, traces, component variances) chunk by chunk."""
@@ -1012,21 +1047,34 @@ def choose_set(reflections, n, max_travel_deg=None, exhaustive_limit=2_000_000, 
     n_sets = math.comb(len(cands), n)
     best_sigma = None
     if n_sets <= exhaustive_limit:
-        combs, trs, vars_ = [], [], []
+        D = _travel_matrix(settings)
+        iu = np.triu_indices(n, 1)
+        var_min = np.full(6, np.inf)
+        best_tr, chosen = np.inf, None
         for comb, tr, var in _exhaustive(F, n):
-            keep = np.isfinite(tr)
-            combs.append(comb[keep])
-            trs.append(tr[keep])
-            vars_.append(var[keep])
-        comb, tr, var = np.concatenate(combs), np.concatenate(trs), np.concatenate(vars_)
-        if tr.size == 0:
+            fin = np.isfinite(tr)
+            if not fin.any():
+                continue
+            var_min = np.minimum(var_min, var[fin].min(0))
+            cand = fin & (tr < best_tr)
+            if max_travel_deg is not None:
+                # any visiting order covers the farthest pair: a lower bound
+                cand &= D[comb[:, iu[0]], comb[:, iu[1]]].max(1) <= max_travel_deg
+            idx = np.nonzero(cand)[0]
+            idx = idx[np.argsort(tr[idx], kind="stable")]
+            if max_travel_deg is None:
+                if idx.size:
+                    best_tr, chosen = float(tr[idx[0]]), comb[idx[0]].tolist()
+                continue
+            for b0 in range(0, idx.size, 4096):
+                part = idx[b0:b0 + 4096]
+                ok = np.nonzero(_min_paths(D, comb[part]) <= max_travel_deg)[0]
+                if ok.size:
+                    best_tr, chosen = float(tr[part[ok[0]]]), comb[part[ok[0]]].tolist()
+                    break
+        if not np.all(np.isfinite(var_min)):
             return None, None, "every candidate set is coplanar: the strain tensor cannot be determined"
-        best_sigma = np.sqrt(var.min(0))
-        chosen = None
-        for i in np.argsort(tr, kind="stable"):
-            if ok_travel(comb[i]):
-                chosen = comb[i].tolist()
-                break
+        best_sigma = np.sqrt(var_min)
         if chosen is None:
             return None, best_sigma, (f"no set of {n} reflections keeps the total circle travel within "
                                       f"plan.max_travel_deg = {max_travel_deg:g}°")
@@ -1336,11 +1384,9 @@ def format_plan_table(result):
 _PLAN_KEYS = {
     "g_max", "n_reflections", "free", "fixed", "home", "pixel", "surface_normal", "min_incidence_deg",
     "min_exit_deg", "rocking_circle", "rocking_range_deg", "max_travel_deg", "score_set", "count_model",
-    "starts", "seed", "figure", "fragment",
+    "starts", "seed", "figure", "fragment", "orientation",
 }
 _COUNT_KEYS = {"noise_exponent", "polarization", "lorentz", "b_factor", "g_exponent"}
-_DETECTOR_KEYS = {"shape", "pixel_size", "distance", "direct_beam", "row_direction", "column_direction",
-                  "rotation_deg", "gaps"}
 
 
 def _num(v, key, positive=False):
@@ -1359,146 +1405,88 @@ def _table(cfg, key):
     return cfg
 
 
-def _circles(entries, key):
-    if not isinstance(entries, (list, tuple)):
-        raise ConfigError(f"{key}: expected a list of circles, each {{name, axis, limits}}")
-    out = []
-    for i, e in enumerate(entries):
-        k = f"{key}[{i}]"
-        if isinstance(e, Mapping):
-            extra = set(e) - {"name", "axis", "limits"}
-            if extra:
-                raise ConfigError(f"{k}: unknown key(s) {sorted(extra)}; expected name, axis, limits")
-            name, axis, limits = e.get("name"), e.get("axis"), e.get("limits", [-180.0, 180.0])
-        elif isinstance(e, (list, tuple)) and len(e) in (2, 3):
-            name, axis = e[0], e[1]
-            limits = e[2] if len(e) == 3 else [-180.0, 180.0]
-        else:
-            raise ConfigError(f"{k}: expected a table {{name, axis, limits}} or [name, axis, [lower, upper]]")
-        if not isinstance(name, str) or not name:
-            raise ConfigError(f"{k}.name: expected a circle name (text), got {name!r}")
-        if not (isinstance(axis, str) and len(axis) == 2 and axis[0] in AXES and axis[1] in "+-"):
-            raise ConfigError(f"{k}.axis = {axis!r}: expected one of x+, x-, y+, y-, z+, z-")
-        if not (isinstance(limits, (list, tuple)) and len(limits) == 2):
-            raise ConfigError(f"{k}.limits = {limits!r}: expected [lower, upper] in degrees")
-        lo, hi = (_num(v, f"{k}.limits") for v in limits)
-        if not lo < hi:
-            raise ConfigError(f"{k}.limits = [{lo:g}, {hi:g}]: expected lower < upper (degrees)")
-        out.append(Circle(name, axis, (lo, hi)))
+def _validated(config):
+    """The pipeline dict validated by :mod:`braggstrain.config` (as
+    ``load_config`` returns it); a raw parsed dict has its ``[crystal]`` and
+    ``[instrument]`` tables validated against the same schema (the planner
+    needs no ``[[reflection]]``)."""
+    from . import config as cm
+
+    if not isinstance(config, Mapping):
+        raise ConfigError(f"pipeline file: expected a table of tables, got {type(config).__name__}")
+    if "_source" in config:
+        return config
+    src = "<pipeline>"
+    out = {"_source": src}
+    for key in ("crystal", "instrument"):
+        if key not in config:
+            raise ConfigError(f"{src}: missing table [{key}]")
+        out[key] = cm._validate(config[key], cm.SCHEMA[key], key, src)
+    if out["crystal"]["material"] is None and out["crystal"]["lattice"]["a"] is None:
+        raise ConfigError(f"{src}: key 'crystal': expected 'material' (a name) or 'lattice.a' (Å)")
+    out["plan"] = config.get("plan", {})
     return out
 
 
-def _build_instrument(cfg):
-    """Diffractometer from the ``[instrument]`` table (keys: energy_kev,
-    beam, sample_circles, detector_circles, detector). Other keys are left to
-    the stages that use them."""
-    cfg = _table(cfg, "instrument")
-    if "energy_kev" not in cfg:
-        raise ConfigError("instrument.energy_kev: missing; expected the photon energy in keV")
-    energy = _num(cfg["energy_kev"], "instrument.energy_kev", positive=True)
-    for key in ("sample_circles", "detector_circles"):
-        if key not in cfg:
-            raise ConfigError(f"instrument.{key}: missing; expected a list of circles {{name, axis, limits}}, "
-                              f"outermost first")
-    sc = _circles(cfg["sample_circles"], "instrument.sample_circles")
-    dc = _circles(cfg["detector_circles"], "instrument.detector_circles")
-    if not sc:
-        raise ConfigError("instrument.sample_circles: expected at least one circle")
-    det_cfg = cfg.get("detector", {})
-    det_cfg = _table(det_cfg, "instrument.detector")
-    extra = set(det_cfg) - _DETECTOR_KEYS
-    if extra:
-        raise ConfigError(f"instrument.detector: unknown key(s) {sorted(extra)}; expected some of {sorted(_DETECTOR_KEYS)}")
-    kw = dict(det_cfg)
-    for t in ("shape", "pixel_size", "direct_beam"):
-        if t in kw:
-            kw[t] = tuple(kw[t])
-    if "gaps" in kw:
-        kw["gaps"] = tuple(tuple(g) for g in kw["gaps"])
-    try:
-        det = Detector(**kw)
-        return Diffractometer(sc, dc, det, energy, cfg.get("beam", "y+"))
-    except (InputError, TypeError, ValueError) as e:
-        raise ConfigError(f"instrument: {e}") from None
+def _check_limits(cfg):
+    """Name the key of an inverted circle range before the instrument is built."""
+    src = cfg.get("_source", "<pipeline>")
+    for group in ("sample_circles", "detector_circles"):
+        for i, c in enumerate(cfg["instrument"][group]):
+            lo, hi = c["limits"]
+            if not lo < hi:
+                raise ConfigError(f"{src}: key 'instrument.{group}[{i}].limits': value {list(c['limits'])} for "
+                                  f"circle '{c['name']}'; expected [lower, upper] with lower < upper (degrees)")
 
 
-def _build_crystal(cfg, instrument):
-    """Crystal from the ``[crystal]`` table: ``material`` (a name known to
-    xrayutilities) or ``lattice`` {a, b, c, alpha, beta, gamma, centring},
-    and ``[crystal.orientation]`` with exactly one of ``U``,
-    ``euler_bunge_deg`` (+ ``mounting``) or ``measured`` (a list of
-    {hkl, angles_deg, pixel}). Returns (crystal, orientation residuals in
-    degrees or None)."""
-    cfg = _table(cfg, "crystal")
-    if ("material" in cfg) == ("lattice" in cfg):
-        raise ConfigError("crystal: expected exactly one of 'material' (a name known to xrayutilities, e.g. \"Pt\") "
-                          "or 'lattice' {a, b, c, alpha, beta, gamma, centring}")
-    try:
-        if "material" in cfg:
-            if not isinstance(cfg["material"], str):
-                raise ConfigError(f"crystal.material = {cfg['material']!r}: expected a material name")
-            crystal = Crystal(cfg["material"])
-        else:
-            lat = _table(cfg["lattice"], "crystal.lattice")
-            extra = set(lat) - {"a", "b", "c", "alpha", "beta", "gamma", "centring", "name"}
-            if extra:
-                raise ConfigError(f"crystal.lattice: unknown key(s) {sorted(extra)}")
-            if "a" not in lat:
-                raise ConfigError("crystal.lattice.a: missing; expected the lattice parameter a in Å")
-            crystal = Crystal.from_lattice(**{k: v for k, v in lat.items()})
-    except ConfigError:
-        raise
-    except (InputError, TypeError) as e:
-        raise ConfigError(f"crystal: {e}") from None
-    ori = cfg.get("orientation")
-    if ori is None:
-        raise ConfigError("crystal.orientation: missing; expected a table with one of U (3×3, crystal → sample), "
-                          "euler_bunge_deg [φ1, Φ, φ2] (+ mounting) or measured (two or more found reflections)")
-    ori = _table(ori, "crystal.orientation")
-    extra = set(ori) - {"U", "euler_bunge_deg", "mounting", "measured"}
+def _orientation_from_plan(ori, crystal, instrument):
+    """U from ``[plan.orientation]``: ``euler_bunge_deg`` (+ ``mounting``) or
+    ``measured`` (a list of {hkl, angles_deg, pixel}). Returns (crystal,
+    residuals in degrees or None, a note)."""
+    ori = _table(ori, "plan.orientation")
+    extra = set(ori) - {"euler_bunge_deg", "mounting", "measured"}
     if extra:
-        raise ConfigError(f"crystal.orientation: unknown key(s) {sorted(extra)}; expected U, euler_bunge_deg, "
-                          f"mounting or measured")
-    given = [k for k in ("U", "euler_bunge_deg", "measured") if k in ori]
+        raise ConfigError(f"plan.orientation: unknown key(s) {sorted(extra)}; expected euler_bunge_deg, mounting "
+                          f"or measured")
+    given = [k for k in ("euler_bunge_deg", "measured") if k in ori]
     if len(given) != 1:
-        raise ConfigError(f"crystal.orientation: expected exactly one of U, euler_bunge_deg, measured; got {given}")
+        raise ConfigError(f"plan.orientation: expected exactly one of euler_bunge_deg, measured; got {given}")
     if "mounting" in ori and given[0] != "euler_bunge_deg":
-        raise ConfigError("crystal.orientation.mounting: only used with euler_bunge_deg")
-    residual = None
-    if given[0] == "U":
+        raise ConfigError("plan.orientation.mounting: only used with euler_bunge_deg")
+    if given[0] == "euler_bunge_deg":
         try:
-            crystal = crystal.with_orientation(np.asarray(ori["U"], dtype=float))
-        except (InputError, TypeError, ValueError) as e:
-            raise ConfigError(f"crystal.orientation.U: {e}") from None
-    elif given[0] == "euler_bunge_deg":
-        try:
-            U = orientation_from_euler(ori["euler_bunge_deg"], mounting_matrix(ori.get("mounting")))
+            U = orientation_from_euler(ori["euler_bunge_deg"], mounting_matrix(ori.get("mounting"),
+                                                                             "plan.orientation.mounting"))
+        except ConfigError:
+            raise
         except InputError as e:
-            if isinstance(e, ConfigError):
-                raise
-            raise ConfigError(f"crystal.orientation.euler_bunge_deg: {e}") from None
-        crystal = crystal.with_orientation(U)
-    else:
-        meas = ori["measured"]
-        if not isinstance(meas, (list, tuple)):
-            raise ConfigError("crystal.orientation.measured: expected a list of {hkl, angles_deg, pixel}")
-        ms = []
-        for i, m in enumerate(meas):
-            k = f"crystal.orientation.measured[{i}]"
-            m = _table(m, k)
-            extra = set(m) - {"hkl", "angles_deg", "pixel"}
-            if extra:
-                raise ConfigError(f"{k}: unknown key(s) {sorted(extra)}; expected hkl, angles_deg, pixel")
-            for req in ("hkl", "angles_deg"):
-                if req not in m:
-                    raise ConfigError(f"{k}.{req}: missing")
-            if not isinstance(m["angles_deg"], Mapping):
-                raise ConfigError(f"{k}.angles_deg: expected a table circle name → degrees")
-            ms.append(MeasuredReflection(tuple(m["hkl"]), dict(m["angles_deg"]),
-                                         None if m.get("pixel") is None else tuple(m["pixel"])))
-        U, residual = orientation_from_measured(crystal, instrument, ms)
-        crystal = crystal.with_orientation(U)
-    return crystal, residual
+            raise ConfigError(f"plan.orientation.euler_bunge_deg: {e}") from None
+        return crystal.with_orientation(U), None, "orientation from Bunge Euler angles ([plan.orientation])"
+    meas = ori["measured"]
+    key = "plan.orientation.measured"
+    if not isinstance(meas, (list, tuple)):
+        raise ConfigError(f"{key}: expected a list of {{hkl, angles_deg, pixel}}")
+    ms = []
+    for i, m in enumerate(meas):
+        k = f"{key}[{i}]"
+        m = _table(m, k)
+        extra = set(m) - {"hkl", "angles_deg", "pixel"}
+        if extra:
+            raise ConfigError(f"{k}: unknown key(s) {sorted(extra)}; expected hkl, angles_deg, pixel")
+        for req in ("hkl", "angles_deg"):
+            if req not in m:
+                raise ConfigError(f"{k}.{req}: missing")
+        if not (isinstance(m["hkl"], (list, tuple)) and len(m["hkl"]) == 3):
+            raise ConfigError(f"{k}.hkl = {m['hkl']!r}: expected [h, k, l]")
+        if not isinstance(m["angles_deg"], Mapping):
+            raise ConfigError(f"{k}.angles_deg: expected a table circle name → degrees")
+        pix = m.get("pixel")
+        if pix is not None and not (isinstance(pix, (list, tuple)) and len(pix) == 2):
+            raise ConfigError(f"{k}.pixel = {pix!r}: expected [row, column]")
+        ms.append(MeasuredReflection(tuple(m["hkl"]), dict(m["angles_deg"]), None if pix is None else tuple(pix)))
+    U, residual = orientation_from_measured(crystal, instrument, ms, key)
+    how = "two-reflection orientation" if len(ms) == 2 else f"least-squares fit to {len(ms)} reflections"
+    return crystal.with_orientation(U), residual, f"orientation from found reflections ({how}, [plan.orientation])"
 
 
 def _plan_options(cfg, instrument):
@@ -1587,13 +1575,23 @@ def _plan_options(cfg, instrument):
 
 
 def plan_from_config(config, out_dir):
-    """Plan from a parsed pipeline file and write the figure and fragment.
+    """Plan from a pipeline dict and write the figure and the fragment.
 
-    Reads the ``[instrument]``, ``[crystal]`` and ``[plan]`` tables (keys in
-    docs/planner.md), plans (:func:`plan`), and writes atomically into
-    ``out_dir`` (created if missing) the stereographic figure
-    (``plan.figure``, default "plan.png") and, when a set was chosen, the
-    pipeline fragment (``plan.fragment``, default "plan_reflections.toml").
+    Parameters
+    ----------
+    config : dict
+        The pipeline file as :func:`braggstrain.config.load_config` returns
+        it, or as parsed TOML (its ``[crystal]`` and ``[instrument]`` tables
+        are then validated here). Read: ``[crystal]`` and ``[instrument]``
+        (through :func:`braggstrain.config.build_crystal` and
+        :func:`~braggstrain.config.build_instrument`) and ``[plan]``
+        (keys in docs/planner.md), whose ``[plan.orientation]``, if given,
+        replaces the orientation of ``[crystal]``.
+    out_dir : path
+        Folder (created if missing) that receives the stereographic figure
+        (``plan.figure``, default "plan.png") and, when a set was chosen, the
+        pipeline fragment (``plan.fragment``, default
+        "plan_reflections.toml"); both written atomically.
 
     Returns
     -------
@@ -1602,26 +1600,37 @@ def plan_from_config(config, out_dir):
 
     Raises
     ------
-    ConfigError naming the key for every problem with the pipeline file.
+    ConfigError naming the file and key for every problem with the pipeline file.
     """
-    if not isinstance(config, Mapping):
-        raise ConfigError(f"pipeline file: expected a table of tables, got {type(config).__name__}")
-    instrument = _build_instrument(config.get("instrument"))
-    crystal, residual = _build_crystal(config.get("crystal"), instrument)
-    pcfg = config.get("plan", {}) or {}
-    options = _plan_options(pcfg, instrument)
-    names = {}
-    for key, default in (("figure", "plan.png"), ("fragment", "plan_reflections.toml")):
-        v = pcfg.get(key, default)
-        if not isinstance(v, str) or not v or os.path.basename(v) != v:
-            raise ConfigError(f"plan.{key} = {v!r}: expected a plain file name (written into the output folder)")
-        names[key] = v
+    from . import config as cm
+
+    cfg = _validated(config)
+    src = cfg.get("_source", "<pipeline>")
+    _check_limits(cfg)
+    instrument = cm.build_instrument(cfg)
+    crystal = cm.build_crystal(cfg)
+    pcfg = cfg.get("plan") or {}
     try:
+        pcfg = _table(pcfg, "plan")
+        notes = []
+        residual = None
+        if "orientation" in pcfg:
+            crystal, residual, note = _orientation_from_plan(pcfg["orientation"], crystal, instrument)
+            notes.append(note)
+        elif cfg["crystal"].get("orientation") is None and (cfg["crystal"].get("orient_by") or {}).get("hkl1") is None:
+            notes.append("no orientation given ([crystal] orientation / orient_by or [plan.orientation]): "
+                         "the crystal axes are taken along the sample axes")
+        options = _plan_options(pcfg, instrument)
+        names = {}
+        for key, default in (("figure", "plan.png"), ("fragment", "plan_reflections.toml")):
+            v = pcfg.get(key, default)
+            if not isinstance(v, str) or not v or os.path.basename(v) != v:
+                raise ConfigError(f"plan.{key} = {v!r}: expected a plain file name (written into the output folder)")
+            names[key] = v
         result = plan(crystal, instrument, options, residual)
-    except ConfigError:
-        raise
-    except InputError as e:
-        raise ConfigError(str(e)) from None
+    except InputError as e:  # ConfigError included: add the file
+        raise ConfigError(f"{src}: {e}") from None
+    result.notes[:0] = notes
     out_dir = os.fspath(out_dir)
     os.makedirs(out_dir, exist_ok=True)
     fig = os.path.join(out_dir, names["figure"])

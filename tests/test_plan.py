@@ -383,8 +383,6 @@ direct_beam = [128, 128]
 
 [crystal]
 material = "Pt"
-[crystal.orientation]
-euler_bunge_deg = [30.0, 54.7356, 45.0]
 
 [plan]
 g_max = 6.0
@@ -395,7 +393,17 @@ rocking_range_deg = 1.0
 min_incidence_deg = 0.5
 min_exit_deg = 0.5
 score_set = [[1, 1, 1], [0, 2, 0], [2, 0, 2]]
+
+[plan.orientation]
+euler_bunge_deg = [30.0, 54.7356, 45.0]
 """
+
+
+def _objects(cfg):
+    from braggstrain.config import build_crystal, build_instrument
+
+    v = P._validated(cfg)
+    return build_crystal(v), build_instrument(v)
 
 
 def test_plan_from_config_writes_figure_and_fragment(tmp_path):
@@ -406,8 +414,8 @@ def test_plan_from_config_writes_figure_and_fragment(tmp_path):
         assert fh.read(8) == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, sec. 5.2)
     frag = tomllib.loads(open(res.fragment_path).read())
     assert [tuple(r["hkl"]) for r in frag["reflections"]] == res.chosen.hkls
-    dif = P._build_instrument(cfg["instrument"])
-    crystal, _ = P._build_crystal(cfg["crystal"], dif)
+    crystal, dif = _objects(cfg)
+    crystal = crystal.with_orientation(P.orientation_from_euler([30.0, 54.7356, 45.0]))
     for r in frag["reflections"]:
         # the pasted angles put Q on G (xrayutilities QConversion via instrument)
         q = dif.pixel_q(r["angles_deg"], frame="sample", roi=(128, 129, 128, 129))[:, 0, 0]
@@ -417,26 +425,44 @@ def test_plan_from_config_writes_figure_and_fragment(tmp_path):
     for h in res.chosen.hkls:
         assert P._fmt_hkl(h) in table
     assert "condition number" in table and "your set" in table and "unreachable" in table
+    assert "Bunge" in table
     assert sorted(os.listdir(tmp_path / "out")) == ["plan.png", "plan_reflections.toml"]  # no temp files left
-    # The demo-like set scores better than the user's low-index set.
     assert res.chosen.score < res.user.score
+
+
+def test_plan_from_validated_demo_file(tmp_path):
+    # The project's demo pipeline file read by braggstrain.config.load_config,
+    # as the command line does; its four reflections are scored as a user set.
+    from braggstrain.config import load_config
+
+    path = os.path.join(os.path.dirname(__file__), os.pardir, "pipelines", "demo.toml")
+    if not os.path.exists(path):
+        pytest.skip("pipelines/demo.toml not in the tree")
+    cfg = load_config(path)
+    cfg["plan"] = {"fixed": {"nu": 0.0}, "g_max": 5.0, "n_reflections": 4,
+                   "score_set": [r["hkl"] for r in cfg["reflection"]]}
+    res = P.plan_from_config(cfg, tmp_path)
+    assert res.chosen is not None and res.user is not None
+    assert res.chosen.score <= res.user.score + 1e-12
+    assert res.chosen.condition_number < 10
 
 
 def test_config_orientation_from_measured_reflections(tmp_path):
     U_true = Rotation.random(random_state=3).as_matrix()
     cfg = tomllib.loads(CONFIG)
-    dif = P._build_instrument(cfg["instrument"])
+    _, dif = _objects(cfg)
     opt = P.PlanOptions(fixed_deg={"mu": 0.0, "nu": 0.0}, surface_normal=None)
     pt = Crystal("Pt", U_true)
     meas = _measure(pt, dif, pt.allowed_reflections(4.6), opt, n=2)
-    cfg["crystal"]["orientation"] = {"measured": [{"hkl": list(m.hkl), "angles_deg": dict(m.angles_deg)}
-                                                  for m in meas]}
-    crystal, residual = P._build_crystal(cfg["crystal"], dif)
-    assert misorientation_deg(crystal.U, U_true) < 0.01
+    cfg["plan"]["orientation"] = {"measured": [{"hkl": list(m.hkl), "angles_deg": dict(m.angles_deg)}
+                                               for m in meas]}
+    res = P.plan_from_config(cfg, tmp_path)
+    assert misorientation_deg(res.U, U_true) < 0.01
+    assert "two-reflection" in " ".join(res.notes)
     # A wrong hkl is caught by its |Q| (named key).
-    cfg["crystal"]["orientation"]["measured"][0]["hkl"] = [2, 0, 0]
-    with pytest.raises(ConfigError, match=r"measured\[0\].*differs"):
-        P._build_crystal(cfg["crystal"], dif)
+    cfg["plan"]["orientation"]["measured"][0]["hkl"] = [2, 0, 0]
+    with pytest.raises(ConfigError, match=r"plan\.orientation\.measured\[0\].*differs"):
+        P.plan_from_config(cfg, tmp_path)
 
 
 @pytest.mark.parametrize("edit, key", [
@@ -448,7 +474,8 @@ def test_config_orientation_from_measured_reflections(tmp_path):
     (lambda c: c["plan"].update(n_reflections=7), r"plan\.n_reflections"),
     (lambda c: c["plan"].update(n_reflection=3), r"plan: unknown key"),
     (lambda c: c["plan"].update(rocking_circle="delta"), r"plan\.rocking_circle"),
-    (lambda c: c["crystal"]["orientation"].update(U=np.eye(3).tolist()), r"crystal\.orientation"),
+    (lambda c: c["plan"]["orientation"].update(measured=[]), r"plan\.orientation"),
+    (lambda c: c["instrument"]["sample_circles"][0].update(axes="x+"), r"instrument\.sample_circles\[0\]\.axes"),
     (lambda c: c["plan"].update(fixed={"mu": 90.0, "nu": 0.0}), r"plan\.fixed\.mu"),
 ])
 def test_bad_config_names_the_key(tmp_path, edit, key):
