@@ -688,9 +688,11 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
     equations; p the scattered direction of the chosen pixel) is solved for
     the free circles by damped Newton steps from random starts, all
     reflections and starts at once: half the starts ignore the limits (so the
-    planner can say which limit is in the way), half stay inside them. With
-    more than three free circles the solutions form a family; each step then
-    also moves along the family toward the home setting. A setting is valid
+    planner can say which limit is in the way; with more than three free
+    circles these also step along the solution family toward home), half stay
+    inside them. With more than three free circles the solutions form a
+    family, also sampled by slices that hold all but three free circles at
+    random angles within their limits or at home. A setting is valid
     when every circle is inside its limits (with half the rocking range to
     spare on the rocking circle) and, with a substrate, the incident and exit
     beams make at least the minimum angles with its surface. Among the valid
