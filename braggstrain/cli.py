@@ -205,8 +205,8 @@ def cmd_plan(args):
     from .config import load_config
     from . import plan
 
-    cfg = load_config(args.config)
-    out = Path(args.out) if args.out else Path(args.config).resolve().parent / "plan"
+    cfg = load_config(args.config, require_reflections=False)
+    out = Path(args.out) if args.out else Path.cwd() / "plan"
     result = plan.plan_from_config(cfg, out)
     print(plan.format_plan_table(result))
     return 0
@@ -264,7 +264,7 @@ def build_parser():
 
     s = sub.add_parser("plan", help="plan which reflections to measure, at which angles")
     s.add_argument("config", help="pipeline file (TOML) with [crystal], [instrument] and [plan]")
-    s.add_argument("--out", default=None, help="folder for the figure and the pipeline fragment")
+    s.add_argument("--out", default=None, help="folder for the figure and the pipeline fragment (default: ./plan)")
     s.set_defaults(func=cmd_plan)
     return p
 

@@ -233,9 +233,19 @@ def _validate(value, schema, where, src):
     return value
 
 
-def validate_config(raw, source="<pipeline>"):
-    """Validate a parsed pipeline dict; return it with defaults filled in."""
-    cfg = _validate(raw, SCHEMA, "", source)
+def validate_config(raw, source="<pipeline>", require_reflections=True):
+    """Validate a parsed pipeline dict; return it with defaults filled in.
+
+    ``require_reflections=False`` accepts a file without ``[[reflection]]``
+    entries (e.g. one written only for the measurement planner)."""
+    if not require_reflections and "reflection" not in raw:
+        raw = dict(raw)
+        raw["reflection"] = []
+        schema = _Table(SCHEMA)
+        schema["reflection"] = _Array(SCHEMA["reflection"].table, min_items=0)
+        cfg = _validate(raw, schema, "", source)
+    else:
+        cfg = _validate(raw, SCHEMA, "", source)
     c = cfg["crystal"]
     if c["material"] is None and c["lattice"]["a"] is None:
         raise ConfigError(f"{source}: key 'crystal': expected 'material' (a name) or 'lattice.a' (Å)")
@@ -252,7 +262,7 @@ def validate_config(raw, source="<pipeline>"):
     return cfg
 
 
-def load_config(path):
+def load_config(path, require_reflections=True):
     """Read and validate a pipeline file (TOML).
 
     Raises
@@ -267,7 +277,7 @@ def load_config(path):
         raw = tomllib.loads(text)
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as e:
         raise ConfigError(f"{p}: not valid TOML: {e}") from None
-    cfg = validate_config(raw, str(p))
+    cfg = validate_config(raw, str(p), require_reflections=require_reflections)
     cfg["_text"] = text
     cfg["_dir"] = str(p.resolve().parent)
     return cfg
