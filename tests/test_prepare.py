@@ -190,6 +190,11 @@ def test_auto_crop_and_com_centre(cube):
         # the crop keeps the peak at n//2 and stays on the data
         assert p.crop[k][0] >= 0 and p.crop[k][1] <= cube["scan"].frames.shape[k]
     assert np.unravel_index(np.argmax(p.intensity), p.shape) == tuple(np.array(p.shape) // 2)
+    pf = pr.prepare_scan(cube["scan"], crop="full")
+    # the largest centred block of 2·3·5 sizes n (n//2 before the peak, n − 1 − n//2 after it):
+    # 72 frames (all; peak at 36), 150 rows (peak at row 75 of 150), 162 = 2·3⁴ columns (peak at
+    # column 85 of 170: n ≤ 170, and none of 163–170 is a 2·3·5 product)
+    assert pf.shape == (72, 150, 162)
     pc = pr.prepare_scan(cube["scan"], crop=(48, 48, 48), center="com")
     # a symmetric crystal's centre of mass is at its peak (to a voxel)
     assert np.all(np.abs(pc.peak_com - np.asarray(cube["sim"].peak_pixel)) < 1.0)
