@@ -102,21 +102,35 @@ def central_index(support):
 
 
 def _crop(support, margin=2):
+    """Index range [lo, hi) per axis around the crystal (may reach past the array)."""
     idx = np.argwhere(support)
-    lo = np.maximum(idx.min(axis=0) - margin, 0)
-    hi = np.minimum(idx.max(axis=0) + margin + 1, support.shape)
-    return lo, hi
+    return idx.min(axis=0) - margin, idx.max(axis=0) + margin + 1
 
 
-def _plane(vol, plane, centre, lo, hi):
-    """2-D cut (horizontal, vertical) of a 3-D array through ``centre``."""
+def _plane_crop(plane, lo, hi, room=0.16):
+    """The crop of one plane, with ``room`` of its height added below the
+    crystal so the scale bar never covers it."""
+    _, _, _, v = plane
+    lo = np.array(lo)
+    lo[v] -= int(np.ceil(room * (hi[v] - lo[v])))
+    return lo, np.array(hi)
+
+
+def _plane(vol, plane, centre, lo, hi, fill=np.nan):
+    """2-D cut (rows along the horizontal axis, columns along the vertical
+    one) of a 3-D array through ``centre``, over [lo, hi) on the two in-plane
+    axes; indices outside the array are filled with ``fill``."""
     _, fixed, h, v = plane
+    shape = vol.shape
     sl = [slice(None)] * 3
     sl[fixed] = centre[fixed]
-    sl[h] = slice(lo[h], hi[h])
-    sl[v] = slice(lo[v], hi[v])
-    cut = vol[tuple(sl)]
-    return cut if h < v else cut.T  # rows along h, columns along v
+    for ax in (h, v):
+        sl[ax] = slice(max(int(lo[ax]), 0), min(int(hi[ax]), shape[ax]))
+    cut = np.asarray(vol[tuple(sl)], float)
+    if h > v:
+        cut = cut.T
+    pad = [(max(0, -int(lo[ax])), max(0, int(hi[ax]) - shape[ax])) for ax in (h, v)]
+    return np.pad(cut, pad, constant_values=fill) if any(a or b for a, b in pad) else cut
 
 
 def _extent(plane, lo, hi, vs, shape):
@@ -139,7 +153,7 @@ def _nice_length(span_nm):
     return float(10 ** k)
 
 
-def _scale_bar(ax, extent):
+def _scale_bar(ax, extent, color="black"):
     from matplotlib.font_manager import FontProperties
     from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
 
@@ -147,7 +161,7 @@ def _scale_bar(ax, extent):
     length = _nice_length(width)
     label = f"{length:g} nm"
     bar = AnchoredSizeBar(ax.transData, length, label, "lower left", pad=0.3, borderpad=0.3, sep=2,
-                          color="black", frameon=False, size_vertical=(extent[3] - extent[2]) * 0.012,
+                          color=color, frameon=False, size_vertical=(extent[3] - extent[2]) * 0.012,
                           fontproperties=FontProperties(size=7))
     ax.add_artist(bar)
 
@@ -272,12 +286,13 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
         for col, plane in enumerate(_PLANES):
             ax = fig.add_subplot(gs[row, col])
             axes.append(ax)
-            img = _plane(disp, plane, centre, lo, hi) * fac
-            ext = _extent(plane, lo, hi, vs, shape)
+            plo, phi = _plane_crop(plane, lo, hi)
+            img = _plane(disp, plane, centre, plo, phi) * fac
+            ext = _extent(plane, plo, phi, vs, shape)
             im = ax.imshow(img.T, origin="lower", extent=ext, cmap=cm, vmin=vmin * fac, vmax=vmax * fac,
                            interpolation="nearest", aspect="equal")
             if outline:
-                sup2 = _plane(support.astype(float), plane, centre, lo, hi)
+                sup2 = _plane(support, plane, centre, plo, phi, fill=0.0)
                 h_c = np.linspace(ext[0], ext[1], sup2.shape[0] + 1)
                 v_c = np.linspace(ext[2], ext[3], sup2.shape[1] + 1)
                 ax.contour(0.5 * (h_c[1:] + h_c[:-1]), 0.5 * (v_c[1:] + v_c[:-1]), sup2.T, levels=[0.5],
@@ -286,7 +301,7 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
             ax.set_yticks([])
             ax.set_xlabel(f"{_AXIS[plane[2]]} →", fontsize=8, labelpad=2)
             ax.set_ylabel(f"{_AXIS[plane[3]]} →", fontsize=8, labelpad=2)
-            _scale_bar(ax, ext)
+            _scale_bar(ax, ext, "white" if outline else "black")
             if row == 0:
                 ax.set_title(_plane_title(plane, centre, vs, shape), fontsize=9)
         cb = fig.colorbar(im, ax=axes, shrink=0.9, aspect=12, pad=0.02)
@@ -372,6 +387,8 @@ def _colours(n):
 def plot_prtf(results, path=None):
     """PRTF of each reflection against |q| (Å⁻¹), with the 1/e threshold."""
     refl = [x for x in results["reflections"] if x.get("prtf") is not None]
+    if not refl:
+        return None
     fig = _figure(6.4, 4.2)
     ax = fig.add_subplot(111)
     for x, c in zip(refl, _colours(len(refl))):
@@ -388,10 +405,7 @@ def plot_prtf(results, path=None):
     ax.set_ylim(0, 1.05)
     ax.set_xlim(left=0)
     ax.grid(alpha=0.3)
-    if refl:
-        ax.legend(fontsize=8, loc="lower left")
-    else:
-        ax.text(0.5, 0.5, "no PRTF recorded", ha="center", va="center", transform=ax.transAxes)
+    ax.legend(fontsize=8, loc="lower left")
     ax.set_title("Phase-retrieval transfer function")
     if path is not None:
         _save(fig, path)
@@ -409,15 +423,13 @@ def plot_histories(results, path=None):
         for k in x.get("history", {}):
             if k not in keys and k not in _SKIP_HISTORY:
                 keys.append(k)
-    n = max(len(keys), 1)
+    if not keys:
+        return None
+    n = len(keys)
     ncol = 2 if n > 1 else 1
     nrow = int(np.ceil(n / ncol))
     fig = _figure(4.2 * ncol, 2.9 * nrow + 0.5)
     cols = _colours(len(refl))
-    if not keys:
-        ax = fig.add_subplot(111)
-        ax.text(0.5, 0.5, "no phasing history recorded", ha="center", va="center", transform=ax.transAxes)
-        ax.set_axis_off()
     for m, key in enumerate(keys):
         ax = fig.add_subplot(nrow, ncol, m + 1)
         positive = True
@@ -473,6 +485,8 @@ def _rank_key(runs):
 def plot_runs(results, path=None):
     """Final metric of every random start, per reflection."""
     refl = results["reflections"]
+    if all(_rank_key(x.get("run_metrics") or []) is None for x in refl):
+        return None
     fig = _figure(6.4, 1.0 + 0.55 * max(len(refl), 1) + 1.2)
     ax = fig.add_subplot(111)
     labels = []
@@ -505,7 +519,7 @@ def plot_runs(results, path=None):
     ax.set_yticklabels(labels, fontsize=8)
     ax.set_ylim(-0.6, len(refl) - 0.4)
     ax.invert_yaxis()
-    ax.set_xlabel(", ".join(sorted(key_used)) or "no run metrics recorded")
+    ax.set_xlabel(", ".join(sorted(key_used)))
     ax.grid(axis="x", alpha=0.3)
     ax.set_title("Random starts (lower is better)")
     if path is not None:
@@ -531,8 +545,9 @@ def make_figures(results, out_dir):
     Returns
     -------
     list of Path
-        In the order of :data:`FIGURES`; ``displacement.png`` is left out
-        when no reflection has a displacement map.
+        In the order of :data:`FIGURES`; ``displacement.png``, ``prtf.png``,
+        ``history.png`` and ``runs.png`` are left out when no reflection has
+        a displacement map, a PRTF, a history or run metrics.
     """
     from .defects_plot import plot_dislocations
     from .outputs import check_results

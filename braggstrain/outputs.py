@@ -35,7 +35,7 @@ from typing import Any, TypedDict
 
 import numpy as np
 
-from .errors import InputError
+from .errors import BraggStrainError, InputError
 from .scanio import atomic_path
 
 __all__ = [
@@ -170,15 +170,16 @@ def _as_plain(value):
     return value
 
 
-def _vec3(value, where, positive=False):
+def _vec3(value, where, positive=False, allow_nan=False):
     try:
         v = np.asarray(value, dtype=float).reshape(-1)
     except (TypeError, ValueError):
         raise InputError(f"{where}: expected three numbers, got {value!r}") from None
     if v.size == 1:
         v = np.repeat(v, 3)
-    if v.size != 3 or not np.all(np.isfinite(v)):
-        raise InputError(f"{where}: expected three finite numbers, got {value!r}")
+    if v.size != 3 or not np.all(np.isfinite(v) | (allow_nan & np.isnan(v))):
+        raise InputError(f"{where}: expected three finite numbers{' (or NaN)' if allow_nan else ''}, "
+                         f"got {value!r}")
     if positive and np.any(v <= 0):
         raise InputError(f"{where}: expected three positive lengths in Å, got {value!r}")
     return v
@@ -246,7 +247,7 @@ def _check_reflection(r, j, shape, names):
         out[key] = int(v)
     if out["kept"] > out["runs"] > 0:
         raise InputError(f"{where}['kept']: {out['kept']} runs kept out of {out['runs']}; expected kept ≤ runs")
-    out["oversampling"] = (_vec3(r["oversampling"], f"{where}['oversampling']")
+    out["oversampling"] = (_vec3(r["oversampling"], f"{where}['oversampling']", allow_nan=True)
                            if r.get("oversampling") is not None else np.full(3, np.nan))
     out["shift_vox"] = (_vec3(r["shift_vox"], f"{where}['shift_vox']")
                         if r.get("shift_vox") is not None else np.zeros(3))
@@ -954,7 +955,7 @@ def export_vtk(results_or_path, out_dir, *, stem="crystal"):
     try:
         from pyevtk.hl import imageToVTK, polyLinesToVTK
     except ImportError:  # pragma: no cover - depends on the environment
-        raise InputError("export_vtk: the 'pyevtk' package is needed for VTK export (pip install pyevtk)") from None
+        raise BraggStrainError("export_vtk: the pyevtk package is needed for VTK export (pip install pyevtk)") from None
 
     if isinstance(results_or_path, (str, os.PathLike)):
         r = read_results(results_or_path)

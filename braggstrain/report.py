@@ -343,6 +343,8 @@ def _dislocation_section(r):
 def _figure_section(paths):
     from .figures import FIGURES
 
+    if not paths:
+        return ""
     out = ["<h2>Figures</h2>"]
     for p in paths:
         p = Path(p)
