@@ -179,12 +179,12 @@ def cmd_prepare(args):
 
 
 def cmd_report(args):
-    from . import outputs
+    from . import figures, outputs, report
 
     results = outputs.read_results(args.results)
     out = Path(args.out) if args.out else Path(args.results).resolve().parent
-    figs = outputs.make_figures(results, out / "figures")
-    path = outputs.write_report(results, out, figures=figs)
+    figs = figures.make_figures(results, out / "figures")
+    path = report.write_report(results, out, figures=figs)
     _print(f"report: {path} ({len(figs)} figures)", args.quiet)
     return 0
 

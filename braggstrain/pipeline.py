@@ -182,7 +182,17 @@ def _plain(v):
     return str(v)
 
 
-def _phase_to_tree(ens):
+def _real_voxel(data):
+    """Edge (Å) of the cube with the volume of one real-space voxel of the
+    array phase retrieval ran on (detector-frame or orthogonal grid)."""
+    if hasattr(data, "real_space_basis"):
+        T = data.real_space_basis()
+        return float(abs(np.linalg.det(T)) ** (1 / 3))
+    n = np.asarray(data.intensity.shape, float)
+    return float(np.prod(2 * np.pi / (n * np.asarray(data.q_step, float))) ** (1 / 3))
+
+
+def _phase_to_tree(ens, voxel):
     best = ens.best
     hist = {}
     h = best.history
@@ -194,17 +204,23 @@ def _phase_to_tree(ens):
             except (TypeError, ValueError):
                 pass
     runs = []
+    kept = {int(v) for v in ens.kept}
     for r in ens.runs:
         m = _plain(r.metrics)
         m.update({"run": r.run, "seed": r.seed, "status": r.status, "iterations": r.iterations,
-                  "elapsed": r.elapsed, "message": r.message})
+                  "elapsed": r.elapsed, "message": r.message, "kept": int(r.run) in kept})
         runs.append(m)
     pr = ens.prtf
+    # PRTF shells come in cycles per voxel f; as |q| in Å⁻¹: 2π f / voxel, and
+    # the resolution as the half period voxel / (2 f) in Å (common practice, no source)
+    f = np.asarray(pr.q, float)
+    res_f = float(pr.resolution) if pr.resolution is not None else np.nan
     return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
             "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
             "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed),
-            "prtf": {"q": np.asarray(getattr(pr, "q", []), float), "values": np.asarray(getattr(pr, "values", []), float),
-                     "resolution": float(getattr(pr, "resolution", np.nan) if getattr(pr, "resolution", None) is not None else np.nan)}}
+            "prtf": {"q": 2 * np.pi * f / voxel, "values": np.asarray(pr.values, float),
+                     "resolution": voxel / (2 * res_f) if np.isfinite(res_f) and res_f > 0 else float("nan"),
+                     "voxel_A": voxel}}
 
 
 # ---------------------------------------------------------------------------
@@ -404,7 +420,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                     ens = ensemble(intensity, mask, runs=runs, keep=keep, seed=seed_j, executor=executor,
                                    progress=progress, **ph_opts)
                     run.phasing_seconds += time.perf_counter() - t0
-                    tree = _phase_to_tree(ens)
+                    tree = _phase_to_tree(ens, _real_voxel(data))
                     run.save("phase", name, k_phase, tree)
             # -- sample frame
             k_frame = hash_inputs("frame", k_phase, route, fr_opts, g_ref[j])
@@ -492,7 +508,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                       run, base_seed, runs, keep, route)
     paths = {}
     with run.timed("outputs"):
+        from . import figures as figm
         from . import outputs as outp
+        from . import report as repm
 
         ou = opts["output"]
         wall = time.perf_counter() - t_start
@@ -500,14 +518,14 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         results["provenance"]["wall_s"] = wall
         paths["results"] = outp.write_results(out / "results.h5", results)
         if ou.get("figures", True) or ou.get("report", True):
-            figs = outp.make_figures(results, out / "figures")
+            figs = figm.make_figures(results, out / "figures")
             paths["figures"] = figs
             if ou.get("report", True):
-                paths["report"] = outp.write_report(results, out, figures=figs)
+                paths["report"] = repm.write_report(results, out, figures=figs)
         if ou.get("vtk", True):
             paths["vtk"] = outp.export_vtk(results, out / "vtk")
-        if dislocations:
-            paths["dislocations"] = dfx.write_dislocation_table(dislocations, out / "dislocations")
+        paths["dislocations"] = [dfx.write_dislocation_table(dislocations, out / "dislocations.csv"),
+                                 dfx.write_dislocation_table(dislocations, out / "dislocations.json")]
     wall = time.perf_counter() - t_start
     return {"results": results, "paths": paths, "timings": dict(run.timings), "wall_s": wall,
             "phasing_s": run.phasing_seconds, "phasing_share": run.phasing_seconds / wall if wall else 0.0,
