@@ -230,11 +230,17 @@ def _neighbour_median(image, valid, size=3):
     h = size // 2
     a = np.where(valid, image, np.nan).astype(np.float64)
     p = np.pad(a, h, mode="constant", constant_values=np.nan)
-    w = sliding_window_view(p, (size, size)).reshape(image.shape + (size * size,)).copy()
-    w[..., (size * size) // 2] = np.nan
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmedian(w, axis=-1)
+    out = np.empty(image.shape, np.float64)
+    step = 256  # rows per block, to bound the memory on large detectors
+    for r0 in range(0, image.shape[0], step):
+        r1 = min(r0 + step, image.shape[0])
+        w = sliding_window_view(p[r0:r1 + 2 * h], (size, size)).reshape((r1 - r0, image.shape[1], size * size))
+        w = w.copy()
+        w[..., (size * size) // 2] = np.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            out[r0:r1] = np.nanmedian(w, axis=-1)
+    return out
 
 
 def find_hot_pixels(frames, mask=None, threshold=10.0, dead_min_counts=20.0):
@@ -585,12 +591,10 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
     d = _load_array(dark, "dark", src)
     if d is not None:
         d = np.asarray(d, np.float32)
-        if d.ndim == 0:
-            data -= d
-        elif d.shape in (raw.shape[1:], raw.shape):
-            data -= d
-        else:
-            raise ScanFileError(src, "dark", f"expected a number or shape {raw.shape[1:]} or {raw.shape}, got {d.shape}")
+        if d.ndim != 0 and d.shape not in (raw.shape[1:], raw.shape):
+            raise ScanFileError(src, "dark", f"expected a number or shape {raw.shape[1:]} or {raw.shape}, "
+                                             f"got {d.shape}")
+        data -= d
         np.maximum(data, 0, out=data)
     fl = _load_array(flat, "flat", src)
     if fl is not None:
@@ -697,7 +701,8 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
     else:
         sizes = np.asarray(crop, dtype=int).reshape(-1)
         if sizes.shape != (3,) or np.any(sizes < 1):
-            raise InputError(f"{src}: option 'crop': expected three positive sizes (frames, rows, columns), got {crop!r}")
+            raise InputError(f"{src}: option 'crop': expected three positive sizes (frames, rows, columns), "
+                             f"got {crop!r}")
         for k in range(3):
             if sizes[k] % binning[k] or not _is_smooth(int(sizes[k] // binning[k])):
                 raise InputError(f"{src}: option 'crop': {axis_names[k]} size {sizes[k]} must be bin ({binning[k]}) "

@@ -221,15 +221,18 @@ def regrid(prepared, *, frame="sample", q_step=None, shape=None, fuzzy="auto", w
             inten = np.where(empty, 0.0, s / np.where(empty, 1.0, n))
         return inten, empty
 
-    # bins whose centre lies inside the measured region (nearest prepared voxel measured)
-    Q = np.stack(np.meshgrid(*axes, indexing="ij"))
-    n_idx = np.tensordot(np.linalg.inv(M), Q - qc[:, None, None, None], axes=1)
+    # bins whose centre lies inside the measured region (nearest prepared voxel
+    # measured, by the inverse linear map), one plane of the grid at a time
+    Minv = np.linalg.inv(M)
     Np = np.asarray(prepared.shape)
-    nn = np.rint(n_idx).astype(int) + (Np // 2)[:, None, None, None]
-    inside = np.all((nn >= 0) & (nn < Np[:, None, None, None]), axis=0)
-    inside_idx = tuple(np.clip(nn[k], 0, Np[k] - 1) for k in range(3))
-    inside &= ~prepared.mask[inside_idx]
-    del Q, n_idx, nn, inside_idx
+    inside = np.zeros(tuple(int(n) for n in shape), bool)
+    d1, d2 = np.meshgrid(axes[1] - qc[1], axes[2] - qc[2], indexing="ij")
+    for i0, x in enumerate(axes[0] - qc[0]):
+        nn = [np.rint(Minv[k, 0] * x + Minv[k, 1] * d1 + Minv[k, 2] * d2).astype(int) + Np[k] // 2
+              for k in range(3)]
+        ok = np.all([(v >= 0) & (v < n) for v, n in zip(nn, Np)], axis=0)
+        idx = tuple(np.clip(v, 0, n - 1) for v, n in zip(nn, Np))
+        inside[i0] = ok & ~prepared.mask[idx]
 
     used_fuzzy = bool(fuzzy) if fuzzy != "auto" else False
     inten, empty = grid(used_fuzzy)
