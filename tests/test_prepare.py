@@ -323,3 +323,21 @@ def test_user_mask_from_file(cube, tmp_path):
         p = pr.prepare_scan(cube["scan"], crop=(64, 64, 64), user_mask=str(tmp_path / "m.npy"))
     assert p.mask[:, 32 + 15, :].all()
     assert p.mask_counts["user_mask"] == 170
+
+
+def test_from_a_scan_file(cube, prepared, tmp_path):
+    from braggstrain.scanio import write_scan
+
+    scan = cube["scan"]
+    path = tmp_path / "cube_111.h5"
+    write_scan(path, scan.frames, scan.angles, "eta", scan.instrument, hkl=(1, 1, 1), material="Pt")
+    p = pr.prepare_scan(str(path), crop=(64, 64, 64))
+    np.testing.assert_array_equal(p.intensity, prepared.intensity)
+    assert p.source == str(path)
+    # a file whose rocked circle has the wrong number of angles is refused, naming file and field
+    ang = dict(scan.angles)
+    ang["eta"] = np.asarray(ang["eta"])[:-1]
+    bad = tmp_path / "bad.h5"
+    write_scan(bad, scan.frames, ang, "eta", scan.instrument)
+    with pytest.raises(ScanFileError, match=r"bad\.h5: field 'instrument/circles/eta'"):
+        pr.prepare_scan(str(bad))
