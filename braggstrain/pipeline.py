@@ -350,6 +350,12 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     run = PipelineRun(out, resume, say)
     hkls = [tuple(r["hkl"]) for r in cfg["reflection"]]
     names = [r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m") for r in cfg["reflection"]]
+    import re
+
+    for i, n in enumerate(names):
+        if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.+-]{0,63}", n) or ".." in n:
+            raise ConfigError(f"{src}: key 'reflection[{i}].name': value {n!r}; expected letters, digits and "
+                              "_ . + - only (it names files inside the output folder)")
     if len(set(names)) != len(names):
         raise ConfigError(f"{src}: key 'reflection': names must be unique, got {names}")
     g_ref = []

@@ -62,7 +62,7 @@ burgers = [0.0, 0.5, -0.5]
 """
 
 
-def small_toml(hkls=((1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2)), frames=48, window=48, extra=""):
+def small_toml(hkls=((1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2)), frames=56, window=56, extra=""):
     refl = "\n".join(f'[[reflection]]\nname = "r{i}"\nhkl = [{h[0]}, {h[1]}, {h[2]}]\nscan = "scans/r{i}.h5"\n'
                      for i, h in enumerate(hkls))
     return SMALL_TOML.format(reflections=refl, frames=frames, window=window, extra=extra)

@@ -55,7 +55,7 @@ def test_simulate_and_inspect(tmp_path, small_config, capsys):
     scans = sorted((out / "scans").glob("*.h5"))
     assert len(scans) == 4 and (out / "truth.h5").exists() and (out / "pipeline.toml").exists()
     s = read_scan(scans[0])
-    assert s.frames.shape == (48, 96, 96) and s.hkl == (1, 1, 1)
+    assert s.frames.shape == (56, 96, 96) and s.hkl == (1, 1, 1)
     assert main(["inspect", str(scans[0])]) == 0
     text = capsys.readouterr().out
     assert "max counts" in text and "eta" in text
