@@ -21,7 +21,7 @@ from ..errors import InputError, PhasingError
 from . import projections as _k
 from .coherence import CoherenceModel, CoherenceSettings
 from .fft import FFTBackend, _check_threads
-from .metrics import centre_of_mass_shift, peak_offset, remove_phase_ramp, sharpness
+from .metrics import centre_of_mass_shift, peak_offset, sharpness
 from .plan import Stage, default_plan, plan_from_config
 from .support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
 
@@ -136,10 +136,11 @@ class Reconstruction:
         Iterations done.
     ramp : float64 (3,)
         Offset of the diffraction peak's centre of mass from n//2 (voxels of
-        the reciprocal grid) whose phase ramp was removed from ``obj``;
+        the reciprocal grid) whose phase ramp exp(2 pi i ramp.(j - n//2)/n)
+        was removed from ``obj`` (j the final array index);
         ``metrics.remove_phase_ramp(obj, -ramp)`` puts it back.
     shift : tuple of int
-        Roll applied to centre the crystal.
+        Roll applied to centre the crystal, on top of the plain fftshift.
     coherence_kernel : float64 (2w+1,)*3 or None
         Estimated coherence function (reciprocal space, unit sum) when
         partial coherence was on.
@@ -415,7 +416,7 @@ def _iterate(data, stages, opts, run, rng, t0):
     from tqdm import tqdm
 
     shape = data.shape
-    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend)
+    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend, source=True)
     buf = fft.buffer
     bflat = buf.reshape(-1)
     n_vox = fft.size
@@ -433,10 +434,9 @@ def _iterate(data, stages, opts, run, rng, t0):
     bflat *= np.exp(1j * phases)
     del phases
     fft.backward()
-    x = np.empty(n_vox, dtype=np.complex64)
-    x[:] = bflat * inv_n
+    x = fft.source.reshape(-1)  # the iterate; forward FFTs read it in place
+    np.multiply(bflat, inv_n, out=x)
     x[~support] = 0
-    bflat[:] = x
 
     bg_mode = opts.background
     background = np.float32(bg_mode if isinstance(bg_mode, float) else 0.0)
@@ -513,13 +513,13 @@ def _iterate(data, stages, opts, run, rng, t0):
             k_update = 0
             sup_size = int(support.sum())
             for it in range(stage.iterations):
-                fft.forward()
+                fft.forward_from_source()
                 err, ferr = figures(it % every == 0, it_global)
                 amp_err[it_global] = err / sum_i
                 if n_free:
                     free_err[it_global] = ferr / free_sum_i
                 fft.backward()
-                _k.support_step(x, bflat, support, code, beta)
+                _k.support_step(x, bflat, support, code, beta, False)
                 sup_hist[it_global] = sup_size
                 stage_hist[it_global] = si
                 it_global += 1
@@ -535,7 +535,6 @@ def _iterate(data, stages, opts, run, rng, t0):
                     sigma = s0 * (s1 / s0) ** min(frac, 1.0)
                     sup_size = shrinkwrap(x, support, fft, sigma, stage.threshold)
                     k_update += 1
-                    bflat[:] = x
                     health = support_health(sup_size, initial_size, n_vox)
                     if health != STATUS_OK:
                         status = health
@@ -555,24 +554,30 @@ def _iterate(data, stages, opts, run, rng, t0):
     # Final object: the iterate restricted to the support, and its figures.
     t_finish = time.perf_counter()
     x[~support] = 0
-    bflat[:] = x
-    fft.forward()
+    fft.forward_from_source()
     err, ferr = figures(True, None)
     nll, fnll = last["nll"], last["free_nll"]
     fe = ferr / free_sum_i if n_free else nan
 
-    obj = scipy.fft.fftshift(x.reshape(shape))
-    sup = scipy.fft.fftshift(support.reshape(shape))
+    # One roll takes FFT order to the centred layout and centres the crystal
+    # (circular centre of mass of |rho|^2 to n//2); the ramp is then removed
+    # in place, relative to the array centre.
+    x3 = x.reshape(shape)
+    if opts.center and support.any():
+        weight = np.abs(x3)
+        np.square(weight, out=weight)
+        roll = centre_of_mass_shift(weight)
+        del weight
+    else:
+        roll = tuple(n // 2 for n in shape)  # plain fftshift
+    shift = tuple(int((r - n // 2) % n) for r, n in zip(roll, shape))
+    obj = np.roll(x3, roll, axis=(0, 1, 2))
+    sup = np.roll(support.reshape(shape), roll, axis=(0, 1, 2))
     ramp = np.asarray(data.ramp if opts.remove_ramp else np.zeros(3), dtype=float)
     if opts.remove_ramp:
-        obj = remove_phase_ramp(obj, ramp)
-    shift = (0, 0, 0)
-    if opts.center and sup.any():
-        shift = centre_of_mass_shift(np.abs(obj) ** 2)
-        obj = np.roll(obj, shift, axis=(0, 1, 2))
-        sup = np.roll(sup, shift, axis=(0, 1, 2))
-    obj = np.ascontiguousarray(obj, dtype=np.complex64)
-    sup = np.ascontiguousarray(sup, dtype=bool)
+        for axis, (n, q0) in enumerate(zip(shape, ramp)):
+            factor = np.exp(-2j * np.pi * q0 / n * (np.arange(n) - n // 2)).astype(np.complex64)
+            obj *= factor.reshape([n if a == axis else 1 for a in range(3)])
     if status != STATUS_OK:
         obj = np.zeros(shape, dtype=np.complex64)  # never hand out a broken object
     metrics = Metrics(

@@ -92,6 +92,11 @@ class FFTBackend:
     effort : str
         FFTW planner effort, one of ``FFTW_ESTIMATE``, ``FFTW_MEASURE``
         (default), ``FFTW_PATIENT``, ``FFTW_EXHAUSTIVE``.
+    source : bool
+        Also own an aligned complex64 :attr:`source` array and plan a forward
+        transform from it into :attr:`buffer` (:meth:`forward_from_source`),
+        which leaves ``source`` intact; the phasing loop keeps its iterate
+        there and so saves the copy into the buffer.
 
     Attributes
     ----------
@@ -102,7 +107,7 @@ class FFTBackend:
         ``"pyfftw"`` or ``"scipy"``, the backend actually used.
     """
 
-    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE"):
+    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE", source=False):
         shape = tuple(int(n) for n in shape)
         if not shape or any(n < 1 for n in shape):
             raise InputError(f"shape: expected positive sizes, got {shape}")
@@ -128,9 +133,21 @@ class FFTBackend:
                 self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_BACKWARD", flags=flags,
                                         threads=self.threads)
+                self._src = None
+                if source:
+                    self.source = pyfftw.empty_aligned(shape, dtype=np.complex64)
+                    self._src = pyfftw.FFTW(self.source, self.buffer, axes=axes,
+                                            direction="FFTW_FORWARD", flags=(effort,),
+                                            threads=self.threads)
             self.buffer[...] = 0
+            if source:
+                self.source[...] = 0
         else:
             self.buffer = np.zeros(shape, dtype=np.complex64)
+            if source:
+                self.source = np.zeros(shape, dtype=np.complex64)
+        if not source:
+            self.source = None
 
     def forward(self):
         """Unnormalised forward transform of :attr:`buffer`, in place."""
@@ -139,6 +156,15 @@ class FFTBackend:
         else:
             self.buffer[...] = scipy.fft.fftn(self.buffer, axes=self._axes,
                                               workers=self.threads, overwrite_x=True)
+
+    def forward_from_source(self):
+        """Unnormalised forward transform of :attr:`source` into :attr:`buffer`."""
+        if self.source is None:
+            raise InputError("FFTBackend: no source array; create it with source=True")
+        if self.name == "pyfftw":
+            self._src.execute()
+        else:
+            self.buffer[...] = scipy.fft.fftn(self.source, axes=self._axes, workers=self.threads)
 
     def backward(self):
         """Unnormalised backward transform of :attr:`buffer` (no ``1/N``), in place."""

@@ -52,11 +52,17 @@ def sharpness(obj):
     Higher means a more concentrated modulus; a common ranking metric in
     phase retrieval (common practice, no source).
     """
-    a2 = np.abs(np.asarray(obj)) ** 2
+    a2 = np.abs(np.asarray(obj))
+    np.square(a2, out=a2)
     s2 = float(a2.sum(dtype=np.float64))
     if s2 == 0:
         return 0.0
-    return float((a2.astype(np.float64) ** 2).sum() / s2 ** 2 * a2.size)
+    flat = a2.reshape(-1)
+    s4 = 0.0
+    for start in range(0, flat.size, 1 << 20):  # float64 sums in chunks: little memory
+        c = flat[start:start + (1 << 20)].astype(np.float64)
+        s4 += float(np.dot(c, c))
+    return s4 / s2 ** 2 * a2.size
 
 
 def twin(obj):
@@ -247,13 +253,13 @@ def remove_phase_ramp(obj, offset):
     it, with ``offset`` = q0 in voxels of the reciprocal grid.  A negative
     offset adds the ramp back.
     """
-    obj = np.asarray(obj)
-    phase = np.zeros(obj.shape, dtype=np.float64)
-    for axis, (n, q0) in enumerate(zip(obj.shape, offset)):
-        shape = [1] * obj.ndim
+    out = np.array(obj, dtype=np.complex64)  # a copy; the ramp is applied in place
+    for axis, (n, q0) in enumerate(zip(out.shape, offset)):
+        shape = [1] * out.ndim
         shape[axis] = n
-        phase = phase + (2 * np.pi * q0 / n) * (np.arange(n) - n // 2).reshape(shape)
-    return (obj * np.exp(-1j * phase)).astype(np.complex64)
+        factor = np.exp(-2j * np.pi * float(q0) / n * (np.arange(n) - n // 2))
+        out *= factor.astype(np.complex64).reshape(shape)
+    return out
 
 
 def centre_of_mass_shift(weight):
@@ -262,10 +268,10 @@ def centre_of_mass_shift(weight):
     The centre of mass is taken on the circle (angle of the mean phasor) so an
     object split across the periodic edges is handled.
     """
-    w = np.asarray(weight, dtype=np.float64)
+    w = np.asarray(weight)
     shifts = []
     for axis, n in enumerate(w.shape):
-        marg = w.sum(axis=tuple(a for a in range(w.ndim) if a != axis))
+        marg = w.sum(axis=tuple(a for a in range(w.ndim) if a != axis), dtype=np.float64)
         ang = np.angle((marg * np.exp(2j * np.pi * np.arange(n) / n)).sum())
         com = (ang / (2 * np.pi) * n) % n
         shifts.append(int(round(n // 2 - com)) % n)

@@ -156,11 +156,12 @@ def modulus_step_model(psi, amp, model, background, scale):
 
 
 @njit(**_JIT)
-def support_step(x, buf, support, code, beta):
+def support_step(x, buf, support, code, beta, copy):
     """Real-space update of ER (code 0), HIO (1) or RAAR (2), in place.
 
-    ``buf`` holds ``p = P_M x`` on entry; on exit ``x`` and ``buf`` both hold
-    the new iterate (``buf`` is then ready for the next forward FFT).
+    ``buf`` holds ``p = P_M x`` on entry; on exit ``x`` holds the new
+    iterate, and so does ``buf`` when ``copy`` (ready for an in-place
+    forward FFT).
     """
     c1 = np.float32(beta)
     c2 = np.float32(1.0 - 2.0 * beta)
@@ -175,7 +176,8 @@ def support_step(x, buf, support, code, beta):
         else:
             v = c1 * x[i] + c2 * p
         x[i] = v
-        buf[i] = v
+        if copy:
+            buf[i] = v
 
 
 @njit(**_JIT)
@@ -302,7 +304,7 @@ def warm_up():
     sup = np.ones(n, np.bool_)
     modulus_step(psi, amp, np.float32(1.0))
     modulus_step_model(psi, amp, model, np.float32(0.0), np.float32(1.0))
-    support_step(psi, psi.copy(), sup, 1, 0.9)
+    support_step(psi, psi.copy(), sup, 1, 0.9, True)
     intensity_of(psi, model)
     poisson_sum_field(psi, amp, np.float32(0.0))
     poisson_sum_model(model, amp, np.float32(0.0))
