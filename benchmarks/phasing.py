@@ -116,6 +116,7 @@ def main(argv=None):
     reconstruct(crystal_intensity(16), plan=[Stage("HIO", 2, 0.9, "shrinkwrap", 1)], seed=0,
                 threads=threads, raise_on_failure=False)
     fft = FFTBackend(intensity.shape, threads=threads)
+    fft.real_buffer  # the shrink-wrap's real transforms
     del fft
     gc.collect()
 

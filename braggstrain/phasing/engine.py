@@ -416,7 +416,9 @@ def _iterate(data, stages, opts, run, rng, t0):
     from tqdm import tqdm
 
     shape = data.shape
-    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend, source=True)
+    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend)
+    if any(st.support_update == "shrinkwrap" for st in stages):
+        fft.real_buffer  # plan the real transforms of the shrink-wrap blur now, not in the loop
     buf = fft.buffer
     bflat = buf.reshape(-1)
     n_vox = fft.size
@@ -434,9 +436,10 @@ def _iterate(data, stages, opts, run, rng, t0):
     bflat *= np.exp(1j * phases)
     del phases
     fft.backward()
-    x = fft.source.reshape(-1)  # the iterate; forward FFTs read it in place
+    x = np.empty(n_vox, dtype=np.complex64)  # the iterate
     np.multiply(bflat, inv_n, out=x)
     x[~support] = 0
+    bflat[:] = x
 
     bg_mode = opts.background
     background = np.float32(bg_mode if isinstance(bg_mode, float) else 0.0)
@@ -513,13 +516,13 @@ def _iterate(data, stages, opts, run, rng, t0):
             k_update = 0
             sup_size = int(support.sum())
             for it in range(stage.iterations):
-                fft.forward_from_source()
+                fft.forward()
                 err, ferr = figures(it % every == 0, it_global)
                 amp_err[it_global] = err / sum_i
                 if n_free:
                     free_err[it_global] = ferr / free_sum_i
                 fft.backward()
-                _k.support_step(x, bflat, support, code, beta, False)
+                _k.support_step(x, bflat, support, code, beta)
                 sup_hist[it_global] = sup_size
                 stage_hist[it_global] = si
                 it_global += 1
@@ -554,7 +557,8 @@ def _iterate(data, stages, opts, run, rng, t0):
     # Final object: the iterate restricted to the support, and its figures.
     t_finish = time.perf_counter()
     x[~support] = 0
-    fft.forward_from_source()
+    bflat[:] = x
+    fft.forward()
     err, ferr = figures(True, None)
     nll, fnll = last["nll"], last["free_nll"]
     fe = ferr / free_sum_i if n_free else nan

@@ -180,7 +180,7 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
 
     # Plan the FFT once here so that every worker imports the same wisdom,
     # and load (or compile) the kernels before workers start.
-    FFTBackend(data.shape, threads=opts.threads, backend=opts.fft_backend)
+    FFTBackend(data.shape, threads=opts.threads, backend=opts.fft_backend).real_buffer
     wisdom = export_wisdom()
     _k.warm_up()
     tasks = [(data, stages, opts, r, wisdom) for r in range(runs)]

@@ -92,22 +92,20 @@ class FFTBackend:
     effort : str
         FFTW planner effort, one of ``FFTW_ESTIMATE``, ``FFTW_MEASURE``
         (default), ``FFTW_PATIENT``, ``FFTW_EXHAUSTIVE``.
-    source : bool
-        Also own an aligned complex64 :attr:`source` array and plan a forward
-        transform from it into :attr:`buffer` (:meth:`forward_from_source`),
-        which leaves ``source`` intact; the phasing loop keeps its iterate
-        there and so saves the copy into the buffer.
 
     Attributes
     ----------
     buffer : ndarray of complex64
         The work array; :meth:`forward` and :meth:`backward` transform it in
         place.
+    real_buffer, half_buffer : ndarray of float32 / complex64
+        Work arrays of the real transforms :meth:`real_forward` and
+        :meth:`real_backward` (the shrink-wrap blur), planned on first use.
     name : str
         ``"pyfftw"`` or ``"scipy"``, the backend actually used.
     """
 
-    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE", source=False):
+    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE"):
         shape = tuple(int(n) for n in shape)
         if not shape or any(n < 1 for n in shape):
             raise InputError(f"shape: expected positive sizes, got {shape}")
@@ -123,6 +121,8 @@ class FFTBackend:
         self.name = "pyfftw" if (backend != "scipy" and HAVE_PYFFTW) else "scipy"
         axes = tuple(range(len(shape)))
         self._axes = axes
+        self._effort = effort
+        self._real = self._half = None
         if self.name == "pyfftw":
             self.buffer = pyfftw.empty_aligned(shape, dtype=np.complex64)
             flags = (effort, "FFTW_DESTROY_INPUT")
@@ -133,21 +133,9 @@ class FFTBackend:
                 self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_BACKWARD", flags=flags,
                                         threads=self.threads)
-                self._src = None
-                if source:
-                    self.source = pyfftw.empty_aligned(shape, dtype=np.complex64)
-                    self._src = pyfftw.FFTW(self.source, self.buffer, axes=axes,
-                                            direction="FFTW_FORWARD", flags=(effort,),
-                                            threads=self.threads)
             self.buffer[...] = 0
-            if source:
-                self.source[...] = 0
         else:
             self.buffer = np.zeros(shape, dtype=np.complex64)
-            if source:
-                self.source = np.zeros(shape, dtype=np.complex64)
-        if not source:
-            self.source = None
 
     def forward(self):
         """Unnormalised forward transform of :attr:`buffer`, in place."""
@@ -157,14 +145,56 @@ class FFTBackend:
             self.buffer[...] = scipy.fft.fftn(self.buffer, axes=self._axes,
                                               workers=self.threads, overwrite_x=True)
 
-    def forward_from_source(self):
-        """Unnormalised forward transform of :attr:`source` into :attr:`buffer`."""
-        if self.source is None:
-            raise InputError("FFTBackend: no source array; create it with source=True")
+    def _real_plans(self):
+        if self._real is not None:
+            return
+        n_half = self.shape[:-1] + (self.shape[-1] // 2 + 1,)
         if self.name == "pyfftw":
-            self._src.execute()
+            real = pyfftw.empty_aligned(self.shape, dtype=np.float32)
+            half = pyfftw.empty_aligned(n_half, dtype=np.complex64)
+            flags = (self._effort, "FFTW_DESTROY_INPUT")
+            with _plan_lock:
+                self._rfwd = pyfftw.FFTW(real, half, axes=self._axes, direction="FFTW_FORWARD",
+                                         flags=flags, threads=self.threads)
+                self._rbwd = pyfftw.FFTW(half, real, axes=self._axes, direction="FFTW_BACKWARD",
+                                         flags=flags, threads=self.threads)
+            real[...] = 0
         else:
-            self.buffer[...] = scipy.fft.fftn(self.source, axes=self._axes, workers=self.threads)
+            real = np.zeros(self.shape, dtype=np.float32)
+            half = np.zeros(n_half, dtype=np.complex64)
+        self._real, self._half = real, half
+
+    @property
+    def real_buffer(self):
+        """Real float32 work array of :attr:`shape` for :meth:`real_forward` (made on first use)."""
+        self._real_plans()
+        return self._real
+
+    @property
+    def half_buffer(self):
+        """Complex64 half spectrum, shape (..., n//2 + 1), of :meth:`real_forward`."""
+        self._real_plans()
+        return self._half
+
+    def real_forward(self):
+        """Unnormalised real-to-complex FFT of :attr:`real_buffer` into :attr:`half_buffer`."""
+        self._real_plans()
+        if self.name == "pyfftw":
+            self._rfwd.execute()
+        else:
+            self._half[...] = scipy.fft.rfftn(self._real, axes=self._axes, workers=self.threads)
+
+    def real_backward(self):
+        """Unnormalised complex-to-real FFT of :attr:`half_buffer` into :attr:`real_buffer`.
+
+        The half spectrum is destroyed.
+        """
+        self._real_plans()
+        if self.name == "pyfftw":
+            self._rbwd.execute()
+        else:
+            self._real[...] = scipy.fft.irfftn(self._half, s=self.shape, axes=self._axes,
+                                               norm="forward", workers=self.threads)
 
     def backward(self):
         """Unnormalised backward transform of :attr:`buffer` (no ``1/N``), in place."""

@@ -156,12 +156,11 @@ def modulus_step_model(psi, amp, model, background, scale):
 
 
 @njit(**_JIT)
-def support_step(x, buf, support, code, beta, copy):
+def support_step(x, buf, support, code, beta):
     """Real-space update of ER (code 0), HIO (1) or RAAR (2), in place.
 
-    ``buf`` holds ``p = P_M x`` on entry; on exit ``x`` holds the new
-    iterate, and so does ``buf`` when ``copy`` (ready for an in-place
-    forward FFT).
+    ``buf`` holds ``p = P_M x`` on entry; on exit ``x`` and ``buf`` both hold
+    the new iterate (``buf`` is then ready for the next in-place forward FFT).
     """
     c1 = np.float32(beta)
     c2 = np.float32(1.0 - 2.0 * beta)
@@ -176,8 +175,7 @@ def support_step(x, buf, support, code, beta, copy):
         else:
             v = c1 * x[i] + c2 * p
         x[i] = v
-        if copy:
-            buf[i] = v
+        buf[i] = v
 
 
 @njit(**_JIT)
@@ -229,14 +227,14 @@ def poisson_sum_model(model, amp, background):
 
 
 @njit(**_JIT)
-def masked_magnitude(x, support, buf):
-    """buf <- |x| on the support, 0 elsewhere (input of the shrink-wrap blur)."""
+def masked_magnitude(x, support, out):
+    """out <- |x| on the support, 0 elsewhere (input of the shrink-wrap blur; float32 out)."""
     for i in prange(x.size):
         if support[i]:
             z = x[i]
-            buf[i] = np.complex64(math.sqrt(z.real * z.real + z.imag * z.imag))
+            out[i] = math.sqrt(z.real * z.real + z.imag * z.imag)
         else:
-            buf[i] = np.complex64(0)
+            out[i] = 0.0
 
 
 @njit(**_JIT)
@@ -252,17 +250,15 @@ def gaussian_multiply(buf, g0, g1, g2):
 
 
 @njit(**_JIT)
-def threshold_real(buf, fraction, support):
-    """support <- Re(buf) >= fraction * max Re(buf); returns the support size."""
+def threshold_real(values, fraction, support):
+    """support <- values >= fraction * max(values) (float32 values); returns the support size."""
     top = -np.inf
-    for i in range(buf.size):
-        v = buf[i].real
-        if v > top:
-            top = v
+    for i in prange(values.size):
+        top = max(top, values[i])
     level = fraction * top
     count = 0
-    for i in prange(buf.size):
-        inside = buf[i].real >= level and top > 0
+    for i in prange(values.size):
+        inside = values[i] >= level and top > 0
         support[i] = inside
         count += 1 if inside else 0
     return count
@@ -304,11 +300,11 @@ def warm_up():
     sup = np.ones(n, np.bool_)
     modulus_step(psi, amp, np.float32(1.0))
     modulus_step_model(psi, amp, model, np.float32(0.0), np.float32(1.0))
-    support_step(psi, psi.copy(), sup, 1, 0.9, True)
+    support_step(psi, psi.copy(), sup, 1, 0.9)
     intensity_of(psi, model)
     poisson_sum_field(psi, amp, np.float32(0.0))
     poisson_sum_model(model, amp, np.float32(0.0))
-    masked_magnitude(psi, sup, psi.copy())
+    masked_magnitude(psi, sup, model)
     g = np.ones(2, np.float32)
     gaussian_multiply(np.ones((2, 2, 2), np.complex64), g, g, g)
-    threshold_real(psi, 0.5, sup)
+    threshold_real(model, 0.5, sup)

@@ -94,8 +94,9 @@ def gaussian_transfer(n, sigma):
 def shrinkwrap(x, support, fft, sigma, threshold):
     """Shrink-wrap update of ``support`` in place (Marchesini et al. 2003).
 
-    S <- {r : (g_sigma * |x S|)(r) >= threshold * max}, with the blur done by
-    FFT in the backend's work buffer (which is overwritten).
+    S <- {r : (g_sigma * |x S|)(r) >= threshold * max}.  The blur is done by
+    real-to-complex FFT in the backend's real work arrays, so the complex
+    work buffer is left as it is.
 
     Parameters
     ----------
@@ -110,16 +111,24 @@ def shrinkwrap(x, support, fft, sigma, threshold):
     int
         New support size in voxels.
     """
-    buf = fft.buffer
-    flat = buf.reshape(-1)
+    real = fft.real_buffer
+    flat = real.reshape(-1)
     _k.masked_magnitude(x, support, flat)
-    fft.forward()
+    fft.real_forward()
     sig = np.broadcast_to(np.asarray(sigma, dtype=float), (3,))
-    g = [gaussian_transfer(n, s) for n, s in zip(buf.shape, sig)]
+    shape = real.shape
+    g = [gaussian_transfer(shape[0], sig[0]), gaussian_transfer(shape[1], sig[1]),
+         half_gaussian_transfer(shape[2], sig[2])]
     g[0] = g[0] / np.float32(fft.size)
-    _k.gaussian_multiply(buf, g[0], g[1], g[2])
-    fft.backward()
+    _k.gaussian_multiply(fft.half_buffer, g[0], g[1], g[2])
+    fft.real_backward()
     return int(_k.threshold_real(flat, float(threshold), support))
+
+
+def half_gaussian_transfer(n, sigma):
+    """:func:`gaussian_transfer` on the n//2 + 1 frequencies of a real FFT."""
+    f = np.fft.rfftfreq(n)
+    return np.exp(-2.0 * np.pi ** 2 * sigma ** 2 * f ** 2).astype(np.float32)
 
 
 def support_health(size, initial_size, total, min_voxels=27, collapse_ratio=1 / 64,
