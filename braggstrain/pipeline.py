@@ -80,6 +80,12 @@ def check_options(cfg):
         out["phasing"] = options_from_config(ph)
     except ConfigError as e:
         raise ConfigError(f"{src}: key 'phasing': {e}") from None
+    for k, lo in (("runs", 1), ("keep", 1), ("seed", 0), ("threads", 1)):
+        v = ph.get(k)
+        if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < lo):
+            raise ConfigError(f"{src}: key 'phasing.{k}': value {v!r}; expected an integer ≥ {lo}")
+    if ph.get("keep", 1) > ph.get("runs", 8):
+        raise ConfigError(f"{src}: key 'phasing.keep': value {ph['keep']}; expected at most runs = {ph.get('runs', 8)}")
     fr = dict(cfg["frame"])
     route = fr.get("route", frame.DEFAULT_ROUTE)
     if route not in frame.ROUTES:
