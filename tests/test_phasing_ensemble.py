@@ -7,7 +7,7 @@ from braggstrain.errors import InputError, PhasingError
 from braggstrain.phasing import Stage, align, ensemble, prtf, reconstruct, twin
 from braggstrain.phasing.metrics import far_field
 
-from test_phasing_helpers import clean_intensity, crystal, error_to_truth
+from test_phasing_helpers import clean_intensity, crystal, error_to_truth, noisy_intensity
 
 SHORT = [Stage("HIO", 60, 0.9, "shrinkwrap", 20, (2.0, 1.0), 0.15), Stage("ER", 20, None, "none")]
 
@@ -20,20 +20,33 @@ class SerialExecutor:
 
 
 def test_average_is_no_worse_than_the_best_run():
-    # Acceptance check of the phasing issue; reference: the simulated truth.
+    # Acceptance check of the phasing issue, on the Poisson data of the
+    # reconstruct check (1e5 peak counts); reference: the simulated truth.
     n = 48
-    res = ensemble(clean_intensity(n), runs=4, keep=3, seed=21)
+    counts, scale = noisy_intensity(n, 1e5)
+    truth = crystal(n) * np.float32(np.sqrt(scale))
+    res = ensemble(counts, runs=4, keep=3, seed=21)
     assert len(res.runs) == 4 and len(res.kept) == 3 and res.kept[0] == res.best.run
     free = {r.run: r.metrics.free_nll for r in res.runs}
     assert [free[i] for i in res.ranking] == sorted(free[i] for i in res.ranking)
-    e_avg = error_to_truth(res.obj, crystal(n), res.ramp)
-    e_best = error_to_truth(res.best.obj, crystal(n), res.best.ramp)
+    e_avg = error_to_truth(res.obj, truth, res.ramp)
+    e_best = error_to_truth(res.best.obj, truth, res.best.ramp)
     assert e_avg <= e_best, (e_avg, e_best)
-    assert e_avg <= 0.02
+    assert e_avg <= 0.08
     # PRTF of converged runs: close to 1 at low q, never above 1
     vals = res.prtf.values[res.prtf.counts > 0]
     assert np.all(vals <= 1 + 1e-6) and vals[:3].min() > 0.9
     assert all(a["overlap"] > 0.95 for a in res.alignment)
+
+
+def test_noise_free_average_within_2_percent():
+    # On noise-free data single runs converge to ~0.1 %, so averaging cannot
+    # beat the best one by much; the average must still meet the 2 % figure.
+    n = 48
+    res = ensemble(clean_intensity(n), runs=2, keep=2, seed=22, executor=SerialExecutor(),
+                   threads=2)
+    assert error_to_truth(res.obj, crystal(n), res.ramp) <= 0.02
+    assert res.support.sum() > 0 and res.obj.dtype == np.complex64
 
 
 def test_prtf_of_identical_runs_in_different_poses_is_one():

@@ -22,7 +22,7 @@ from . import projections as _k
 from .coherence import CoherenceModel, CoherenceSettings
 from .fft import FFTBackend, _check_threads
 from .metrics import centre_of_mass_shift, peak_offset, sharpness
-from .plan import Stage, default_plan, plan_from_config
+from .plan import default_plan, plan_from_config
 from .support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
 
 __all__ = [
@@ -402,7 +402,6 @@ def _fit_background(model, amp, current):
 def _run(data: _Data, stages, opts: _Options, run: int) -> Reconstruction:
     """One run from the random start (data.seed, run); never raises on failure."""
     t0 = time.perf_counter()
-    shape = data.shape
     rng = _run_rng(data.seed, run)
     old_threads = numba.get_num_threads()
     numba.set_num_threads(max(1, min(opts.threads, numba.config.NUMBA_NUM_THREADS)))

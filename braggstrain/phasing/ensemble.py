@@ -140,7 +140,8 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
         run :func:`reconstruct` makes with the same seed and threads.
     executor : object with ``map(fn, iterable)``, optional
         Where the runs execute.  Default: a local process pool (spawned
-        workers, one per core, at most ``runs``).  A ``concurrent.futures``
+        workers, one per core, at most ``runs``; a script calling this must
+        then guard its entry point with ``if __name__ == "__main__":``).  A ``concurrent.futures``
         pool or a ``dask.distributed.Client`` (whose ``map`` returns futures,
         gathered here) work as well.
     progress : bool

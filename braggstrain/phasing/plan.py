@@ -21,7 +21,7 @@ from __future__ import annotations
 
 import difflib
 import numbers
-from dataclasses import asdict, dataclass, field, fields
+from dataclasses import asdict, dataclass, fields
 
 from ..errors import ConfigError
 
