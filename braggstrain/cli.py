@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import argparse
 import sys
-import time
+
 from pathlib import Path
 
 import numpy as np

@@ -37,8 +37,6 @@ from __future__ import annotations
 import csv
 import io
 import json
-import os
-import tempfile
 import warnings
 from dataclasses import dataclass, field
 from fractions import Fraction
@@ -1024,18 +1022,13 @@ def _slip_planes(b, pts_A, dirs, length, U, crystal, vmean, angle_tol_deg=10.0):
 # --------------------------------------------------------------------------
 
 def _atomic_write_bytes(path, data):
+    from .scanio import atomic_path
+
     path = Path(path)
     if not path.parent.exists():
         raise InputError(f"{path}: the folder {path.parent} does not exist")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "wb") as f:
-            f.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    with atomic_path(path) as tmp:
+        Path(tmp).write_bytes(data)
 
 
 def dislocations_to_records(lines):

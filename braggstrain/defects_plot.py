@@ -9,8 +9,6 @@ array centre. Uses matplotlib's Agg backend, so it runs without a display.
 
 from __future__ import annotations
 
-import os
-import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -168,16 +166,11 @@ def _default_view(lines):
 
 
 def _save_atomic(fig, path, dpi):
+    from .scanio import atomic_path
+
     path = Path(path)
     if not path.parent.exists():
         raise InputError(f"{path}: the folder {path.parent} does not exist")
     fmt = path.suffix.lstrip(".").lower() or "png"
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.stem}.", suffix=f".{fmt}", dir=path.parent)
-    os.close(fd)
-    try:
+    with atomic_path(path) as tmp:
         fig.savefig(tmp, format=fmt, dpi=dpi, bbox_inches="tight")
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise

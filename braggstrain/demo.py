@@ -30,7 +30,7 @@ from pathlib import Path
 import numpy as np
 
 from . import forward as fw
-from .config import build_crystal, build_instrument, build_specimen, resolve_path
+from .config import build_crystal, build_instrument, build_specimen
 from .errors import ConfigError
 from .scanio import atomic_path, write_scan
 

@@ -22,8 +22,8 @@ are in metres (beamline practice; only their ratio enters Q).
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
-from typing import Mapping, Sequence
+from dataclasses import dataclass
+from typing import Mapping
 
 import numpy as np
 

@@ -40,9 +40,9 @@ from typing import Mapping
 
 import numpy as np
 
-from .crystal import Crystal, HC_KEV_ANGSTROM
+from .crystal import HC_KEV_ANGSTROM
 from .errors import ConfigError, GeometryError, InputError, ReflectionError
-from .instrument import AXES, Circle, Detector, Diffractometer, axis_rotation
+from .instrument import AXES, axis_rotation
 
 __all__ = [
     "bunge_matrix", "mounting_matrix", "orientation_from_euler", "MeasuredReflection",

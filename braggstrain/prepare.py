@@ -1033,25 +1033,11 @@ def read_prepared(path):
         naming the file and the field for a missing file, a wrong format or
         version, missing or mis-shaped fields.
     """
-    import h5py
-
     from .instrument import Diffractometer
+    from .scanio import open_versioned
 
     path = str(path)
-    if not Path(path).exists():
-        raise ScanFileError(path, "(file)", "file not found")
-    try:
-        f = h5py.File(path, "r")
-    except OSError as e:
-        raise ScanFileError(path, "(file)", f"not a readable HDF5 file ({e})") from None
-    with f:
-        fmt = f.attrs.get("format")
-        fmt = fmt.decode() if isinstance(fmt, bytes) else fmt
-        if fmt != PREPARED_FORMAT:
-            raise ScanFileError(path, "@format", f"expected '{PREPARED_FORMAT}', got {fmt!r}")
-        ver = f.attrs.get("format_version")
-        if ver is None or int(ver) != PREPARED_VERSION:
-            raise ScanFileError(path, "@format_version", f"expected {PREPARED_VERSION}, got {ver!r}")
+    with open_versioned(path, PREPARED_FORMAT, PREPARED_VERSION) as f:
         for name in ("intensity", "mask", "geometry", "cleaning", "angles"):
             if name not in f:
                 raise ScanFileError(path, name, "missing")

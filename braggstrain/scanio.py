@@ -32,7 +32,7 @@ from .errors import ScanFileError
 from .instrument import Circle, Detector, Diffractometer
 
 __all__ = ["FORMAT_NAME", "FORMAT_VERSION", "Scan", "write_scan", "read_scan",
-           "read_frame_stack", "atomic_path"]
+           "read_frame_stack", "atomic_path", "open_versioned"]
 
 FORMAT_NAME = "braggstrain-scan"
 FORMAT_VERSION = 1
@@ -184,6 +184,35 @@ def _attr(path, obj, name, where, kind=None, shape=None):
     return a
 
 
+def open_versioned(path, format_name, version):
+    """Open an HDF5 file of ours for reading after checking its root
+    attributes ``format`` and ``format_version``.
+
+    Raises ScanFileError naming the file and the field for a missing or
+    unreadable file, another format or another version."""
+    import h5py
+
+    path = str(path)
+    if not os.path.exists(path):
+        raise ScanFileError(path, "(file)", "file not found")
+    try:
+        f = h5py.File(path, "r")
+    except OSError as e:
+        raise ScanFileError(path, "(file)", f"not a readable HDF5 file ({e})") from None
+    try:
+        fmt = f.attrs.get("format")
+        fmt = fmt.decode() if isinstance(fmt, bytes) else fmt
+        if fmt != format_name:
+            raise ScanFileError(path, "@format", f"expected '{format_name}', got {fmt!r}")
+        ver = f.attrs.get("format_version")
+        if ver is None or int(ver) != version:
+            raise ScanFileError(path, "@format_version", f"expected {version}, got {ver!r}")
+    except BaseException:
+        f.close()
+        raise
+    return f
+
+
 def read_scan(path):
     """Read and validate a braggstrain scan file.
 
@@ -202,20 +231,7 @@ def read_scan(path):
     import h5py
 
     path = str(path)
-    if not os.path.exists(path):
-        raise ScanFileError(path, "(file)", "file not found")
-    try:
-        f = h5py.File(path, "r")
-    except OSError as e:
-        raise ScanFileError(path, "(file)", f"not a readable HDF5 file ({e})") from None
-    with f:
-        fmt = f.attrs.get("format")
-        fmt = fmt.decode() if isinstance(fmt, bytes) else fmt
-        if fmt != FORMAT_NAME:
-            raise ScanFileError(path, "@format", f"expected '{FORMAT_NAME}', got {fmt!r}")
-        ver = f.attrs.get("format_version")
-        if ver is None or int(ver) != FORMAT_VERSION:
-            raise ScanFileError(path, "@format_version", f"expected {FORMAT_VERSION}, got {ver!r}")
+    with open_versioned(path, FORMAT_NAME, FORMAT_VERSION) as f:
         if "frames" not in f or not isinstance(f["frames"], h5py.Dataset):
             raise ScanFileError(path, "frames", "missing dataset of counts (frames × rows × columns)")
         frames = f["frames"][()]

@@ -31,7 +31,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage as ndi
 
-from .errors import InputError, TensorError
+from .errors import TensorError
 from .fields import (_complex3d, _voxel_size, default_support, phase_gradient, phase_ramp,
                      reference_voxel, trusted_voxels, unwrapped_phase)
 from .objects import SampleObject
