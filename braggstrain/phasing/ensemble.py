@@ -5,8 +5,10 @@ drawn from ``SeedSequence(seed, spawn_key=(0, run))``, the free voxels from
 ``SeedSequence(seed, spawn_key=(1,))`` (the same for all runs, so their free
 log-likelihoods compare), every run uses the same thread count, and the
 parent's FFTW wisdom is shipped to the workers so that every process uses the
-very same FFT plan.  A run on a Dask cluster, a resumed run or the default
-local pool therefore give bit-identical objects.
+very same FFT plan; the wisdom is also cached on disk
+(:func:`~braggstrain.phasing.fft.wisdom_cache_path`), so a later process,
+e.g. a resumed pipeline, plans the same way.  A run on a Dask cluster, a
+resumed run or the default local pool therefore give bit-identical objects.
 """
 
 from __future__ import annotations
@@ -20,7 +22,7 @@ import numpy as np
 from ..errors import InputError, PhasingError
 from . import projections as _k
 from .engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
-from .fft import FFTBackend, default_threads, export_wisdom, import_wisdom
+from .fft import FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from .metrics import PRTF, align, prtf, twin
 
 __all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS"]
@@ -95,7 +97,7 @@ class EnsembleResult:
 def _task(args):
     """Worker entry point (module level so it pickles): one run of an ensemble."""
     data, stages, opts, run, wisdom = args
-    import_wisdom(wisdom)
+    adopt_wisdom(wisdom)
     return _run(data, stages, opts, run)
 
 

@@ -11,8 +11,17 @@ pyFFTW plans are made with ``FFTW_MEASURE`` by default.  FFTW keeps the
 *wisdom* gathered while planning for the life of the process, so the second
 plan of the same shape is instant; :func:`export_wisdom` /
 :func:`import_wisdom` carry it to worker processes (the ensemble does this),
-which also makes every worker use the very same plan, hence bit-identical
-transforms, and :func:`save_wisdom` / :func:`load_wisdom` keep it on disk.
+and :func:`save_wisdom` / :func:`load_wisdom` keep it in a file.
+
+Measured plans differ from process to process (FFTW times candidates), and
+a different plan rounds differently, which HIO amplifies into visibly
+different reconstructions.  So the wisdom is also kept in a cache file, read
+before the first plan of a process and rewritten (atomically) when planning
+added to it: a later process, e.g. a resumed pipeline, then makes the very
+same plans and reproduces earlier runs bit for bit.  The file is
+``$BRAGGSTRAIN_FFTW_WISDOM`` if set (an empty value turns the cache off),
+else ``$XDG_CACHE_HOME/braggstrain/fftw-wisdom.json`` (``~/.cache`` by
+default).
 
 Without pyFFTW, ``scipy.fft`` with ``workers`` is used; it returns a new
 array per transform, which is copied back into the work array.
@@ -54,11 +63,53 @@ __all__ = [
     "import_wisdom",
     "save_wisdom",
     "load_wisdom",
+    "wisdom_cache_path",
+    "adopt_wisdom",
 ]
 
 _BACKENDS = ("auto", "pyfftw", "scipy")
 _EFFORTS = ("FFTW_ESTIMATE", "FFTW_MEASURE", "FFTW_PATIENT", "FFTW_EXHAUSTIVE")
 _plan_lock = threading.Lock()  # FFTW's planner is not thread safe
+_cache = {"loaded": False, "saved": None}
+
+
+def wisdom_cache_path():
+    """Path of the FFTW wisdom cache file, or None when the cache is off."""
+    env = os.environ.get("BRAGGSTRAIN_FFTW_WISDOM")
+    if env is not None:
+        return env or None
+    base = os.environ.get("XDG_CACHE_HOME") or os.path.join(os.path.expanduser("~"), ".cache")
+    return os.path.join(base, "braggstrain", "fftw-wisdom.json")
+
+
+def _cache_before_planning():
+    """Import the cached wisdom once per process (called with the plan lock held)."""
+    if _cache["loaded"]:
+        return
+    _cache["loaded"] = True
+    path = wisdom_cache_path()
+    if path is None:
+        return
+    try:
+        load_wisdom(path)
+    except (InputError, OSError):
+        pass  # an unreadable cache is rebuilt by the next save
+    _cache["saved"] = export_wisdom()
+
+
+def _cache_after_planning():
+    """Rewrite the cache if planning added wisdom (called with the plan lock held)."""
+    path = wisdom_cache_path()
+    if path is None:
+        return
+    wisdom = export_wisdom()
+    if wisdom == _cache["saved"]:
+        return
+    try:
+        save_wisdom(path)
+        _cache["saved"] = wisdom
+    except OSError:
+        pass  # a read-only cache location only costs reproducibility across processes
 
 
 def default_threads() -> int:
@@ -127,12 +178,14 @@ class FFTBackend:
             self.buffer = pyfftw.empty_aligned(shape, dtype=np.complex64)
             flags = (effort, "FFTW_DESTROY_INPUT")
             with _plan_lock:  # planning (MEASURE) scribbles over the buffer
+                _cache_before_planning()
                 self._fwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_FORWARD", flags=flags,
                                         threads=self.threads)
                 self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_BACKWARD", flags=flags,
                                         threads=self.threads)
+                _cache_after_planning()
             self.buffer[...] = 0
         else:
             self.buffer = np.zeros(shape, dtype=np.complex64)
@@ -154,10 +207,12 @@ class FFTBackend:
             half = pyfftw.empty_aligned(n_half, dtype=np.complex64)
             flags = (self._effort, "FFTW_DESTROY_INPUT")
             with _plan_lock:
+                _cache_before_planning()
                 self._rfwd = pyfftw.FFTW(real, half, axes=self._axes, direction="FFTW_FORWARD",
                                          flags=flags, threads=self.threads)
                 self._rbwd = pyfftw.FFTW(half, real, axes=self._axes, direction="FFTW_BACKWARD",
                                          flags=flags, threads=self.threads)
+                _cache_after_planning()
             real[...] = 0
         else:
             real = np.zeros(self.shape, dtype=np.float32)
@@ -223,6 +278,18 @@ def import_wisdom(wisdom) -> bool:
     if not HAVE_PYFFTW or wisdom is None:
         return False
     return any(pyfftw.import_wisdom(tuple(wisdom)))
+
+
+def adopt_wisdom(wisdom) -> None:
+    """Use ``wisdom`` from a parent process instead of this process's cache file.
+
+    The parent read the cache before planning, so its wisdom already holds
+    what the file had; importing the file again here could only disagree.
+    """
+    with _plan_lock:
+        import_wisdom(wisdom)
+        _cache["loaded"] = True
+        _cache["saved"] = export_wisdom()
 
 
 def save_wisdom(path) -> None:
