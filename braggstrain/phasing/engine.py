@@ -284,7 +284,7 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
     del data
 
     ac = autocorrelation(data_f, meas_f, threads=threads)
-    ratios = estimate_oversampling(data_f, meas_f, threads=threads, ac=ac)
+    ratios = estimate_oversampling(data_f, meas_f)
     for axis, r in enumerate(ratios):
         if r < 2:
             warnings.warn(f"intensity: oversampling along axis {axis} is about {r:.2f} (< 2 needed "

@@ -43,11 +43,19 @@ def fill_unmeasured(intensity_fft, measured, sigma=1.5):
 def autocorrelation(intensity_fft, measured=None, threads=1):
     """|F^-1 I|, the modulus of the object's autocorrelation (origin at index 0).
 
-    Unmeasured voxels are filled in with :func:`fill_unmeasured` first.
+    Unmeasured voxels are filled in with :func:`fill_unmeasured` first.  A
+    flat background and the Poisson noise of the counts add a spike at the
+    origin only (the transform of a constant, and of white noise on
+    average), so the origin takes the largest value of its six neighbours:
+    thresholds relative to the maximum then refer to the crystal.
     """
     data = fill_unmeasured(intensity_fft, measured)
     ac = scipy.fft.ifftn(data, workers=threads, overwrite_x=True)  # complex64 for float32 input
-    return np.abs(ac).astype(np.float32, copy=False)
+    ac = np.abs(ac).astype(np.float32, copy=False)
+    if ac.ndim == 3 and min(ac.shape) > 2:
+        ac[0, 0, 0] = max(ac[1, 0, 0], ac[-1, 0, 0], ac[0, 1, 0], ac[0, -1, 0],
+                          ac[0, 0, 1], ac[0, 0, -1])
+    return ac
 
 
 def autocorrelation_support(intensity_fft, measured=None, threshold=0.04, threads=1, ac=None):
@@ -148,33 +156,50 @@ def support_health(size, initial_size, total, min_voxels=27, collapse_ratio=1 / 
     return "ok"
 
 
-def estimate_oversampling(intensity_fft, measured=None, threshold=0.05, threads=1, ac=None):
+def estimate_oversampling(intensity_fft, measured=None, threshold=0.05):
     """Estimated oversampling ratio per axis, sigma_k = N_k / L_k (rough).
 
-    L_k, the crystal's extent along axis k, comes from the autocorrelation
-    projected on that axis (the 1-D autocorrelation of the crystal's
-    projected density, which spans 2 L_k): its extent at ``threshold`` of
-    the maximum, calibrated on a box (whose autocorrelation is a tent,
-    spanning 2 L (1 - threshold) at that level).  METHODS.md: sigma =
-    2 pi / (L dq) = N / L on an N-point grid; phase retrieval needs
-    sigma >= 2 (common practice).  Rounder or pointed crystals read high.
+    The intensity summed over the other two axes, P_k(q_k), transforms (1-D,
+    Parseval along those axes) into the sum over all lines of voxels along k
+    of their 1-D autocorrelations, each spanning twice the crystal's chord
+    along k; L_k is read from its extent at ``threshold`` of the maximum,
+    calibrated on a box (whose autocorrelation is a tent, spanning
+    2 L (1 - threshold) at that level).  METHODS.md: sigma = 2 pi / (L dq) =
+    N / L on an N-point grid; phase retrieval needs sigma >= 2 (common
+    practice).  Rounder or pointed crystals read high.
 
-    When the projected autocorrelation does not fall below ``threshold``
+    Masked voxels are left out of the sums (each slice's sum is scaled from
+    its measured voxels), and slices with no measured voxel are interpolated
+    from their neighbours.  The origin of the 1-D autocorrelation, which
+    also holds the flat background and the noise, takes the value of its
+    neighbours.  When the autocorrelation does not fall below ``threshold``
     anywhere (it wraps around the periodic array: sigma < 2), the width at
-    half maximum is used instead (a box's tent is L wide there), capped
-    just below 2.
+    half maximum is used instead (a box's tent is L wide there), capped just
+    below 2.
 
     Returns
     -------
     ndarray (3,) of float
     """
-    if ac is None:
-        ac = autocorrelation(intensity_fft, measured, threads)
+    data = np.asarray(intensity_fft, dtype=np.float64)
+    meas = np.ones(data.shape, bool) if measured is None else np.asarray(measured, bool)
     ratios = []
-    for axis, n in enumerate(ac.shape):
-        other = tuple(a for a in range(ac.ndim) if a != axis)
-        prof = ac.sum(axis=other, dtype=np.float64)
-        prof = np.fft.fftshift(prof / prof.max())
+    for axis, n in enumerate(data.shape):
+        other = tuple(a for a in range(data.ndim) if a != axis)
+        total = np.where(meas, data, 0.0).sum(axis=other)
+        count = meas.sum(axis=other)
+        per_slice = data.size // n
+        line = np.where(count > 0, total / np.maximum(count, 1) * per_slice, np.nan)
+        # interpolate empty slices around the periodic axis (peak at index 0)
+        centred = np.fft.fftshift(line)
+        good = np.isfinite(centred)
+        if not good.all():
+            idx = np.arange(n)
+            centred[~good] = np.interp(idx[~good], idx[good], centred[good])
+        ac = np.abs(np.fft.ifft(np.fft.ifftshift(centred)))
+        if n > 2:
+            ac[0] = max(ac[1], ac[-1])
+        prof = np.fft.fftshift(ac / ac.max())
         if prof.min() < threshold:
             length = np.count_nonzero(prof >= threshold) / (2.0 * (1.0 - threshold))
             ratios.append(n / max(length, 1.0))
