@@ -217,8 +217,9 @@ def compare_to_truth(results, truth_path, as_text=True):
     crystal (its point inversion, with the same strain), so the truth is
     aligned to the result first: both orientations are tried, centres of mass
     matched and refined by phase correlation of the support
-    (``skimage.registration.phase_cross_correlation``), and the better overlap
-    kept. Reported: RMS error of each strain component over the trusted
+    (``skimage.registration.phase_cross_correlation``), and the orientation
+    whose strain matches better kept (a nearly centrosymmetric shape cannot
+    tell them apart). Reported: RMS error of each strain component over the trusted
     voxels (support eroded by one voxel, outside dislocation cores of three
     voxels), the truth's own RMS for scale, the distance of each found
     dislocation line from the true one and the angle between their
@@ -243,6 +244,34 @@ def compare_to_truth(results, truth_path, as_text=True):
     dens = truth["density"].astype(float)
     ct = fw.grid_coordinates(dens.shape, truth["voxel_size"])
     com_t = np.array([np.sum(ct[i] * dens) / dens.sum() for i in range(3)])
+    eps_r = np.asarray(tf.strain, float)
+    comps = [(0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1)]
+    labels = ["xx", "yy", "zz", "yz", "xz", "xy"]
+
+    def score(invert, shift, samp):
+        """Strain errors of one alignment; the twin is chosen by them, since
+        the support of a nearly centrosymmetric crystal cannot tell."""
+        core = np.zeros(shape, bool)
+        _, r = _truth_on_grid(truth, shape, vs, origin, shift, invert)
+        for ln in truth["lines"]:
+            if ln.get("kind") == "straight":
+                p = np.asarray(ln["point"], float)
+                xi = np.asarray(ln["line"], float)
+                rel = r - p.reshape(3, 1, 1, 1)
+                along = np.tensordot(xi, rel, axes=1)
+                core |= np.linalg.norm(rel - xi.reshape(3, 1, 1, 1) * along, axis=0) < 3 * vs.max()
+        trusted = ndimage.binary_erosion(sup) & ~core
+        rms, rms_truth, mean_err = {}, {}, {}
+        for (i, k), lab in zip(comps, labels):
+            t = samp(truth["strain"][i, k])
+            e = eps_r[i, k]
+            ok = trusted & np.isfinite(e)
+            rms[lab] = float(np.sqrt(np.mean((e[ok] - t[ok]) ** 2))) if ok.any() else float("nan")
+            rms_truth[lab] = float(np.sqrt(np.mean(t[ok] ** 2))) if ok.any() else float("nan")
+            mean_err[lab] = float(np.mean(e[ok] - t[ok])) if ok.any() else float("nan")
+        total = float(np.sqrt(np.mean([v ** 2 for v in rms.values()])))
+        return total, rms, rms_truth, mean_err, trusted
+
     best = None
     for invert in (False, True):
         shift = com_t + (com_r if invert else -com_r)
@@ -255,33 +284,10 @@ def compare_to_truth(results, truth_path, as_text=True):
         samp, _ = _truth_on_grid(truth, shape, vs, origin, shift2, invert)
         d = samp(dens) > 0.5
         dice = 2 * np.sum(d & sup) / max(1, d.sum() + sup.sum())
-        if best is None or dice > best[0]:
-            best = (dice, invert, shift2, samp)
-    dice, invert, shift, samp = best
-    core = np.zeros(shape, bool)
-    for ln in truth["lines"]:
-        if ln.get("kind") == "straight":
-            p = np.asarray(ln["point"], float)
-            xi = np.asarray(ln["line"], float)
-            # distance of every result voxel's truth position from the true line
-            _, r = _truth_on_grid(truth, shape, vs, origin, shift, invert)
-            rel = r - p.reshape(3, 1, 1, 1)
-            along = np.tensordot(xi, rel, axes=1)
-            dist = np.linalg.norm(rel - xi.reshape(3, 1, 1, 1) * along, axis=0)
-            core |= dist < 3 * vs.max()
-    trusted = ndimage.binary_erosion(sup) & ~core
-    eps_r = np.asarray(tf.strain, float)
-    comps = [(0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1)]
-    labels = ["xx", "yy", "zz", "yz", "xz", "xy"]
-    rms, rms_truth, mean_err = {}, {}, {}
-    for (i, k), lab in zip(comps, labels):
-        t = samp(truth["strain"][i, k])
-        e = eps_r[i, k]
-        ok = trusted & np.isfinite(e)
-        rms[lab] = float(np.sqrt(np.mean((e[ok] - t[ok]) ** 2))) if ok.any() else float("nan")
-        rms_truth[lab] = float(np.sqrt(np.mean(t[ok] ** 2))) if ok.any() else float("nan")
-        mean_err[lab] = float(np.mean(e[ok] - t[ok])) if ok.any() else float("nan")
-    total = float(np.sqrt(np.mean([v ** 2 for v in rms.values()])))
+        total, rms, rms_truth, mean_err, trusted = score(invert, shift2, samp)
+        if best is None or total < best[0]:
+            best = (total, invert, shift2, samp, dice, rms, rms_truth, mean_err, trusted)
+    total, invert, shift, samp, dice, rms, rms_truth, mean_err, trusted = best
     lines_out = []
     for ln in truth["lines"]:
         if ln.get("kind") != "straight":

@@ -690,7 +690,10 @@ def simulate_scan(instrument, crystal, hkl, shape, field_, *, rocking_circle, n_
         u = field_.displacement(coords[:, inside])
         rho[inside] *= np.exp(-1j * (g @ u)).astype(np.complex64)
     del coords
-    amp = np.fft.fftshift(np.fft.fftn(np.fft.ifftshift(rho)))
+    import scipy.fft
+
+    # complex64 transform on every core (scipy.fft, the reference library)
+    amp = scipy.fft.fftshift(scipy.fft.fftn(scipy.fft.ifftshift(rho), workers=-1, overwrite_x=True))
     del rho
     sl = tuple(slice(n * s // 2 - n // 2, n * s // 2 - n // 2 + n) for n in win)
     inten = np.abs(amp[sl]) ** 2

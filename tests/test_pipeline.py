@@ -106,11 +106,12 @@ def test_end_to_end_accuracy(simulated, reference_run):
     assert list((out / "vtk").glob("*.vti")) and list((out / "figures").glob("*.png"))
     cmp = compare_to_truth(reference_run["results"], simulated / "sim" / "truth.h5", as_text=False)
     assert cmp["dice"] > 0.8
-    # Bound measured on this dataset and plan (strain_rms_all 7.2e-4 when this
-    # test was written, truth strain RMS about 4e-4 near the dislocation); it
-    # guards against regressions of the whole chain, not the method's limit.
-    assert cmp["strain_rms_all"] < 1.2e-3, cmp["strain_rms"]
-    assert cmp["strain_rms"]["xx"] < 3e-4  # the truth has no ε_xx here
+    # Bound measured on this dataset and plan: strain_rms_all = 9.9e-5 when this
+    # test was written (per component 3e-5 to 1.5e-4, against a truth strain
+    # RMS of 2e-4 to 6e-4 around the dislocation); 2.5× margin for other
+    # machines' FFT plans. It guards the whole chain against regressions.
+    assert cmp["strain_rms_all"] < 2.5e-4, cmp["strain_rms"]
+    assert cmp["strain_rms"]["xx"] < 1e-4  # the truth has no ε_xx here
     line = cmp["lines"][0]
     assert line["found"], "the simulated dislocation was not found"
     best = line["found"][0]
