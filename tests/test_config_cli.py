@@ -59,6 +59,15 @@ def test_simulate_and_inspect(tmp_path, small_config, capsys):
     assert main(["inspect", str(scans[0])]) == 0
     text = capsys.readouterr().out
     assert "max counts" in text and "eta" in text
+    assert "after preparation" in text and "oversampling" in text
+    # `prepare` writes the prepared data of every scan
+    assert main(["-q", "prepare", str(out / "pipeline.toml"), "--out", str(tmp_path / "prep")]) == 0
+    from braggstrain.prepare import read_prepared
+
+    files = sorted((tmp_path / "prep").glob("*_prepared.h5"))
+    assert len(files) == 4
+    p = read_prepared(files[0])
+    assert p.intensity.ndim == 3 and p.mask.shape == p.intensity.shape
 
 
 def test_simulate_forbidden_reflection_exits_2(tmp_path, capsys):
@@ -74,3 +83,20 @@ def test_simulated_scan_escaping_output_folder_is_refused(tmp_path, capsys):
     p.write_text(small_toml().replace('scan = "scans/r0.h5"', 'scan = "../escape.h5"'))
     assert main(["simulate", str(p), "--out", str(tmp_path / "o")]) == 2
     assert not (tmp_path / "escape.h5").exists()
+
+
+def test_demo_dataset_oversampling_is_at_least_two(tmp_path):
+    # Phase retrieval needs the crystal's autocorrelation sampled at least at
+    # Nyquist, i.e. oversampling σ ≥ 2 along every axis (common practice, no
+    # source). One reflection of the demo, simulated and prepared as the
+    # demo's pipeline file says.
+    from braggstrain.demo import simulate_experiment
+    from braggstrain.pipeline import check_options
+    from braggstrain.prepare import prepare_scan
+
+    cfg = load_config(DEMO)
+    cfg["reflection"] = cfg["reflection"][:1]
+    simulate_experiment(cfg, tmp_path, log=None)
+    opts = check_options(dict(cfg, reflection=cfg["reflection"] * 3))
+    prep = prepare_scan(tmp_path / cfg["reflection"][0]["scan"], **opts["prepare"])
+    assert np.all(prep.oversampling >= 2.0), prep.oversampling
