@@ -211,3 +211,25 @@ def test_nothing_read_is_evaluated_or_unpickled():
             if re.search(pat, text):
                 bad.append(f"{p.name}: {pat}")
     assert not bad, bad
+
+
+def test_uniform_tension_sign_through_the_whole_chain(tmp_path):
+    # DESIGN.md convention: ρ = s·exp(−i G·u), u_G = −φ/|G|, tensile positive.
+    # A crystal stretched by ε_xx = +1e-3 (and nothing else), simulated as scan
+    # files, phased and combined, must give ε_xx = +1e-3 (Bragg's law: the
+    # lattice spacing along x grows by 1e-3; Warren, X-ray Diffraction, 1969,
+    # §13.1) and no other component.
+    text = small_toml(hkls=((1, 1, 1), (2, 0, 0), (0, 2, 0)))
+    i = text.index("[[simulate.field]]")
+    text = text[:i] + '[[simulate.field]]\nkind = "uniform"\ntensor = [[1.0e-3, 0.0, 0.0], [0.0, 0.0, 0.0], [0.0, 0.0, 0.0]]\n'
+    (tmp_path / "t.toml").write_text(text + FAST + NO_FILES + "\n[defects]\nenabled = false\n")
+    simulate_experiment(load_config(tmp_path / "t.toml"), tmp_path / "sim", log=None)
+    res = run_pipeline(load_config(tmp_path / "sim" / "pipeline.toml"), tmp_path / "out", progress=False, log=None)
+    tf = res["results"]["tensor"]
+    ok = tf.trusted & np.isfinite(tf.strain[0, 0])
+    eps = {c: float(np.median(tf.strain[i, k][ok])) for c, (i, k) in
+           {"xx": (0, 0), "yy": (1, 1), "zz": (2, 2), "yz": (1, 2), "xz": (0, 2), "xy": (0, 1)}.items()}
+    print("uniform tension through the chain, median strain:", eps)
+    assert eps["xx"] == pytest.approx(1e-3, abs=1e-4), eps
+    for c in ("yy", "zz", "yz", "xz", "xy"):
+        assert abs(eps[c]) < 1e-4, eps
