@@ -233,3 +233,13 @@ def test_uniform_tension_sign_through_the_whole_chain(tmp_path):
     assert eps["xx"] == pytest.approx(1e-3, abs=1e-4), eps
     for c in ("yy", "zz", "yz", "xz", "xy"):
         assert abs(eps[c]) < 1e-4, eps
+
+
+def test_report_and_export_commands_rebuild_from_the_results_file(simulated, reference_run, tmp_path):
+    res = simulated / "out" / "results.h5"
+    assert main(["-q", "report", str(res), "--out", str(tmp_path / "rep")]) == 0
+    html = (tmp_path / "rep" / "report.html").read_text()
+    assert "<table" in html and "data:image/png;base64," in html
+    assert main(["-q", "export", str(res), "--vtk", "--out", str(tmp_path / "vtk")]) == 0
+    assert (tmp_path / "vtk" / "crystal.vti").stat().st_size > 0
+    assert main(["-q", "export", str(res)]) == 2  # no format chosen
