@@ -223,18 +223,14 @@ def _nan_to_none(x):
 # --------------------------------------------------------------------------
 
 def _as_complex3d(obj, name):
-    if isinstance(obj, SampleObject):
-        obj = obj.obj
-    arr = np.asarray(obj)
-    if arr.ndim != 3:
-        raise InputError(f"{name}: expected a 3-D complex array, got shape {arr.shape}")
-    if not np.iscomplexobj(arr):
-        raise InputError(f"{name}: expected a complex array (the reconstructed object), got dtype {arr.dtype}")
+    """The shared check of a complex 3-D object (braggstrain.fields), plus
+    the few voxels per axis that plaquettes and rings need."""
+    from .fields import _complex3d
+
+    arr = _complex3d(obj, name)
     if min(arr.shape) < 4:
         raise InputError(f"{name}: expected at least 4 voxels along each axis, got shape {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        raise InputError(f"{name}: contains NaN or infinite values")
-    return arr.astype(np.complex64, copy=False)
+    return arr
 
 
 def _as_mask(support, shape, name):
@@ -328,12 +324,7 @@ def vortex_map(obj, support, *, amplitude_threshold=0.1, dilation=2):
         n = −G·b/2π · sign(ξ·e_n).
     """
     obj = _as_complex3d(obj, "obj")
-    support = _as_mask(support, obj.shape, "support")
-    amp = np.abs(obj)
-    ref = float(np.median(amp[support]))
-    if not ref > 0:
-        raise InputError("obj: the amplitude inside the support is zero; expected a reconstructed crystal")
-    inside = _dilate(support, dilation)
+    trusted, _ = trusted_region(obj, support, amplitude_threshold, dilation)
     d = [_edge_phase(obj, ax) for ax in range(3)]
     out = np.zeros((3,) + obj.shape, dtype=np.int8)
     for n in range(3):
@@ -351,9 +342,8 @@ def vortex_map(obj, support, *, amplitude_threshold=0.1, dilation=2):
         # W(i) = d_a(i) + d_b(i + e_a) − d_a(i + e_b) − d_b(i)
         w = sl(da, 0, 0) + sl(db, 1, 0) - sl(da, 0, 1) - sl(db, 0, 0)
         wind = np.rint(w / (2 * np.pi)).astype(np.int8)
-        corners_in = sl(inside, 0, 0) & sl(inside, 1, 0) & sl(inside, 1, 1) & sl(inside, 0, 1)
-        min_amp = np.minimum(np.minimum(sl(amp, 0, 0), sl(amp, 1, 0)), np.minimum(sl(amp, 1, 1), sl(amp, 0, 1)))
-        keep = corners_in & (min_amp >= amplitude_threshold * ref)
+        # a plaquette is kept when all four corners are trusted
+        keep = sl(trusted, 0, 0) & sl(trusted, 1, 0) & sl(trusted, 1, 1) & sl(trusted, 0, 1)
         region = [slice(None)] * 3
         region[a] = slice(0, obj.shape[a] - 1)
         region[b] = slice(0, obj.shape[b] - 1)
