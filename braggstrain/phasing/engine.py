@@ -20,7 +20,7 @@ from scipy.special import gammaln
 from ..errors import InputError, PhasingError
 from . import projections as _k
 from .coherence import CoherenceModel, CoherenceSettings
-from .fft import FFTBackend, _check_threads
+from .fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
 from .metrics import centre_of_mass_shift, peak_offset, sharpness
 from .plan import default_plan, plan_from_config
 from .support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
@@ -187,6 +187,7 @@ class _Options:
     background: object  # None, "fit" or float
     threads: int
     fft_backend: str
+    fft_effort: str
     remove_ramp: bool
     center: bool
     progress: bool
@@ -221,7 +222,8 @@ def _run_rng(seed, run):
     return np.random.default_rng(np.random.SeedSequence(seed, spawn_key=(0, int(run))))
 
 
-def _options(coherence, background, threads, fft_backend, remove_ramp, center, progress):
+def _options(coherence, background, threads, fft_backend, remove_ramp, center, progress,
+             fft_effort=DEFAULT_EFFORT):
     coh = CoherenceSettings.from_value(coherence)
     if background is not None and background != "fit":
         if isinstance(background, bool) or not isinstance(background, (int, float, np.floating,
@@ -232,8 +234,10 @@ def _options(coherence, background, threads, fft_backend, remove_ramp, center, p
             raise InputError(f"background: expected a finite value >= 0, got {background}")
     if fft_backend not in ("auto", "pyfftw", "scipy"):
         raise InputError(f"fft_backend: expected 'auto', 'pyfftw' or 'scipy', got {fft_backend!r}")
-    return _Options(coh, background, _check_threads(threads), fft_backend, bool(remove_ramp),
-                    bool(center), bool(progress))
+    if fft_effort not in _EFFORTS:
+        raise InputError(f"fft_effort: expected one of {_EFFORTS}, got {fft_effort!r}")
+    return _Options(coh, background, _check_threads(threads), fft_backend, fft_effort,
+                    bool(remove_ramp), bool(center), bool(progress))
 
 
 def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, threads):
@@ -415,7 +419,7 @@ def _iterate(data, stages, opts, run, rng, t0):
     from tqdm import tqdm
 
     shape = data.shape
-    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend)
+    fft = FFTBackend(shape, threads=opts.threads, backend=opts.fft_backend, effort=opts.fft_effort)
     if any(st.support_update == "shrinkwrap" for st in stages):
         fft.real_buffer  # plan the real transforms of the shrink-wrap blur now, not in the loop
     buf = fft.buffer
@@ -610,8 +614,8 @@ def _stages(plan):
 
 def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, progress=False,
                 coherence=False, background=None, free_fraction=0.03, threads=None,
-                fft_backend="auto", initial_threshold=0.04, remove_ramp=True, center=True,
-                raise_on_failure=True) -> Reconstruction:
+                fft_backend="auto", fft_effort=DEFAULT_EFFORT, initial_threshold=0.04,
+                remove_ramp=True, center=True, raise_on_failure=True) -> Reconstruction:
     """Reconstruct the complex object of one Bragg peak by iterative phase retrieval.
 
     Parameters
@@ -649,6 +653,12 @@ def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, pro
     threads : int, optional
         Threads for the FFTs and kernels; default all cores.
     fft_backend : {"auto", "pyfftw", "scipy"}
+    fft_effort : str
+        FFTW planner effort.  The default ``"FFTW_ESTIMATE"`` makes the same
+        plan in every process, so a run depends only on the data, options,
+        seed and thread count; ``"FFTW_MEASURE"`` plans faster FFTs by timing
+        them, whose last bits (and so, after many iterations, the outcome)
+        may differ between processes (see :mod:`braggstrain.phasing.fft`).
     initial_threshold : float
         Threshold of the autocorrelation for the initial support (fraction of
         its maximum).
@@ -681,7 +691,8 @@ def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, pro
     """
     stages = _stages(plan)
     seed = _as_seed(seed)
-    opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, progress)
+    opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, progress,
+                    fft_effort)
     data = _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, opts.threads)
     if opts.coherence is not None and any(2 * opts.coherence.half_width + 1 > n for n in data.shape):
         raise InputError(f"coherence.half_width: {opts.coherence.half_width} is too wide for "

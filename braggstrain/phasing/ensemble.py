@@ -3,12 +3,11 @@
 Each run is reproducible from (seed, run index) alone: the random start is
 drawn from ``SeedSequence(seed, spawn_key=(0, run))``, the free voxels from
 ``SeedSequence(seed, spawn_key=(1,))`` (the same for all runs, so their free
-log-likelihoods compare), every run uses the same thread count, and the
-parent's FFTW wisdom is shipped to the workers so that every process uses the
-very same FFT plan; the wisdom is also cached on disk
-(:func:`~braggstrain.phasing.fft.wisdom_cache_path`), so a later process,
-e.g. a resumed pipeline, plans the same way.  A run on a Dask cluster, a
-resumed run or the default local pool therefore give bit-identical objects.
+log-likelihoods compare), every run uses the same thread count, and every
+process makes the same FFT plan (estimated plans by default; with a measured
+effort, the parent's wisdom is shipped to the workers, see
+:mod:`braggstrain.phasing.fft`).  A run on a Dask cluster, a resumed run or
+the default local pool therefore give bit-identical objects.
 """
 
 from __future__ import annotations
@@ -22,7 +21,7 @@ import numpy as np
 from ..errors import InputError, PhasingError
 from . import projections as _k
 from .engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
-from .fft import FFTBackend, adopt_wisdom, default_threads, export_wisdom
+from .fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from .metrics import PRTF, align, prtf, twin
 
 __all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS"]
@@ -124,14 +123,14 @@ def _align_support(sup, info):
 
 def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, executor=None,
              progress=False, metric="free_nll", threads=1, coherence=False, background=None,
-             free_fraction=0.03, fft_backend="auto", initial_threshold=0.04, remove_ramp=True,
-             center=True) -> EnsembleResult:
+             free_fraction=0.03, fft_backend="auto", fft_effort=DEFAULT_EFFORT,
+             initial_threshold=0.04, remove_ramp=True, center=True) -> EnsembleResult:
     """Independent random starts, ranked, aligned and averaged.
 
     Parameters
     ----------
     intensity, mask, plan, coherence, background, free_fraction, fft_backend,
-    initial_threshold, remove_ramp, center
+    fft_effort, initial_threshold, remove_ramp, center
         As for :func:`~braggstrain.phasing.reconstruct`.
     runs : int
         Number of random starts.
@@ -176,15 +175,17 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
                          f"got {type(executor).__name__}")
     stages = _stages(plan)
     seed = _as_seed(seed)
-    opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, False)
+    opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, False,
+                    fft_effort)
     data = _prepare(intensity, mask, None, seed, free_fraction, initial_threshold, opts.threads)
     if metric.startswith("free") and data.free_idx.size == 0:
         raise InputError(f"metric: '{metric}' needs held-out voxels, but free_fraction is 0")
 
     # Plan the FFT once here so that every worker imports the same wisdom,
     # and load (or compile) the kernels before workers start.
-    FFTBackend(data.shape, threads=opts.threads, backend=opts.fft_backend).real_buffer
-    wisdom = export_wisdom()
+    FFTBackend(data.shape, threads=opts.threads, backend=opts.fft_backend,
+               effort=opts.fft_effort).real_buffer
+    wisdom = export_wisdom() if opts.fft_effort != "FFTW_ESTIMATE" else None
     _k.warm_up()
     tasks = [(data, stages, opts, r, wisdom) for r in range(runs)]
 

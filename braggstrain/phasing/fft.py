@@ -7,21 +7,28 @@ pyFFTW is available.  The transforms are *unnormalised* in both directions
 caller folds ``1/N`` into its next element-wise pass, which saves one pass
 over the array per iteration.
 
-pyFFTW plans are made with ``FFTW_MEASURE`` by default.  FFTW keeps the
-*wisdom* gathered while planning for the life of the process, so the second
-plan of the same shape is instant; :func:`export_wisdom` /
-:func:`import_wisdom` carry it to worker processes (the ensemble does this),
-and :func:`save_wisdom` / :func:`load_wisdom` keep it in a file.
+Reproducibility comes first: pyFFTW plans are made with ``FFTW_ESTIMATE``
+by default.  An estimated plan is chosen by FFTW's fixed heuristics, so every
+process on the machine (a pool worker, a Dask worker, a resumed run, a fresh
+interpreter with no cache) makes the very same plan for the same shape,
+thread count and alignment, and rounds every FFT the same way.  That matters
+because an iterative phasing run amplifies the last bit of an FFT until the
+outcome itself differs.  Before an estimated plan is made, the process's
+wisdom is cleared (FFTW would otherwise reuse measured wisdom for an
+estimated plan, see the FFTW 3 manual, "Words of Wisdom-Saving Plans") and
+restored afterwards.
 
-Measured plans differ from process to process (FFTW times candidates), and
-a different plan rounds differently, which HIO amplifies into visibly
-different reconstructions.  So the wisdom is also kept in a cache file, read
-before the first plan of a process and rewritten (atomically) when planning
-added to it: a later process, e.g. a resumed pipeline, then makes the very
-same plans and reproduces earlier runs bit for bit.  The file is
-``$BRAGGSTRAIN_FFTW_WISDOM`` if set (an empty value turns the cache off),
+``effort="FFTW_MEASURE"`` (or PATIENT/EXHAUSTIVE) is the faster option:
+FFTW times candidate plans, which differ from process to process, so results
+then vary in their last bits between processes.  For those plans the wisdom
+is kept: :func:`export_wisdom` / :func:`import_wisdom` carry it to worker
+processes (the ensemble does this), :func:`save_wisdom` / :func:`load_wisdom`
+keep it in a file, and a cache file is read before the first measured plan
+of a process and rewritten (atomically) when planning added to it, so a
+later process on the same machine makes the same measured plans.  The file
+is ``$BRAGGSTRAIN_FFTW_WISDOM`` if set (an empty value turns the cache off),
 else ``$XDG_CACHE_HOME/braggstrain/fftw-wisdom.json`` (``~/.cache`` by
-default).
+default).  ``benchmarks/phasing.py`` measures what the estimated plans cost.
 
 Without pyFFTW, ``scipy.fft`` with ``workers`` is used; it returns a new
 array per transform, which is copied back into the work array.
@@ -65,10 +72,13 @@ __all__ = [
     "load_wisdom",
     "wisdom_cache_path",
     "adopt_wisdom",
+    "DEFAULT_EFFORT",
 ]
 
 _BACKENDS = ("auto", "pyfftw", "scipy")
 _EFFORTS = ("FFTW_ESTIMATE", "FFTW_MEASURE", "FFTW_PATIENT", "FFTW_EXHAUSTIVE")
+#: Planner effort of the phasing loop unless asked otherwise: reproducible plans.
+DEFAULT_EFFORT = "FFTW_ESTIMATE"
 _plan_lock = threading.Lock()  # FFTW's planner is not thread safe
 _cache = {"loaded": False, "saved": None}
 
@@ -112,6 +122,44 @@ def _cache_after_planning():
         pass  # a read-only cache location only costs reproducibility across processes
 
 
+class _planning:
+    """Context for making FFTW plans of one effort (holds the plan lock).
+
+    Measured efforts read the wisdom cache before planning and rewrite it
+    after.  The estimated effort plans from a clean slate (no wisdom at all,
+    so no measured wisdom can leak into the plan) and restores the wisdom
+    afterwards, so measured plans made later still find it.
+    """
+
+    def __init__(self, effort):
+        self.effort = effort
+        self._kept = None
+
+    def __enter__(self):
+        _plan_lock.acquire()
+        try:
+            if self.effort == "FFTW_ESTIMATE":
+                self._kept = export_wisdom()
+                pyfftw.forget_wisdom()
+            else:
+                _cache_before_planning()
+        except BaseException:
+            _plan_lock.release()
+            raise
+        return self
+
+    def __exit__(self, *exc):
+        try:
+            if self.effort == "FFTW_ESTIMATE":
+                pyfftw.forget_wisdom()
+                import_wisdom(self._kept)
+            else:
+                _cache_after_planning()
+        finally:
+            _plan_lock.release()
+        return False
+
+
 def default_threads() -> int:
     """Number of cores this process may run on (the default thread count)."""
     try:
@@ -141,8 +189,10 @@ class FFTBackend:
     backend : {"auto", "pyfftw", "scipy"}
         ``"auto"`` takes pyFFTW when it is installed, else ``scipy.fft``.
     effort : str
-        FFTW planner effort, one of ``FFTW_ESTIMATE``, ``FFTW_MEASURE``
-        (default), ``FFTW_PATIENT``, ``FFTW_EXHAUSTIVE``.
+        FFTW planner effort, one of ``FFTW_ESTIMATE`` (default: the same
+        plan in every process, so reproducible results), ``FFTW_MEASURE``,
+        ``FFTW_PATIENT``, ``FFTW_EXHAUSTIVE`` (faster plans, chosen by
+        timing, which may differ between processes).
 
     Attributes
     ----------
@@ -156,7 +206,7 @@ class FFTBackend:
         ``"pyfftw"`` or ``"scipy"``, the backend actually used.
     """
 
-    def __init__(self, shape, threads=None, backend="auto", effort="FFTW_MEASURE"):
+    def __init__(self, shape, threads=None, backend="auto", effort=DEFAULT_EFFORT):
         shape = tuple(int(n) for n in shape)
         if not shape or any(n < 1 for n in shape):
             raise InputError(f"shape: expected positive sizes, got {shape}")
@@ -177,15 +227,13 @@ class FFTBackend:
         if self.name == "pyfftw":
             self.buffer = pyfftw.empty_aligned(shape, dtype=np.complex64)
             flags = (effort, "FFTW_DESTROY_INPUT")
-            with _plan_lock:  # planning (MEASURE) scribbles over the buffer
-                _cache_before_planning()
+            with _planning(effort):  # planning (MEASURE) scribbles over the buffer
                 self._fwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_FORWARD", flags=flags,
                                         threads=self.threads)
                 self._bwd = pyfftw.FFTW(self.buffer, self.buffer, axes=axes,
                                         direction="FFTW_BACKWARD", flags=flags,
                                         threads=self.threads)
-                _cache_after_planning()
             self.buffer[...] = 0
         else:
             self.buffer = np.zeros(shape, dtype=np.complex64)
@@ -206,13 +254,11 @@ class FFTBackend:
             real = pyfftw.empty_aligned(self.shape, dtype=np.float32)
             half = pyfftw.empty_aligned(n_half, dtype=np.complex64)
             flags = (self._effort, "FFTW_DESTROY_INPUT")
-            with _plan_lock:
-                _cache_before_planning()
+            with _planning(self._effort):
                 self._rfwd = pyfftw.FFTW(real, half, axes=self._axes, direction="FFTW_FORWARD",
                                          flags=flags, threads=self.threads)
                 self._rbwd = pyfftw.FFTW(half, real, axes=self._axes, direction="FFTW_BACKWARD",
                                          flags=flags, threads=self.threads)
-                _cache_after_planning()
             real[...] = 0
         else:
             real = np.zeros(self.shape, dtype=np.float32)
@@ -260,7 +306,8 @@ class FFTBackend:
                                                workers=self.threads, overwrite_x=True)
 
     def __repr__(self):
-        return f"FFTBackend(shape={self.shape}, threads={self.threads}, name={self.name!r})"
+        return (f"FFTBackend(shape={self.shape}, threads={self.threads}, name={self.name!r}, "
+                f"effort={self._effort!r})")
 
 
 def export_wisdom():

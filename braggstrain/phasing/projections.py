@@ -60,8 +60,12 @@ __all__ = [
 ALGORITHM_CODES = {"ER": 0, "HIO": 1, "RAAR": 2}
 
 # 'reassoc' lets the reductions vectorise; no 'nnan'/'ninf', so a diverging
-# run still shows up as a NaN or inf misfit.
-_FAST = {"reassoc", "contract", "arcp", "nsz"}
+# run still shows up as a NaN or inf misfit.  Not 'contract', 'arcp' or 'nsz'
+# together with it: with all four, the code compiled in one process and the
+# code loaded from numba's disk cache in the next rounded differently (the
+# same reconstruction, seed and FFTs gave different objects, measured with a
+# fresh and a warm NUMBA_CACHE_DIR), and phasing amplifies the last bit.
+_FAST = {"reassoc"}
 _JIT = dict(parallel=True, cache=True, nogil=True, fastmath=_FAST)
 FREE_OFFSET = np.float32(2.0)
 
