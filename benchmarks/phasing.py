@@ -40,7 +40,7 @@ import numpy as np
 
 def crystal_intensity(n):
     """Intensity of an invented faceted crystal with a smooth phase on an n^3 grid."""
-    from braggstrain import forward
+    from braggstrain.simulate import forward
 
     shape = (n, n, n)
     vs = 10.0

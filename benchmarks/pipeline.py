@@ -25,7 +25,7 @@ def main():
     ap.add_argument("--workers", type=int, default=None)
     args = ap.parse_args()
     from braggstrain.config import load_config
-    from braggstrain.demo import compare_to_truth, simulate_experiment
+    from braggstrain.simulate.demo import compare_to_truth, simulate_experiment
     from braggstrain.pipeline import run_pipeline
 
     out = Path(args.out or tempfile.mkdtemp(prefix="braggstrain-bench-"))

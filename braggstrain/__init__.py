@@ -6,7 +6,7 @@ and conventions: lengths in Å, reciprocal lengths in Å⁻¹ with 2π included,
 angles in degrees in files and radians inside the code.
 """
 
-from .errors import BraggStrainError
+from braggstrain.errors import BraggStrainError
 
 __version__ = "0.1.0"
 __all__ = ["BraggStrainError", "__version__"]

@@ -12,8 +12,8 @@ from pathlib import Path
 
 import numpy as np
 
-from . import __version__
-from .errors import BraggStrainError, InputError
+from braggstrain import __version__
+from braggstrain.errors import BraggStrainError, InputError
 
 __all__ = ["main"]
 
@@ -24,8 +24,8 @@ def _print(msg="", quiet=False):
 
 
 def cmd_simulate(args):
-    from .config import load_config
-    from .demo import simulate_experiment
+    from braggstrain.config import load_config
+    from braggstrain.simulate.demo import simulate_experiment
 
     cfg = load_config(args.config)
     _print(f"simulating {len(cfg['reflection'])} reflections of {args.config} into {args.out}", args.quiet)
@@ -37,7 +37,7 @@ def cmd_simulate(args):
 
 def describe_scan(path):
     """Text lines describing a scan file (used by ``inspect``)."""
-    from .scanio import read_scan
+    from braggstrain.io.scans import read_scan
 
     scan = read_scan(path)
     fr = scan.frames
@@ -63,7 +63,7 @@ def describe_scan(path):
     masked = 0 if scan.mask is None else int(np.count_nonzero(scan.mask))
     lines.append(f"mask        {masked} pixels flagged in the file")
     try:
-        from .prepare import prepare_scan, summarize_prepared
+        from braggstrain.prepare.scan import prepare_scan, summarize_prepared
     except ImportError:  # pragma: no cover - the preparation stage is part of the package
         return lines
     try:
@@ -122,8 +122,8 @@ def _summary(res):
 
 
 def cmd_run(args):
-    from .config import load_config
-    from .pipeline import run_pipeline
+    from braggstrain.config import load_config
+    from braggstrain.pipeline import run_pipeline
 
     cfg = load_config(args.config)
     res = run_pipeline(cfg, args.out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
@@ -134,9 +134,9 @@ def cmd_run(args):
 
 
 def cmd_demo(args):
-    from .config import load_config
-    from .demo import simulate_experiment
-    from .pipeline import run_pipeline
+    from braggstrain.config import load_config
+    from braggstrain.simulate.demo import simulate_experiment
+    from braggstrain.pipeline import run_pipeline
 
     out = Path(args.out)
     demo = Path(__file__).resolve().parent / "data" / "demo.toml"
@@ -149,7 +149,7 @@ def cmd_demo(args):
                        progress=not args.quiet, log=None if args.quiet else print)
     _print(_summary(res), args.quiet)
     try:
-        from .demo import compare_to_truth
+        from braggstrain.simulate.demo import compare_to_truth
 
         _print(compare_to_truth(res["results"], out / "truth.h5"), args.quiet)
     except (ImportError, BraggStrainError) as e:  # pragma: no cover - comparison is informative only
@@ -159,9 +159,9 @@ def cmd_demo(args):
 
 
 def cmd_prepare(args):
-    from .config import load_config
-    from .pipeline import _scan_for, check_options
-    from .prepare import prepare_scan, summarize_prepared, write_prepared
+    from braggstrain.config import load_config
+    from braggstrain.pipeline import _scan_for, check_options
+    from braggstrain.prepare.scan import prepare_scan, summarize_prepared, write_prepared
 
     cfg = load_config(args.config)
     opts = check_options(cfg)
@@ -179,7 +179,9 @@ def cmd_prepare(args):
 
 
 def cmd_report(args):
-    from . import figures, outputs, report
+    from braggstrain.report import figures
+    from braggstrain.io import results as outputs
+    from braggstrain.report import html as report
 
     results = outputs.read_results(args.results)
     out = Path(args.out) if args.out else Path(args.results).resolve().parent
@@ -190,7 +192,7 @@ def cmd_report(args):
 
 
 def cmd_export(args):
-    from . import outputs
+    from braggstrain.io import results as outputs
 
     if not args.vtk:
         raise InputError("export: choose a format, e.g. --vtk")
@@ -202,8 +204,8 @@ def cmd_export(args):
 
 
 def cmd_plan(args):
-    from .config import load_config
-    from . import plan
+    from braggstrain.config import load_config
+    from braggstrain.planner import plan
 
     cfg = load_config(args.config, require_reflections=False)
     out = Path(args.out) if args.out else Path.cwd() / "plan"

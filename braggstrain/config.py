@@ -18,7 +18,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import BraggStrainError, ConfigError
+from braggstrain.errors import BraggStrainError, ConfigError
 
 try:  # Python ≥ 3.11
     import tomllib
@@ -299,7 +299,7 @@ def resolve_path(cfg, value, key):
 
 def build_crystal(cfg):
     """Crystal of a validated pipeline dict (material or lattice, orientation)."""
-    from .crystal import Crystal
+    from braggstrain.geometry.crystal import Crystal
 
     c = cfg["crystal"]
     src = cfg.get("_source", "<pipeline>")
@@ -326,7 +326,7 @@ def build_crystal(cfg):
 
 def build_instrument(cfg):
     """Diffractometer of a validated pipeline dict."""
-    from .instrument import Circle, Detector, Diffractometer
+    from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
 
     ins = cfg["instrument"]
     d = ins["detector"]
@@ -350,7 +350,7 @@ def build_specimen(cfg, crystal):
     Returns (shape, field, truth_lines) where truth_lines lists the
     dislocations as dicts (point Å, line unit vector, burgers lattice and Å).
     """
-    from . import forward as fw
+    from braggstrain.simulate import forward as fw
 
     sim = cfg["simulate"]
     src = cfg.get("_source", "<pipeline>")

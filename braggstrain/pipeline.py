@@ -28,10 +28,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import build_crystal, build_instrument, resolve_path
-from .errors import BraggStrainError, ConfigError, InputError, TensorError
-from .objects import SampleObject
-from .store import file_digest, hash_inputs, load_tree, save_tree
+from braggstrain.config import build_crystal, build_instrument, resolve_path
+from braggstrain.errors import BraggStrainError, ConfigError, InputError, TensorError
+from braggstrain.strain.objects import SampleObject
+from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 
 __all__ = ["run_pipeline", "check_options", "PipelineRun", "STAGES"]
 
@@ -64,8 +64,12 @@ def check_options(cfg):
     Returns a dict stage → keyword arguments. Raises ConfigError naming the
     key for an unknown key or a bad value.
     """
-    from . import defects, frame, prepare, regrid, tensor
-    from .phasing import options_from_config
+    from braggstrain.defects import lines as defects
+    from braggstrain.strain import frame
+    from braggstrain.prepare import scan as prepare
+    from braggstrain.prepare import regrid
+    from braggstrain.strain import tensor
+    from braggstrain.phasing import options_from_config
 
     src = cfg.get("_source", "<pipeline>")
     out = {}
@@ -280,7 +284,7 @@ def _executor(scheduler, workers):
 
 def _scan_for(cfg, i, r):
     """Read reflection i's scan: a braggstrain scan file, or a frame stack with angles."""
-    from .scanio import Scan, read_frame_stack, read_scan
+    from braggstrain.io.scans import Scan, read_frame_stack, read_scan
 
     src = cfg.get("_source", "<pipeline>")
     if r["scan"] is not None:
@@ -339,12 +343,12 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     dict with the results bundle (``results``), the output paths, the
     timings (s per stage), the wall time and the phasing share
     """
-    from . import defects as dfx
-    from . import frame as frm
-    from . import prepare as prp
-    from . import regrid as rgd
-    from . import tensor as tns
-    from .phasing import ensemble
+    from braggstrain.defects import lines as dfx
+    from braggstrain.strain import frame as frm
+    from braggstrain.prepare import scan as prp
+    from braggstrain.prepare import regrid as rgd
+    from braggstrain.strain import tensor as tns
+    from braggstrain.phasing import ensemble
 
     say = log or (lambda *a, **k: None)
     t_start = time.perf_counter()
@@ -520,9 +524,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                       run, base_seed, runs, keep, route)
     paths = {}
     with run.timed("outputs"):
-        from . import figures as figm
-        from . import outputs as outp
-        from . import report as repm
+        from braggstrain.report import figures as figm
+        from braggstrain.io import results as outp
+        from braggstrain.report import html as repm
 
         ou = opts["output"]
         wall = time.perf_counter() - t_start
@@ -545,7 +549,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
 
 def _tree_to_tensor(t):
-    from .tensor import TensorField
+    from braggstrain.strain.tensor import TensorField
 
     kw = {}
     for k in TensorField.__dataclass_fields__:
@@ -577,7 +581,7 @@ def _disl_to_tree(d):
 
 
 def _tree_to_dislocation(t):
-    from .defects import Dislocation
+    from braggstrain.defects.lines import Dislocation
 
     kw = {}
     for k in Dislocation.__dataclass_fields__:
@@ -629,7 +633,7 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
         amps.append(a)
         ph = np.angle(o.obj).astype(np.float32)
         try:
-            from .fields import displacement_along_g
+            from braggstrain.strain.fields import displacement_along_g
 
             disp = displacement_along_g(o.obj, o.g_vector, vs, o.support)
             disp = np.asarray(getattr(disp, "displacement", disp), np.float32)

@@ -36,10 +36,14 @@ code("""
 import numpy as np
 import matplotlib.pyplot as plt
 
-from braggstrain.crystal import Crystal
-from braggstrain.instrument import Circle, Detector, Diffractometer
-from braggstrain import forward, prepare, frame, tensor, defects
-from braggstrain.scanio import Scan
+from braggstrain.geometry.crystal import Crystal
+from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
+from braggstrain.simulate import forward
+from braggstrain.prepare import scan as prepare
+from braggstrain.strain import frame
+from braggstrain.strain import tensor
+from braggstrain.defects import lines as defects
+from braggstrain.io.scans import Scan
 from braggstrain.phasing import ensemble, Stage
 """)
 

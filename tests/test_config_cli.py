@@ -6,7 +6,7 @@ import pytest
 from braggstrain.cli import main
 from braggstrain.config import build_crystal, build_instrument, load_config
 from braggstrain.errors import ConfigError
-from braggstrain.scanio import read_scan
+from braggstrain.io.scans import read_scan
 
 from conftest import DEMO, small_toml
 
@@ -62,7 +62,7 @@ def test_simulate_and_inspect(tmp_path, small_config, capsys):
     assert "after preparation" in text and "oversampling" in text
     # `prepare` writes the prepared data of every scan
     assert main(["-q", "prepare", str(out / "pipeline.toml"), "--out", str(tmp_path / "prep")]) == 0
-    from braggstrain.prepare import read_prepared
+    from braggstrain.prepare.scan import read_prepared
 
     files = sorted((tmp_path / "prep").glob("*_prepared.h5"))
     assert len(files) == 4
@@ -90,9 +90,9 @@ def test_demo_dataset_oversampling_is_at_least_two(tmp_path):
     # Nyquist, i.e. oversampling σ ≥ 2 along every axis (common practice, no
     # source). One reflection of the demo, simulated and prepared as the
     # demo's pipeline file says.
-    from braggstrain.demo import simulate_experiment
+    from braggstrain.simulate.demo import simulate_experiment
     from braggstrain.pipeline import check_options
-    from braggstrain.prepare import prepare_scan
+    from braggstrain.prepare.scan import prepare_scan
 
     cfg = load_config(DEMO)
     cfg["reflection"] = cfg["reflection"][:1]

@@ -19,12 +19,12 @@ from braggstrain.errors import BraggStrainError, ConfigError, InputError, Phasin
 from braggstrain.phasing import (OversamplingWarning, Stage, default_plan, plan_from_config,
                                  plan_to_config, reconstruct)
 from braggstrain.phasing import fft as pfft
-from braggstrain.phasing import projections as K
+from braggstrain.phasing import kernels as K
 from braggstrain.phasing.coherence import (CoherenceModel, CoherenceSettings, gaussian_kernel,
                                            kernel_sigma)
 from braggstrain.phasing.metrics import (centre_of_mass_shift, far_field, peak_offset, poisson_nll,
                                          prtf, remove_phase_ramp, twin)
-from braggstrain.phasing.plan import options_from_config
+from braggstrain.phasing.schedule import options_from_config
 from braggstrain.phasing.support import estimate_oversampling, shrinkwrap
 
 from test_phasing_helpers import clean_intensity, crystal

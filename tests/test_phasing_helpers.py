@@ -4,14 +4,14 @@ The crystal is an invented one: a truncated octahedron (supersampled, so its
 facets have partial-voxel density) with a smooth, asymmetric displacement
 along z giving a phase that spans about 2.3 rad, seen at a reflection with
 d = 2 Å.  The intensity layout is the one `reconstruct` expects: the Bragg
-peak at index n//2 (braggstrain.forward.far_field).
+peak at index n//2 (braggstrain.simulate.forward.far_field).
 """
 
 from functools import lru_cache
 
 import numpy as np
 
-from braggstrain import forward
+from braggstrain.simulate import forward
 
 
 @lru_cache(maxsize=None)

@@ -15,7 +15,7 @@ import pytest
 
 from braggstrain.cli import main
 from braggstrain.config import load_config
-from braggstrain.demo import compare_to_truth, simulate_experiment
+from braggstrain.simulate.demo import compare_to_truth, simulate_experiment
 from braggstrain.pipeline import run_pipeline
 
 from conftest import ROOT, small_toml

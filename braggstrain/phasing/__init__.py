@@ -6,12 +6,12 @@ data (:class:`Stage`, :func:`plan_from_config`, :func:`default_plan`) that a
 pipeline TOML file can hold.  See docs/phasing.md.
 """
 
-from .fft import FFTBackend, default_threads, export_wisdom, import_wisdom, load_wisdom, save_wisdom
-from .plan import Stage, default_plan, options_from_config, plan_from_config, plan_to_config
-from .coherence import CoherenceSettings
-from .engine import History, Metrics, OversamplingWarning, Reconstruction, reconstruct
-from .ensemble import EnsembleResult, RunSummary, ensemble
-from .metrics import PRTF, align, complex_error, prtf, twin
+from braggstrain.phasing.fft import FFTBackend, default_threads, export_wisdom, import_wisdom, load_wisdom, save_wisdom
+from braggstrain.phasing.schedule import Stage, default_plan, options_from_config, plan_from_config, plan_to_config
+from braggstrain.phasing.coherence import CoherenceSettings
+from braggstrain.phasing.engine import History, Metrics, OversamplingWarning, Reconstruction, reconstruct
+from braggstrain.phasing.ensemble import EnsembleResult, RunSummary, ensemble
+from braggstrain.phasing.metrics import PRTF, align, complex_error, prtf, twin
 
 __all__ = [
     "reconstruct",

@@ -20,7 +20,7 @@ from dataclasses import dataclass
 import numpy as np
 import scipy.fft
 
-from ..errors import InputError
+from braggstrain.errors import InputError
 
 __all__ = ["CoherenceSettings", "CoherenceModel", "kernel_sigma", "gaussian_kernel"]
 

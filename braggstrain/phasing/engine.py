@@ -17,13 +17,13 @@ import numpy as np
 import scipy.fft
 from scipy.special import gammaln
 
-from ..errors import InputError, PhasingError
-from . import projections as _k
-from .coherence import CoherenceModel, CoherenceSettings
-from .fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
-from .metrics import centre_of_mass_shift, peak_offset, sharpness
-from .plan import default_plan, plan_from_config
-from .support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
+from braggstrain.errors import InputError, PhasingError
+from braggstrain.phasing import kernels as _k
+from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings
+from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
+from braggstrain.phasing.metrics import centre_of_mass_shift, peak_offset, sharpness
+from braggstrain.phasing.schedule import default_plan, plan_from_config
+from braggstrain.phasing.support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
 
 __all__ = [
     "reconstruct",
@@ -631,7 +631,7 @@ def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, pro
         Initial support (crystal centred layout); default: the thresholded
         autocorrelation of the data.  At most half the array.
     plan : list of Stage or dict, optional
-        Stages to run (see :mod:`braggstrain.phasing.plan`); default
+        Stages to run (see :mod:`braggstrain.phasing.schedule`); default
         :func:`default_plan`.
     seed : int, optional
         Seed of the random start; with the same seed, data and thread count

@@ -18,11 +18,11 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from ..errors import InputError, PhasingError
-from . import projections as _k
-from .engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
-from .fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
-from .metrics import PRTF, align, prtf, twin
+from braggstrain.errors import InputError, PhasingError
+from braggstrain.phasing import kernels as _k
+from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
+from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
+from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
 __all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS"]
 

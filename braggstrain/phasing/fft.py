@@ -52,7 +52,7 @@ os.environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
 import numpy as np
 import scipy.fft
 
-from ..errors import InputError
+from braggstrain.errors import InputError
 
 try:  # pyFFTW is a declared dependency, but keep working without it.
     import pyfftw

@@ -13,7 +13,7 @@ import scipy.fft
 import scipy.ndimage
 from scipy.special import gammaln
 
-from ..errors import InputError
+from braggstrain.errors import InputError
 
 __all__ = [
     "poisson_nll",

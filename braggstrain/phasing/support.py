@@ -10,7 +10,7 @@ import numpy as np
 import scipy.fft
 import scipy.ndimage
 
-from . import projections as _k
+from braggstrain.phasing import kernels as _k
 
 __all__ = [
     "autocorrelation",

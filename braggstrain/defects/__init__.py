@@ -1,0 +1,1 @@
+"""Dislocations: phase vortices, line tracing, Burgers vectors and character."""

@@ -1,0 +1,1039 @@
+"""Outputs stage: the results file, VTK files for ParaView, and the bundle.
+
+The pipeline hands this stage one *results bundle*: a plain dict (see
+:class:`Results`) holding the sample-frame grid, the crystal's amplitude and
+support, every reflection's reconstruction and phasing record, the strain
+tensor (:class:`braggstrain.tensor.TensorField`), the dislocation lines
+(:class:`braggstrain.defects.Dislocation`) and the provenance of the run.
+
+* :func:`write_results` stores it in one HDF5 file (``results.h5``), written
+  atomically; every dataset carries ``units``, ``axes`` and ``description``
+  attributes. The layout is documented in ``docs/results.md``.
+* :func:`read_results` reads such a file back into a bundle (plain h5py
+  reads only: nothing is evaluated or unpickled).
+* :func:`export_vtk` writes VTK ImageData (``.vti``) with pyevtk and the
+  dislocation lines as a VTK polyline file (``.vtu``), for ParaView.
+
+Figures are made by :mod:`braggstrain.figures`, the HTML page by
+:mod:`braggstrain.report`.
+
+Conventions (DESIGN.md): grid arrays have axes 0, 1, 2 along sample-frame
+x, y, z; the grid's ``origin`` is the sample-frame position (Å) of the voxel
+at index n//2 on each axis; lengths in Å, angles in radians inside the file
+unless an attribute says otherwise; strain is dimensionless, tensile
+positive.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+import shutil
+import tempfile
+from pathlib import Path
+from typing import Any, TypedDict
+
+import numpy as np
+
+from braggstrain.errors import BraggStrainError, InputError
+from braggstrain.io.scans import atomic_path
+
+__all__ = [
+    "Results",
+    "ReflectionResult",
+    "LAYOUT_VERSION",
+    "STRAIN_COMPONENTS",
+    "check_results",
+    "write_results",
+    "read_results",
+    "export_vtk",
+    "strain_components",
+    "strain_from_components",
+]
+
+#: Version of the results-file layout written by :func:`write_results`.
+LAYOUT_VERSION = 1
+
+#: Order of the six stored strain components (symmetric tensor).
+STRAIN_COMPONENTS = ("xx", "yy", "zz", "yz", "xz", "xy")
+_PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
+
+_CONTENT = "braggstrain results"
+_GRID_AXES = "x, y, z (sample frame; array index i along x, j along y, k along z; origin at index n//2)"
+_GZIP = dict(compression="gzip", compression_opts=4, shuffle=True)
+
+
+class ReflectionResult(TypedDict, total=False):
+    """One reflection of a :class:`Results` bundle (all keys plain values).
+
+    Required: ``name`` (str), ``hkl`` (3 ints), ``g_vector`` ((3,) Å⁻¹,
+    sample frame), ``amplitude`` (float grid), ``phase`` (float grid, rad,
+    wrapped), ``support`` (bool grid). Optional: ``displacement`` (float grid,
+    Å, u along G; NaN outside), ``scan`` (str), ``max_counts`` (float),
+    ``oversampling`` ((3,) floats), ``runs`` and ``kept`` (int),
+    ``run_metrics`` (list of dicts, one per random start), ``prtf`` (dict
+    with ``q`` Å⁻¹, ``values``, ``resolution`` Å), ``history`` (dict name →
+    1-D array), ``shift_vox`` ((3,) voxels), ``twin`` (bool).
+    """
+
+    name: str
+    hkl: tuple
+    g_vector: Any
+    scan: str
+    max_counts: float
+    oversampling: Any
+    runs: int
+    kept: int
+    run_metrics: list
+    prtf: dict
+    history: dict
+    amplitude: Any
+    phase: Any
+    displacement: Any
+    support: Any
+    shift_vox: Any
+    twin: bool
+
+
+class Results(TypedDict, total=False):
+    """The results bundle the pipeline hands to the outputs stage.
+
+    Keys: ``grid`` (dict: ``voxel_size`` (3,) Å, ``origin`` (3,) Å,
+    ``shape`` (3 ints)), ``support`` (bool grid), ``amplitude`` (float grid,
+    mean normalised amplitude), ``reflections`` (list of
+    :class:`ReflectionResult`), ``tensor`` (TensorField), ``dislocations``
+    (list of Dislocation), ``registration`` and ``mean_lattice`` (plain dicts
+    or the stage's dataclasses), ``provenance`` (dict: ``pipeline_text``,
+    ``versions``, ``seeds``, ``timings``, ``command``, ``created``).
+    ``grid``, ``support``, ``amplitude``, ``reflections`` and ``tensor`` are
+    required; the rest default to empty.
+    """
+
+    grid: dict
+    support: Any
+    amplitude: Any
+    reflections: list
+    tensor: Any
+    dislocations: list
+    registration: dict
+    mean_lattice: dict
+    provenance: dict
+
+
+# --------------------------------------------------------------------------
+# strain components
+# --------------------------------------------------------------------------
+
+def strain_components(strain):
+    """The six independent components (xx, yy, zz, yz, xz, xy) of a
+    symmetric (3, 3, ...) field, stacked along a new first axis."""
+    e = np.asarray(strain)
+    if e.shape[:2] != (3, 3):
+        raise InputError(f"strain: expected a (3, 3, ...) tensor field, got shape {e.shape}")
+    return np.stack([e[i, k] for i, k in _PAIRS])
+
+
+def strain_from_components(components):
+    """Inverse of :func:`strain_components`: (6, ...) → symmetric (3, 3, ...)."""
+    c = np.asarray(components)
+    if c.shape[0] != 6:
+        raise InputError(f"components: expected 6 components (xx, yy, zz, yz, xz, xy) first, got shape {c.shape}")
+    e = np.empty((3, 3) + c.shape[1:], dtype=c.dtype)
+    for m, (i, k) in enumerate(_PAIRS):
+        e[i, k] = c[m]
+        e[k, i] = c[m]
+    return e
+
+
+def _gradient_from(strain, rotation):
+    """D = ε + W with W the antisymmetric tensor of the axial vector ω
+    (ω_x = (D_zy − D_yz)/2, ω_y = (D_xz − D_zx)/2, ω_z = (D_yx − D_xy)/2)."""
+    D = np.array(strain, copy=True)
+    wx, wy, wz = rotation
+    D[2, 1] += wx
+    D[1, 2] -= wx
+    D[0, 2] += wy
+    D[2, 0] -= wy
+    D[1, 0] += wz
+    D[0, 1] -= wz
+    return D
+
+
+# --------------------------------------------------------------------------
+# checking the bundle
+# --------------------------------------------------------------------------
+
+def _as_plain(value):
+    """Dataclass instances (e.g. RegistrationReport, MeanLattice) as dicts."""
+    if dataclasses.is_dataclass(value) and not isinstance(value, type):
+        return {f.name: getattr(value, f.name) for f in dataclasses.fields(value)}
+    return value
+
+
+def _vec3(value, where, positive=False, allow_nan=False):
+    try:
+        v = np.asarray(value, dtype=float).reshape(-1)
+    except (TypeError, ValueError):
+        raise InputError(f"{where}: expected three numbers, got {value!r}") from None
+    if v.size == 1:
+        v = np.repeat(v, 3)
+    if v.size != 3 or not np.all(np.isfinite(v) | (allow_nan & np.isnan(v))):
+        raise InputError(f"{where}: expected three finite numbers{' (or NaN)' if allow_nan else ''}, "
+                         f"got {value!r}")
+    if positive and np.any(v <= 0):
+        raise InputError(f"{where}: expected three positive lengths in Å, got {value!r}")
+    return v
+
+
+def _grid_array(value, shape, where, kind="float"):
+    if value is None:
+        raise InputError(f"{where}: missing; expected a {kind} array of the grid shape {shape}")
+    a = np.asarray(value)
+    if a.shape != shape:
+        raise InputError(f"{where}: expected an array of the grid shape {shape}, got shape {a.shape}")
+    if kind == "bool":
+        if a.dtype != bool:
+            if not np.issubdtype(a.dtype, np.number) or not np.all(np.isin(a, (0, 1))):
+                raise InputError(f"{where}: expected a boolean mask (True inside the crystal), got dtype {a.dtype}")
+            a = a.astype(bool)
+        return a
+    if not (np.issubdtype(a.dtype, np.floating) or np.issubdtype(a.dtype, np.integer)):
+        raise InputError(f"{where}: expected a real-valued array, got dtype {a.dtype}")
+    return a.astype(np.float32, copy=False)
+
+
+def _check_reflection(r, j, shape, names):
+    where = f"results['reflections'][{j}]"
+    if not isinstance(r, dict):
+        raise InputError(f"{where}: expected a dict, got {type(r).__name__}")
+    out = dict(r)
+    for key in ("name", "hkl", "g_vector", "amplitude", "phase", "support"):
+        if key not in r:
+            raise InputError(f"{where}: missing key '{key}'")
+    name = r["name"]
+    if not isinstance(name, str) or not name or "/" in name or name in (".", ".."):
+        raise InputError(f"{where}['name']: expected a non-empty string without '/', got {name!r}")
+    if name in names:
+        raise InputError(f"{where}['name']: '{name}' is used by another reflection; expected unique names")
+    names.add(name)
+    where = f"results['reflections'][{j}] ('{name}')"
+    try:
+        hkl = tuple(int(v) for v in r["hkl"])
+        ok = len(hkl) == 3 and np.allclose(np.asarray(r["hkl"], float), hkl)
+    except (TypeError, ValueError):
+        ok = False
+    if not ok or hkl == (0, 0, 0):
+        raise InputError(f"{where}['hkl']: expected three integers (not all zero), got {r['hkl']!r}")
+    out["hkl"] = hkl
+    out["g_vector"] = _vec3(r["g_vector"], f"{where}['g_vector']")
+    out["amplitude"] = _grid_array(r["amplitude"], shape, f"{where}['amplitude']")
+    out["phase"] = _grid_array(r["phase"], shape, f"{where}['phase']")
+    out["support"] = _grid_array(r["support"], shape, f"{where}['support']", "bool")
+    if r.get("displacement") is not None:
+        out["displacement"] = _grid_array(r["displacement"], shape, f"{where}['displacement']")
+    else:
+        out["displacement"] = None
+    out["scan"] = str(r.get("scan", ""))
+    for key in ("max_counts",):
+        v = r.get(key, np.nan)
+        try:
+            out[key] = float(v)
+        except (TypeError, ValueError):
+            raise InputError(f"{where}['{key}']: expected a number, got {v!r}") from None
+    for key in ("runs", "kept"):
+        v = r.get(key, 0)
+        if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or v < 0:
+            raise InputError(f"{where}['{key}']: expected a non-negative integer, got {v!r}")
+        out[key] = int(v)
+    if out["kept"] > out["runs"] > 0:
+        raise InputError(f"{where}['kept']: {out['kept']} runs kept out of {out['runs']}; expected kept ≤ runs")
+    out["oversampling"] = (_vec3(r["oversampling"], f"{where}['oversampling']", allow_nan=True)
+                           if r.get("oversampling") is not None else np.full(3, np.nan))
+    out["shift_vox"] = (_vec3(r["shift_vox"], f"{where}['shift_vox']")
+                        if r.get("shift_vox") is not None else np.zeros(3))
+    out["twin"] = bool(r.get("twin", False))
+    rm = r.get("run_metrics", []) or []
+    if not isinstance(rm, (list, tuple)) or not all(isinstance(m, dict) for m in rm):
+        raise InputError(f"{where}['run_metrics']: expected a list of dicts (one per random start)")
+    out["run_metrics"] = [dict(m) for m in rm]
+    pr = r.get("prtf")
+    if pr is not None:
+        if not isinstance(pr, dict) or "q" not in pr or "values" not in pr:
+            raise InputError(f"{where}['prtf']: expected a dict with 'q' (Å⁻¹), 'values' and 'resolution' (Å)")
+        q = np.asarray(pr["q"], float).reshape(-1)
+        v = np.asarray(pr["values"], float).reshape(-1)
+        if q.shape != v.shape:
+            raise InputError(f"{where}['prtf']: 'q' has {q.size} values and 'values' {v.size}; expected the same")
+        pr = {"q": q, "values": v, "resolution": float(pr.get("resolution", np.nan))}
+    out["prtf"] = pr
+    hist = r.get("history", {}) or {}
+    if not isinstance(hist, dict):
+        raise InputError(f"{where}['history']: expected a dict name → 1-D array")
+    h2 = {}
+    for k, v in hist.items():
+        a = np.asarray(v)
+        if not isinstance(k, str) or "/" in k or a.ndim != 1 or not np.issubdtype(a.dtype, np.number):
+            raise InputError(f"{where}['history'][{k!r}]: expected a 1-D numeric array under a name without '/'")
+        h2[k] = a
+    out["history"] = h2
+    return out
+
+
+def _check_tensor(tf, shape):
+    from braggstrain.strain.tensor import TensorField
+
+    if not isinstance(tf, TensorField):
+        raise InputError(f"results['tensor']: expected a braggstrain.tensor.TensorField, got {type(tf).__name__}")
+    checks = {"strain": (3, 3), "rotation": (3,), "residual": (), "strain_uncertainty": (3, 3),
+              "rotation_uncertainty": (3,), "support": (), "trusted": ()}
+    for name, lead in checks.items():
+        a = np.asarray(getattr(tf, name))
+        if a.shape != lead + shape:
+            raise InputError(f"results['tensor'].{name}: expected shape {lead + shape}, got {a.shape}")
+    J = len(tf.labels)
+    if np.asarray(tf.g_vectors).shape != (J, 3):
+        raise InputError(f"results['tensor'].g_vectors: expected shape ({J}, 3), got {np.asarray(tf.g_vectors).shape}")
+    if np.asarray(tf.residual_per_reflection).shape != (J,) + shape:
+        raise InputError(f"results['tensor'].residual_per_reflection: expected shape {(J,) + shape}, "
+                         f"got {np.asarray(tf.residual_per_reflection).shape}")
+    if tf.displacement is not None and np.asarray(tf.displacement).shape != (3,) + shape:
+        raise InputError(f"results['tensor'].displacement: expected shape {(3,) + shape}, "
+                         f"got {np.asarray(tf.displacement).shape}")
+    return tf
+
+
+def check_results(results):
+    """Check a results bundle and return a normalised copy.
+
+    Arrays become numpy arrays of the documented dtypes, optional keys get
+    their defaults (empty lists and dicts, NaN numbers), dataclasses in
+    ``registration`` and ``mean_lattice`` become dicts.
+
+    Raises
+    ------
+    InputError
+        Naming the key and what was expected.
+    """
+    from braggstrain.defects.lines import Dislocation
+
+    if not isinstance(results, dict):
+        raise InputError(f"results: expected a dict (the results bundle), got {type(results).__name__}")
+    for key in ("grid", "support", "amplitude", "reflections", "tensor"):
+        if key not in results:
+            raise InputError(f"results: missing key '{key}'")
+    grid = results["grid"]
+    if not isinstance(grid, dict):
+        raise InputError("results['grid']: expected a dict with voxel_size, origin and shape")
+    for key in ("voxel_size", "shape"):
+        if key not in grid:
+            raise InputError(f"results['grid']: missing key '{key}'")
+    try:
+        shape = tuple(int(n) for n in grid["shape"])
+    except (TypeError, ValueError):
+        raise InputError(f"results['grid']['shape']: expected three positive integers, got {grid['shape']!r}") from None
+    if len(shape) != 3 or min(shape) < 2:
+        raise InputError(f"results['grid']['shape']: expected three integers ≥ 2, got {grid['shape']!r}")
+    out = dict(results)
+    out["grid"] = {"voxel_size": _vec3(grid["voxel_size"], "results['grid']['voxel_size']", positive=True),
+                   "origin": _vec3(grid.get("origin", (0.0, 0.0, 0.0)), "results['grid']['origin']"),
+                   "shape": shape}
+    out["support"] = _grid_array(results["support"], shape, "results['support']", "bool")
+    if not out["support"].any():
+        raise InputError("results['support']: the support is empty; expected True inside the crystal")
+    out["amplitude"] = _grid_array(results["amplitude"], shape, "results['amplitude']")
+    refl = results["reflections"]
+    if not isinstance(refl, (list, tuple)) or not refl:
+        raise InputError("results['reflections']: expected a non-empty list of reflection dicts")
+    names = set()
+    out["reflections"] = [_check_reflection(r, j, shape, names) for j, r in enumerate(refl)]
+    out["tensor"] = _check_tensor(results["tensor"], shape)
+    lines = results.get("dislocations") or []
+    for k, d in enumerate(lines):
+        if not isinstance(d, Dislocation):
+            raise InputError(f"results['dislocations'][{k}]: expected a braggstrain.defects.Dislocation, "
+                             f"got {type(d).__name__}")
+    out["dislocations"] = list(lines)
+    for key in ("registration", "mean_lattice", "provenance"):
+        v = _as_plain(results.get(key) or {})
+        if not isinstance(v, dict):
+            raise InputError(f"results['{key}']: expected a dict of plain values, got {type(v).__name__}")
+        out[key] = v
+    prov = dict(out["provenance"])
+    for key in ("versions", "seeds", "timings"):
+        v = prov.get(key) or {}
+        if not isinstance(v, dict):
+            raise InputError(f"results['provenance']['{key}']: expected a dict, got {type(v).__name__}")
+        prov[key] = dict(v)
+    for key in ("pipeline_text", "command", "created"):
+        v = prov.get(key, "")
+        if not isinstance(v, str):
+            raise InputError(f"results['provenance']['{key}']: expected a string, got {type(v).__name__}")
+        prov[key] = v
+    out["provenance"] = prov
+    return out
+
+
+# --------------------------------------------------------------------------
+# plain values <-> HDF5 groups and attributes
+# --------------------------------------------------------------------------
+
+def _is_str_seq(v):
+    return isinstance(v, (list, tuple)) and len(v) > 0 and all(isinstance(x, str) for x in v)
+
+
+def _put(group, key, value, where):
+    """Store a plain value under ``key``: dicts (and dataclasses) become
+    subgroups, lists of dicts numbered subgroups, large arrays datasets,
+    everything else attributes (None as an empty attribute)."""
+    import h5py
+
+    key = str(key)
+    if "/" in key or key in ("", ".", ".."):
+        raise InputError(f"{where}: key {key!r} cannot be stored (expected a name without '/')")
+    value = _as_plain(value)
+    if isinstance(value, dict):
+        g = group.create_group(key)
+        g.attrs["stored_as"] = "mapping"
+        for k, v in value.items():
+            if not isinstance(k, str):
+                raise InputError(f"{where}: key {k!r} is not a string; expected string keys")
+            _put(g, k, v, f"{where}['{k}']")
+        known = [f"{k}: {_KNOWN_UNITS[k]}" for k in value if k in _KNOWN_UNITS]
+        if known and "units" not in value:
+            g.attrs["units"] = "; ".join(known)
+            g.attrs["units_summary"] = True
+        return
+    if isinstance(value, (list, tuple)) and value and all(isinstance(_as_plain(x), dict) for x in value):
+        g = group.create_group(key)
+        g.attrs["stored_as"] = "list"
+        for i, v in enumerate(value):
+            _put(g, f"{i:03d}", v, f"{where}[{i}]")
+        return
+    if value is None:
+        group.attrs[key] = h5py.Empty("f8")
+        return
+    if isinstance(value, (str, bytes)):
+        group.attrs[key] = value if isinstance(value, str) else value.decode("utf-8", "replace")
+        return
+    if _is_str_seq(value):
+        group.attrs.create(key, list(value), dtype=h5py.string_dtype())
+        return
+    if isinstance(value, (list, tuple)) and len(value) == 0:
+        group.attrs[key] = np.zeros(0)
+        return
+    try:
+        arr = np.asarray(value)
+    except (TypeError, ValueError):
+        arr = None
+    if arr is None or arr.dtype == object or not (np.issubdtype(arr.dtype, np.number) or arr.dtype == bool):
+        raise InputError(f"{where}: value of type {type(value).__name__} cannot be stored; expected numbers, "
+                         f"strings, arrays, lists or dicts of these")
+    if arr.size > 64:
+        ds = group.create_dataset(key, data=arr, **(_GZIP if arr.size > 1024 else {}))
+        ds.attrs["units"] = _KNOWN_UNITS.get(key, "as given by the producing stage")
+    else:
+        group.attrs[key] = arr
+
+
+#: Units of the plain values the registration and mean-lattice stages report.
+_KNOWN_UNITS = {
+    "shifts_voxels": "voxels", "shift_voxels": "voxels", "shifts_angstrom": "Å", "shift_angstrom": "Å",
+    "voxel_size": "Å", "origin": "Å", "shape": "voxels", "overlap": "1 (Dice coefficient)",
+    "overlap_dice": "1 (Dice coefficient)", "twin_scores": "1 (normalised correlation)",
+    "displacement_gradient": "1 (dimensionless)", "strain": "1 (dimensionless)", "rotation": "rad",
+    "lattice_parameter": "Å", "lattice_parameter_per_reflection": "Å", "residual": "Å⁻¹",
+    "condition_number": "1", "reference_lattice_parameter": "Å",
+}
+
+
+def _plain(v):
+    import h5py
+
+    if isinstance(v, h5py.Empty):
+        return None
+    if isinstance(v, bytes):
+        return v.decode("utf-8", "replace")
+    if isinstance(v, np.ndarray):
+        if v.dtype.kind in ("O", "S"):
+            return [x.decode("utf-8", "replace") if isinstance(x, bytes) else str(x) for x in v.tolist()]
+        return v
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+def _get(group):
+    """Inverse of :func:`_put` for a group stored as a mapping or list."""
+    import h5py
+
+    kind = group.attrs.get("stored_as", "mapping")
+    if kind == "list":
+        return [_get(group[k]) for k in sorted(group.keys())]
+    out = {}
+    summary = bool(group.attrs.get("units_summary", False))
+    for k, v in group.attrs.items():
+        if k == "stored_as" or (summary and k in ("units", "units_summary")):
+            continue
+        out[k] = _plain(v)
+    for k, node in group.items():
+        out[k] = _get(node) if isinstance(node, h5py.Group) else node[()]
+    return out
+
+
+def _dataset(group, name, data, units, axes, description, dtype=np.float32, compress=True):
+    a = np.asarray(data)
+    if dtype is not None:
+        a = a.astype(dtype, copy=False)
+    ds = group.create_dataset(name, data=a, **(_GZIP if compress and a.size > 1024 else {}))
+    ds.attrs["units"] = units
+    ds.attrs["axes"] = axes
+    ds.attrs["description"] = description
+    return ds
+
+
+def _mask(group, name, data, description):
+    ds = _dataset(group, name, np.asarray(data, bool).astype(np.uint8), "1 (mask: 1 inside, 0 outside)",
+                  _GRID_AXES, description, dtype=np.uint8)
+    return ds
+
+
+_HISTORY_UNITS = {
+    "amplitude_error": "1 (dimensionless)",
+    "free_amplitude_error": "1 (dimensionless)",
+    "support_size": "voxels",
+    "stage": "index of the phasing-plan stage",
+    "checkpoint": "iteration number",
+    "nll": "1 (per voxel)",
+    "free_nll": "1 (per voxel)",
+    "llk": "1 (per voxel)",
+    "free_llk": "1 (per voxel)",
+    "background": "counts per voxel",
+    "run": "1 (index of the random start)",
+    "seed": "1 (random seed)",
+    "status": "text",
+    "message": "text",
+    "kept": "1 (true when averaged into the result)",
+    "sharpness": "1 (dimensionless)",
+    "iterations": "iterations",
+    "elapsed": "s",
+}
+
+
+def _run_table(group, runs, where):
+    """Store a list of per-run dicts as one 1-D dataset per column."""
+    import h5py
+
+    g = group.create_group("runs")
+    g.attrs["count"] = len(runs)
+    g.attrs["description"] = "one row per random start; one dataset per column"
+    cols = []
+    for m in runs:
+        for k in m:
+            if k not in cols:
+                cols.append(k)
+    g.attrs["columns"] = cols if cols else np.zeros(0)
+    for c in cols:
+        if not isinstance(c, str) or "/" in c:
+            raise InputError(f"{where}: column {c!r}: expected a string name without '/'")
+        vals = [m.get(c) for m in runs]
+        present = [v for v in vals if v is not None]
+        if all(isinstance(v, str) for v in present):
+            ds = g.create_dataset(c, data=["" if v is None else v for v in vals], dtype=h5py.string_dtype())
+            ds.attrs["kind"] = "text"
+        elif all(isinstance(v, (bool, np.bool_)) for v in present):
+            ds = g.create_dataset(c, data=np.array([bool(v) if v is not None else False for v in vals]))
+            ds.attrs["kind"] = "bool"
+        elif all(isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_)) for v in present) \
+                and len(present) == len(vals):
+            ds = g.create_dataset(c, data=np.array(vals, dtype=np.int64))
+            ds.attrs["kind"] = "int"
+        else:
+            try:
+                data = np.array([np.nan if v is None else float(v) for v in vals])
+            except (TypeError, ValueError):
+                raise InputError(f"{where}: column '{c}' mixes numbers and other values; expected one kind "
+                                 f"per column") from None
+            ds = g.create_dataset(c, data=data)
+            ds.attrs["kind"] = "float"
+        ds.attrs["units"] = _HISTORY_UNITS.get(c, "as given by the phasing stage")
+        ds.attrs["axes"] = "run"
+
+
+def _read_run_table(g):
+    n = int(g.attrs["count"])
+    cols = [str(c) for c in _plain(g.attrs["columns"])] if "columns" in g.attrs else []
+    rows = [dict() for _ in range(n)]
+    for c in cols:
+        ds = g[c]
+        kind = ds.attrs.get("kind", "float")
+        if kind == "text":
+            vals = [x.decode("utf-8") if isinstance(x, bytes) else str(x) for x in ds[()]]
+        elif kind == "int":
+            vals = [int(x) for x in ds[()]]
+        elif kind == "bool":
+            vals = [bool(x) for x in ds[()]]
+        else:
+            vals = [float(x) for x in ds[()]]
+        for i in range(n):
+            rows[i][c] = vals[i]
+    return rows
+
+
+# --------------------------------------------------------------------------
+# writing
+# --------------------------------------------------------------------------
+
+def write_results(path, results):
+    """Write the results bundle to one HDF5 file, atomically.
+
+    The file is first written under a temporary name beside ``path`` and
+    renamed onto it only when complete, so a failure leaves any earlier
+    file untouched and no partial file behind. Layout: ``docs/results.md``.
+
+    Parameters
+    ----------
+    path : str or Path
+        Target file, conventionally ``results.h5``.
+    results : dict
+        The results bundle (:class:`Results`).
+
+    Returns
+    -------
+    Path
+    """
+    import h5py
+
+    from braggstrain.defects.lines import write_dislocations_h5
+
+    r = check_results(results)
+    path = Path(path)
+    grid = r["grid"]
+    shape = grid["shape"]
+    vs = grid["voxel_size"]
+    tf = r["tensor"]
+    with atomic_path(path) as tmp:
+        with h5py.File(tmp, "w") as f:
+            f.attrs["content"] = _CONTENT
+            f.attrs["layout_version"] = LAYOUT_VERSION
+            f.attrs["frame"] = "sample frame: the lab frame with every sample circle at zero (y along the beam, z up)"
+            f.attrs["axes"] = _GRID_AXES
+            f.attrs["length_units"] = "Å"
+            f.attrs["created"] = r["provenance"].get("created", "")
+
+            g = f.create_group("grid")
+            g.attrs["voxel_size"] = vs
+            g.attrs["origin"] = grid["origin"]
+            g.attrs["shape"] = np.asarray(shape, np.int64)
+            g.attrs["units"] = "Å"
+            g.attrs["description"] = ("voxel_size: voxel edge along x, y, z; origin: sample-frame position of "
+                                      "the voxel at index n//2 on each axis")
+            for i, ax in enumerate("xyz"):
+                coord = grid["origin"][i] + (np.arange(shape[i]) - shape[i] // 2) * vs[i]
+                _dataset(g, ax, coord, "Å", ax, f"sample-frame {ax} of the voxel centres along axis {i}",
+                         dtype=np.float64, compress=False)
+
+            c = f.create_group("crystal")
+            _dataset(c, "amplitude", r["amplitude"], "1 (normalised)", _GRID_AXES,
+                     "mean over reflections of the normalised reconstructed amplitude")
+            _mask(c, "support", r["support"], "voxels inside the crystal (common support)")
+
+            t = f.create_group("tensor")
+            comp_axes = "component (xx, yy, zz, yz, xz, xy), " + _GRID_AXES
+            _dataset(t, "strain", strain_components(tf.strain), "1 (dimensionless, tensile positive)", comp_axes,
+                     "strain tensor ε = (D + Dᵀ)/2; NaN outside the support and where the solve failed")
+            t["strain"].attrs["components"] = list(STRAIN_COMPONENTS)
+            _dataset(t, "strain_uncertainty", strain_components(tf.strain_uncertainty), "1 (dimensionless)",
+                     comp_axes, "one standard deviation of each strain component (least-squares covariance); "
+                     "NaN where it cannot be estimated")
+            t["strain_uncertainty"].attrs["components"] = list(STRAIN_COMPONENTS)
+            vec_axes = "component (x, y, z), " + _GRID_AXES
+            _dataset(t, "rotation", tf.rotation, "rad", vec_axes,
+                     "lattice rotation: axial vector of (D − Dᵀ)/2, ω_x = (D_zy − D_yz)/2, ...")
+            _dataset(t, "rotation_uncertainty", tf.rotation_uncertainty, "rad", vec_axes,
+                     "one standard deviation of each rotation component")
+            if tf.displacement is not None:
+                _dataset(t, "displacement", tf.displacement, "Å", vec_axes,
+                         "displacement vector u from the unwrapped phases, zero at the reference voxel; NaN "
+                         "outside the support and where unwrapping failed")
+            _dataset(t, "residual", tf.residual, "rad/Å", _GRID_AXES,
+                     "weighted RMS misfit of the phase gradients of all reflections to the fitted tensor")
+            _dataset(t, "residual_per_reflection", tf.residual_per_reflection, "rad/Å",
+                     "reflection (order of g_vectors), " + _GRID_AXES,
+                     "RMS misfit of each reflection's phase gradient")
+            _mask(t, "support", tf.support, "voxels where the tensor was solved")
+            _mask(t, "trusted", tf.trusted, "support eroded by one voxel with every amplitude above threshold")
+            _dataset(t, "g_vectors", tf.g_vectors, "Å⁻¹ (2π included)", "reflection, component (x, y, z)",
+                     "G vectors used for the tensor, sample frame", dtype=np.float64, compress=False)
+            t.attrs["labels"] = [str(s) for s in tf.labels]
+            t.attrs["condition_number"] = float(tf.condition_number)
+            t.attrs["reference_voxel"] = np.asarray(tf.reference, np.int64)
+            t.attrs["outlier"] = "" if tf.outlier is None else str(tf.outlier)
+            t.attrs["displacement_gradient"] = ("not stored: D = strain + W(rotation), W the antisymmetric "
+                                                "tensor of the rotation vector")
+            if tf.outlier_scores:
+                s = t.create_group("outlier_scores")
+                s.attrs["description"] = "leave-one-out consistency score per reflection label"
+                s.attrs["units"] = "1 (dimensionless)"
+                for k, v in tf.outlier_scores.items():
+                    s.attrs[str(k)] = float(v)
+
+            d = t.create_group("derived")
+            _dataset(d, "hydrostatic", tf.hydrostatic, "1 (dimensionless)", _GRID_AXES, "hydrostatic strain tr(ε)/3")
+            _dataset(d, "von_mises", tf.von_mises, "1 (dimensionless)", _GRID_AXES,
+                     "von Mises equivalent strain √(2/3 e:e), e the deviatoric strain")
+            pv, pd = tf.principal
+            _dataset(d, "principal_strains", pv, "1 (dimensionless)", "principal index (ε₁ ≥ ε₂ ≥ ε₃), " + _GRID_AXES,
+                     "principal strains, descending")
+            _dataset(d, "principal_directions", pd, "1 (unit vectors)",
+                     "component (x, y, z), principal index, " + _GRID_AXES,
+                     "principal_directions[:, m] is the direction of principal strain m (sign arbitrary)")
+
+            rg = f.create_group("reflections")
+            rg.attrs["order"] = [x["name"] for x in r["reflections"]]
+            for x in r["reflections"]:
+                _write_reflection(rg.create_group(x["name"]), x)
+
+            dg = f.create_group("dislocations")
+            write_dislocations_h5(dg, r["dislocations"])
+            _label_dislocations(dg)
+
+            for key in ("registration", "mean_lattice"):
+                _put(f, key, r[key], f"results['{key}']")
+
+            p = f.create_group("provenance")
+            prov = r["provenance"]
+            ds = p.create_dataset("pipeline_text", data=prov.get("pipeline_text", ""), dtype=h5py.string_dtype())
+            ds.attrs["units"] = "text"
+            ds.attrs["description"] = "the pipeline file (TOML) of the run, verbatim"
+            p.attrs["command"] = prov.get("command", "")
+            p.attrs["created"] = prov.get("created", "")
+            for key in ("versions", "seeds", "timings"):
+                _put(p, key, prov.get(key, {}), f"results['provenance']['{key}']")
+            p["timings"].attrs["units"] = "s"
+            p["timings"].attrs["units_summary"] = True
+            extra = {k: v for k, v in prov.items()
+                     if k not in ("pipeline_text", "command", "created", "versions", "seeds", "timings")}
+            if extra:
+                _put(p, "other", extra, "results['provenance']")
+    return path
+
+
+_LINE_UNITS = {
+    "points": ("Å", "point, component (x, y, z)", "points along the line, sample frame, origin at index n//2"),
+    "directions": ("1 (unit vectors)", "point, component (x, y, z)", "unit line direction ξ at each point"),
+    "local_character_deg": ("degrees", "point", "angle between b and ξ at each point: 0 screw, 90 edge"),
+    "hkl": ("1 (Miller indices)", "reflection, index", "reflections whose windings were measured"),
+    "windings": ("1 (integer phase winding; −128 unknown)", "reflection",
+                 "phase winding n_j right-handed about ξ, h_j·b = −n_j"),
+    "agreement": ("1 (fraction of rings)", "reflection", "fraction of rings agreeing with the winding"),
+}
+
+
+def _label_dislocations(group):
+    """Add units/axes/description to the line datasets that lack them."""
+    for name, g in group.items():
+        for key, node in g.items():
+            if key in _LINE_UNITS:
+                units, axes, desc = _LINE_UNITS[key]
+                node.attrs.setdefault("units", units)
+                node.attrs.setdefault("axes", axes)
+                node.attrs.setdefault("description", desc)
+            elif "units" not in node.attrs:
+                node.attrs["units"] = "as given by braggstrain.defects"
+
+
+def _write_reflection(g, x):
+    g.attrs["name"] = x["name"]
+    g.attrs["hkl"] = np.asarray(x["hkl"], np.int64)
+    g.attrs["g_vector"] = x["g_vector"]
+    g.attrs["g_vector_units"] = "Å⁻¹ (2π included), sample frame"
+    g.attrs["scan"] = x["scan"]
+    g.attrs["max_counts"] = x["max_counts"]
+    g.attrs["oversampling"] = x["oversampling"]
+    g.attrs["runs"] = x["runs"]
+    g.attrs["kept"] = x["kept"]
+    g.attrs["shift_vox"] = x["shift_vox"]
+    g.attrs["shift_units"] = "voxels of the common grid"
+    g.attrs["twin"] = x["twin"]
+    _dataset(g, "amplitude", x["amplitude"], "1 (normalised)", _GRID_AXES,
+             "reconstructed amplitude on the common sample-frame grid")
+    _dataset(g, "phase", x["phase"], "rad (wrapped to (−π, π])", _GRID_AXES,
+             "reconstructed phase φ = −G·u (wrapped)")
+    if x["displacement"] is not None:
+        _dataset(g, "displacement", x["displacement"], "Å", _GRID_AXES,
+                 "displacement along G, u_G = −φ/|G| (unwrapped); NaN outside and where unwrapping failed")
+    _mask(g, "support", x["support"], "this reflection's support after registration")
+    _run_table(g, x["run_metrics"], f"reflection '{x['name']}' run_metrics")
+    if x["prtf"] is not None:
+        pg = g.create_group("prtf")
+        pg.attrs["resolution"] = x["prtf"]["resolution"]
+        pg.attrs["resolution_units"] = "Å"
+        _dataset(pg, "q", x["prtf"]["q"], "Å⁻¹", "shell", "centre of each |q| shell", dtype=np.float64,
+                 compress=False)
+        _dataset(pg, "values", x["prtf"]["values"], "1 (dimensionless, 0..1)", "shell",
+                 "phase-retrieval transfer function per shell (NaN where a shell is empty)",
+                 dtype=np.float64, compress=False)
+    hg = g.create_group("history")
+    hg.attrs["description"] = "per-iteration metrics of the best run"
+    hist = x["history"]
+    n_iter = max((len(v) for v in hist.values()), default=0)
+    n_check = len(hist["checkpoint"]) if "checkpoint" in hist else -1
+    for k, v in hist.items():
+        if k == "checkpoint":
+            axes = "checkpoint"
+        elif len(v) == n_iter:
+            axes = "iteration"
+        elif len(v) == n_check:
+            axes = "checkpoint (iteration numbers in 'checkpoint')"
+        else:
+            axes = "entry"
+        _dataset(hg, k, v, _HISTORY_UNITS.get(k, "as given by the phasing stage"), axes,
+                 f"history of '{k}'", dtype=None)
+
+
+# --------------------------------------------------------------------------
+# reading
+# --------------------------------------------------------------------------
+
+def _need(node, key, path):
+    if key not in node:
+        raise InputError(f"{path}: field '{node.name.rstrip('/')}/{key}' missing; expected a results file "
+                         f"written by braggstrain (layout version {LAYOUT_VERSION})")
+    return node[key]
+
+
+def _text(v):
+    v = _plain(v)
+    return "" if v is None else str(v)
+
+
+def read_results(path):
+    """Read a results file back into a bundle.
+
+    Only datasets and attributes are read (h5py); nothing is evaluated or
+    unpickled. The tensor comes back as a :class:`~braggstrain.tensor.TensorField`
+    (its displacement gradient rebuilt from strain and rotation), the lines
+    as :class:`~braggstrain.defects.Dislocation` records.
+
+    Raises
+    ------
+    InputError
+        The file is missing, not a braggstrain results file, or lacks a field.
+    """
+    import h5py
+
+    from braggstrain.defects.lines import read_dislocations_h5
+    from braggstrain.strain.tensor import TensorField
+
+    path = Path(path)
+    if not path.is_file():
+        raise InputError(f"{path}: no such results file")
+    try:
+        f = h5py.File(path, "r")
+    except OSError as exc:
+        raise InputError(f"{path}: cannot be opened as HDF5 ({exc}); expected a results file") from None
+    with f:
+        if _text(f.attrs.get("content")) != _CONTENT:
+            raise InputError(f"{path}: attribute 'content' is {_text(f.attrs.get('content'))!r}; expected "
+                             f"'{_CONTENT}' (a file written by braggstrain.outputs.write_results)")
+        ver = int(f.attrs.get("layout_version", -1))
+        if ver != LAYOUT_VERSION:
+            raise InputError(f"{path}: layout_version {ver}; this braggstrain reads version {LAYOUT_VERSION}")
+        g = _need(f, "grid", path)
+        grid = {"voxel_size": np.asarray(g.attrs["voxel_size"], float),
+                "origin": np.asarray(g.attrs["origin"], float),
+                "shape": tuple(int(n) for n in g.attrs["shape"])}
+        c = _need(f, "crystal", path)
+        out = {"grid": grid,
+               "amplitude": _need(c, "amplitude", path)[()],
+               "support": _need(c, "support", path)[()].astype(bool)}
+
+        t = _need(f, "tensor", path)
+        strain = strain_from_components(_need(t, "strain", path)[()])
+        rotation = _need(t, "rotation", path)[()]
+        labels = [str(s) for s in _plain(t.attrs["labels"])]
+        tf = TensorField(
+            displacement_gradient=_gradient_from(strain, rotation).astype(np.float32),
+            strain=strain,
+            rotation=rotation,
+            residual=_need(t, "residual", path)[()],
+            residual_per_reflection=_need(t, "residual_per_reflection", path)[()],
+            strain_uncertainty=strain_from_components(_need(t, "strain_uncertainty", path)[()]),
+            rotation_uncertainty=_need(t, "rotation_uncertainty", path)[()],
+            displacement=t["displacement"][()] if "displacement" in t else None,
+            support=_need(t, "support", path)[()].astype(bool),
+            trusted=_need(t, "trusted", path)[()].astype(bool),
+            condition_number=float(t.attrs["condition_number"]),
+            g_vectors=_need(t, "g_vectors", path)[()],
+            labels=labels,
+            voxel_size=grid["voxel_size"].copy(),
+            reference=tuple(int(v) for v in t.attrs["reference_voxel"]),
+            outlier=_text(t.attrs.get("outlier")) or None,
+            outlier_scores=({k: float(v) for k, v in t["outlier_scores"].attrs.items()
+                             if k not in ("description", "units")} if "outlier_scores" in t else {}),
+        )
+        out["tensor"] = tf
+
+        rg = _need(f, "reflections", path)
+        order = [str(s) for s in _plain(rg.attrs["order"])]
+        out["reflections"] = [_read_reflection(_need(rg, name, path), path) for name in order]
+        out["dislocations"] = read_dislocations_h5(_need(f, "dislocations", path))
+        for key in ("registration", "mean_lattice"):
+            out[key] = _get(f[key]) if key in f else {}
+        p = _need(f, "provenance", path)
+        prov = {"pipeline_text": _text(p["pipeline_text"][()]) if "pipeline_text" in p else "",
+                "command": _text(p.attrs.get("command")), "created": _text(p.attrs.get("created"))}
+        for key in ("versions", "seeds", "timings"):
+            prov[key] = _get(p[key]) if key in p else {}
+        if "other" in p:
+            prov.update(_get(p["other"]))
+        out["provenance"] = prov
+    return out
+
+
+def _read_reflection(g, path):
+    x = {"name": _text(g.attrs["name"]),
+         "hkl": tuple(int(v) for v in g.attrs["hkl"]),
+         "g_vector": np.asarray(g.attrs["g_vector"], float),
+         "scan": _text(g.attrs.get("scan")),
+         "max_counts": float(g.attrs["max_counts"]),
+         "oversampling": np.asarray(g.attrs["oversampling"], float),
+         "runs": int(g.attrs["runs"]),
+         "kept": int(g.attrs["kept"]),
+         "shift_vox": np.asarray(g.attrs["shift_vox"], float),
+         "twin": bool(g.attrs["twin"]),
+         "amplitude": _need(g, "amplitude", path)[()],
+         "phase": _need(g, "phase", path)[()],
+         "displacement": g["displacement"][()] if "displacement" in g else None,
+         "support": _need(g, "support", path)[()].astype(bool),
+         "run_metrics": _read_run_table(g["runs"]) if "runs" in g else [],
+         "prtf": None,
+         "history": {k: v[()] for k, v in g["history"].items()} if "history" in g else {}}
+    if "prtf" in g:
+        pg = g["prtf"]
+        x["prtf"] = {"q": pg["q"][()], "values": pg["values"][()], "resolution": float(pg.attrs["resolution"])}
+    return x
+
+
+# --------------------------------------------------------------------------
+# VTK
+# --------------------------------------------------------------------------
+
+def _vtk_name(text):
+    keep = "".join(ch if (ch.isalnum() or ch in "_-") else "_" for ch in str(text))
+    return keep or "reflection"
+
+
+def export_vtk(results_or_path, out_dir, *, stem="crystal"):
+    """Write ParaView files: one VTK ImageData file and the dislocation lines.
+
+    ``<stem>.vti`` holds, as point data on the voxel centres (spacing = the
+    voxel size in **nm**, origin = the sample-frame position of voxel
+    (0, 0, 0) in nm): ``amplitude``, ``support`` (0/1), ``strain_xx`` …
+    ``strain_xy``, ``hydrostatic_strain``, ``von_mises_strain``,
+    ``rotation_rad`` (vector), ``displacement_nm`` (vector, nm, so that
+    ParaView's warp-by-vector uses the grid's unit), ``residual_rad_per_A``,
+    and per reflection ``phase_rad_<name>`` and ``u_along_G_nm_<name>``.
+    NaN marks voxels outside the crystal. ``<stem>_dislocations.vtu`` holds
+    the lines as polylines (nm) with point data ``line_id`` (1-based, the
+    report's numbering) and ``character_deg``; it is written only when
+    there are lines. Written with pyevtk.
+
+    Parameters
+    ----------
+    results_or_path : dict or str or Path
+        A results bundle or a results file.
+    out_dir : str or Path
+        Folder for the files (created if missing).
+    stem : str
+        File-name stem.
+
+    Returns
+    -------
+    list of Path
+    """
+    try:
+        from pyevtk.hl import imageToVTK, polyLinesToVTK
+    except ImportError:  # pragma: no cover - depends on the environment
+        raise BraggStrainError("export_vtk: the pyevtk package is needed for VTK export (pip install pyevtk)") from None
+
+    if isinstance(results_or_path, (str, os.PathLike)):
+        r = read_results(results_or_path)
+    else:
+        r = results_or_path
+    r = check_results(r)
+    if not stem or _vtk_name(stem) != stem:
+        raise InputError(f"stem: expected letters, digits, '_' or '-' only, got {stem!r}")
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    grid = r["grid"]
+    shape = grid["shape"]
+    vs_nm = grid["voxel_size"] / 10.0
+    origin_nm = (grid["origin"] - (np.array(shape) // 2) * grid["voxel_size"]) / 10.0
+    tf = r["tensor"]
+
+    def f32(a):
+        return np.ascontiguousarray(a, dtype=np.float32)
+
+    data = {"amplitude": f32(r["amplitude"]),
+            "support": np.ascontiguousarray(r["support"], dtype=np.uint8)}
+    comps = strain_components(tf.strain)
+    for m, name in enumerate(STRAIN_COMPONENTS):
+        data[f"strain_{name}"] = f32(comps[m])
+    data["hydrostatic_strain"] = f32(tf.hydrostatic)
+    data["von_mises_strain"] = f32(tf.von_mises)
+    data["rotation_rad"] = tuple(f32(tf.rotation[i]) for i in range(3))
+    if tf.displacement is not None:
+        data["displacement_nm"] = tuple(f32(tf.displacement[i] / 10.0) for i in range(3))
+    data["residual_rad_per_A"] = f32(tf.residual)
+    used = set()
+    for x in r["reflections"]:
+        nm = _vtk_name(x["name"])
+        base = nm
+        k = 2
+        while nm in used:
+            nm = f"{base}_{k}"
+            k += 1
+        used.add(nm)
+        data[f"phase_rad_{nm}"] = f32(x["phase"])
+        if x["displacement"] is not None:
+            data[f"u_along_G_nm_{nm}"] = f32(x["displacement"] / 10.0)
+
+    written = []
+    work = Path(tempfile.mkdtemp(prefix=f".{stem}.vtk.", dir=out_dir))
+    try:
+        tmp = imageToVTK(str(work / stem), origin=tuple(float(v) for v in origin_nm),
+                         spacing=tuple(float(v) for v in vs_nm), pointData=data,
+                         fieldData={"voxel_size_nm": np.asarray(vs_nm, np.float64)})
+        staged = [(Path(tmp), out_dir / f"{stem}.vti")]
+        lines = r["dislocations"]
+        if lines:
+            xs, ys, zs, counts, ids, chars = [], [], [], [], [], []
+            for k, d in enumerate(lines):
+                p = np.asarray(d.points, float) / 10.0
+                ch = np.asarray(d.local_character_deg, float)
+                if ch.shape != (len(p),):
+                    ch = np.full(len(p), float(d.character_deg))
+                if d.closed and len(p) > 2:
+                    p = np.vstack([p, p[:1]])
+                    ch = np.append(ch, ch[:1])
+                xs.append(p[:, 0])
+                ys.append(p[:, 1])
+                zs.append(p[:, 2])
+                counts.append(len(p))
+                ids.append(np.full(len(p), k + 1, np.int32))
+                chars.append(ch)
+            tmp = polyLinesToVTK(str(work / f"{stem}_dislocations"),
+                                 np.ascontiguousarray(np.concatenate(xs)),
+                                 np.ascontiguousarray(np.concatenate(ys)),
+                                 np.ascontiguousarray(np.concatenate(zs)),
+                                 pointsPerLine=np.asarray(counts, np.int64),
+                                 pointData={"line_id": np.concatenate(ids),
+                                            "character_deg": np.concatenate(chars).astype(np.float64)})
+            staged.append((Path(tmp), out_dir / f"{stem}_dislocations.vtu"))
+        for src, dst in staged:
+            os.replace(src, dst)
+            written.append(dst)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+    return written

@@ -1,0 +1,2 @@
+"""The measurement planner: reachable reflections, the choice of a set, its
+figure and pipeline-file fragment."""

@@ -1,0 +1,1 @@
+"""Figures, the dislocation figure and the HTML report."""

@@ -1,0 +1,578 @@
+"""Publication figures of a results bundle (matplotlib, Agg backend).
+
+Every slice figure shows three orthogonal central planes through the
+crystal — the xy plane (z fixed), the xz plane (y fixed) and the yz plane
+(x fixed) of the sample frame — cut through the voxel nearest the support's
+centre of mass and cropped to the crystal. Signed fields use a diverging
+colour map centred on zero with symmetric limits at the 99th percentile of
+|value| inside the crystal (so a few outlier voxels do not wash the map
+out); voxels outside the crystal are grey. Each row has one colour bar with
+units, each panel a scale bar in nm.
+
+:func:`make_figures` writes all figures of a bundle to a folder; the
+individual ``plot_*`` functions return a :class:`matplotlib.figure.Figure`
+and take a ``path`` to save to (atomically).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+
+from braggstrain.errors import InputError
+from braggstrain.io.scans import atomic_path
+
+__all__ = [
+    "FIGURES",
+    "central_index",
+    "plot_slices",
+    "plot_amplitude",
+    "plot_strain",
+    "plot_rotation",
+    "plot_derived",
+    "plot_displacements",
+    "plot_prtf",
+    "plot_histories",
+    "plot_runs",
+    "make_figures",
+]
+
+#: File names written by :func:`make_figures` and what each shows.
+FIGURES = {
+    "amplitude.png": "Central slices of the mean normalised amplitude, with the support outlined.",
+    "strain.png": "Central slices of the six strain components ε_xx … ε_xy (sample frame).",
+    "rotation.png": "Central slices of the three lattice-rotation components ω_x, ω_y, ω_z, degrees.",
+    "derived.png": "Central slices of the hydrostatic strain tr(ε)/3, the von Mises equivalent strain and "
+                   "the tensor residual.",
+    "displacement.png": "Central slices of each reflection's displacement along its G vector, u_G.",
+    "dislocations.png": "The crystal's isosurface with the dislocation lines, coloured by character.",
+    "prtf.png": "Phase-retrieval transfer function of each reflection against |q|.",
+    "history.png": "Per-iteration metrics of the best phasing run of each reflection.",
+    "runs.png": "Final metric of every random start of each reflection; kept runs filled, failed runs crossed.",
+}
+
+_OUTSIDE = (0.86, 0.86, 0.86)
+_PLANES = (  # (name, fixed axis, horizontal axis, vertical axis)
+    ("xy", 2, 0, 1),
+    ("xz", 1, 0, 2),
+    ("yz", 0, 1, 2),
+)
+_AXIS = "xyz"
+_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+# --------------------------------------------------------------------------
+# helpers
+# --------------------------------------------------------------------------
+
+def _figure(width, height):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(width, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _save(fig, path, dpi=150):
+    path = Path(path)
+    if not path.parent.is_dir():
+        raise InputError(f"{path}: the folder {path.parent} does not exist")
+    fmt = path.suffix.lstrip(".").lower() or "png"
+    with atomic_path(path) as tmp:
+        fig.savefig(tmp, format=fmt, dpi=dpi)
+    return path
+
+
+def _voxel(voxel_size):
+    vs = np.broadcast_to(np.asarray(voxel_size, float), (3,)).copy()
+    if not np.all(np.isfinite(vs)) or np.any(vs <= 0):
+        raise InputError(f"voxel_size: expected three positive lengths in Å, got {voxel_size!r}")
+    return vs
+
+
+def central_index(support):
+    """Voxel nearest the support's centre of mass, (i, j, k)."""
+    s = np.asarray(support, bool)
+    if s.ndim != 3 or not s.any():
+        raise InputError(f"support: expected a non-empty 3-D mask, got shape {s.shape}")
+    com = np.argwhere(s).mean(axis=0)
+    return tuple(int(round(c)) for c in com)
+
+
+def _crop(support, margin=2):
+    """Index range [lo, hi) per axis around the crystal (may reach past the array)."""
+    idx = np.argwhere(support)
+    return idx.min(axis=0) - margin, idx.max(axis=0) + margin + 1
+
+
+def _plane_crop(plane, lo, hi, room=0.16):
+    """The crop of one plane, with ``room`` of its height added below the
+    crystal so the scale bar never covers it."""
+    _, _, _, v = plane
+    lo = np.array(lo)
+    lo[v] -= int(np.ceil(room * (hi[v] - lo[v])))
+    return lo, np.array(hi)
+
+
+def _plane(vol, plane, centre, lo, hi, fill=np.nan):
+    """2-D cut (rows along the horizontal axis, columns along the vertical
+    one) of a 3-D array through ``centre``, over [lo, hi) on the two in-plane
+    axes; indices outside the array are filled with ``fill``."""
+    _, fixed, h, v = plane
+    shape = vol.shape
+    sl = [slice(None)] * 3
+    sl[fixed] = centre[fixed]
+    for ax in (h, v):
+        sl[ax] = slice(max(int(lo[ax]), 0), min(int(hi[ax]), shape[ax]))
+    cut = np.asarray(vol[tuple(sl)], float)
+    if h > v:
+        cut = cut.T
+    pad = [(max(0, -int(lo[ax])), max(0, int(hi[ax]) - shape[ax])) for ax in (h, v)]
+    return np.pad(cut, pad, constant_values=fill) if any(a or b for a, b in pad) else cut
+
+
+def _extent(plane, lo, hi, vs, shape):
+    _, _, h, v = plane
+    c = np.array(shape) // 2
+
+    def edge(ax, i):
+        return (i - c[ax] - 0.5) * vs[ax] / 10.0
+
+    return (edge(h, lo[h]), edge(h, hi[h]), edge(v, lo[v]), edge(v, hi[v]))
+
+
+def _nice_length(span_nm):
+    """A 1/2/5×10^k length near a quarter of ``span_nm``."""
+    target = max(span_nm / 4.0, 1e-6)
+    k = np.floor(np.log10(target))
+    for m in (5, 2, 1):
+        if m * 10 ** k <= target:
+            return float(m * 10 ** k)
+    return float(10 ** k)
+
+
+def _scale_bar(ax, extent, color="black"):
+    from matplotlib.font_manager import FontProperties
+    from mpl_toolkits.axes_grid1.anchored_artists import AnchoredSizeBar
+
+    width = extent[1] - extent[0]
+    length = _nice_length(width)
+    label = f"{length:g} nm"
+    bar = AnchoredSizeBar(ax.transData, length, label, "lower left", pad=0.3, borderpad=0.3, sep=2,
+                          color=color, frameon=False, size_vertical=(extent[3] - extent[2]) * 0.012,
+                          fontproperties=FontProperties(size=7))
+    ax.add_artist(bar)
+
+
+def _robust_limit(values, q=99.0):
+    v = np.abs(values[np.isfinite(values)])
+    if v.size == 0:
+        return 1.0
+    lim = float(np.percentile(v, q))
+    if lim <= 0:
+        lim = float(v.max()) or 1.0
+    return lim
+
+
+def _scale(limit):
+    """Power of ten to divide the values by so colour-bar ticks read well."""
+    if not np.isfinite(limit) or limit <= 0:
+        return 0
+    e = int(np.floor(np.log10(limit)))
+    return e if (e < -1 or e > 2) else 0
+
+
+def _unit_label(name, unit, e):
+    if e == 0:
+        return f"{name} ({unit})" if unit else name
+    p = f"10{str(e).translate(_SUPERSCRIPT)}"
+    return f"{name} ({p} {unit})" if unit else f"{name} ({p})"
+
+
+def _plane_title(plane, centre, vs, shape):
+    name, fixed, _, _ = plane
+    pos = (centre[fixed] - shape[fixed] // 2) * vs[fixed] / 10.0
+    return f"{name} plane, {_AXIS[fixed]} = {pos:.0f} nm"
+
+
+# --------------------------------------------------------------------------
+# slice figures
+# --------------------------------------------------------------------------
+
+def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=True, scale_to=None,
+                outline=False, title=None, cmap=None, limits=None):
+    """Rows of central slices (xy, xz, yz planes) of several 3-D fields.
+
+    Parameters
+    ----------
+    fields : sequence of 3-D arrays
+        Axes 0, 1, 2 along sample-frame x, y, z (origin at index n//2).
+    support : bool 3-D array
+        The crystal; values outside are shown grey unless ``outline``.
+    voxel_size : float or 3 floats, Å
+    path : str or Path, optional
+        Save the figure there (atomically).
+    names, units : sequence of str
+        Row labels and their units (for the colour bars).
+    signed : bool or sequence of bool
+        Diverging map centred on zero with symmetric limits (True) or a
+        sequential map from the 1st to the 99th percentile (False), per row.
+    scale_to : float, optional
+        Multiply the values by this for display (e.g. 180/π for degrees).
+    outline : bool
+        Show the full field (not masked) with the support's outline.
+    title : str, optional
+    cmap : str, optional
+        Override the colour map.
+    limits : sequence of (lo, hi), optional
+        Colour limits per row (display units); default robust limits.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    import matplotlib
+
+    support = np.asarray(support, bool)
+    if support.ndim != 3 or not support.any():
+        raise InputError(f"support: expected a non-empty 3-D mask, got shape {support.shape}")
+    vs = _voxel(voxel_size)
+    fields = [np.asarray(f, float) for f in fields]
+    for k, f in enumerate(fields):
+        if f.shape != support.shape:
+            raise InputError(f"fields[{k}] ('{names[k]}'): expected the support's shape {support.shape}, got {f.shape}")
+    if len(names) != len(fields) or len(units) != len(fields):
+        raise InputError("names, units: expected one name and one unit per field")
+    signed = [signed] * len(fields) if isinstance(signed, bool) else list(signed)
+    factor = scale_to if scale_to is not None else 1.0
+    # Rows of one unit share a floor of 1 % of their largest robust limit, so a
+    # component that is zero up to round-off shows as zero, not as amplified noise.
+    floors = {}
+    for f, unit, sg in zip(fields, units, signed):
+        if sg:
+            floors[unit] = max(floors.get(unit, 0.0), 0.01 * _robust_limit(f[support] * factor))
+    shape = support.shape
+    centre = central_index(support)
+    lo, hi = _crop(support)
+    nrow = len(fields)
+    # panel sizes follow the crop so the planes keep their true aspect
+    span = (hi - lo) * vs
+    widths = [span[p[2]] for p in _PLANES]
+    fig = _figure(1.0 + 2.3 * sum(widths) / max(widths), 0.5 + 2.25 * nrow + (0.3 if title else 0))
+    gs = fig.add_gridspec(nrow, 3, width_ratios=widths)
+    for row, (f, name, unit, sg) in enumerate(zip(fields, names, units, signed)):
+        shown = f * factor
+        inside = shown[support]
+        if limits is not None:
+            vmin, vmax = limits[row]
+        elif sg:
+            lim = max(_robust_limit(inside), floors[unit])
+            vmin, vmax = -lim, lim
+        else:
+            fin = inside[np.isfinite(inside)]
+            vmin, vmax = ((float(np.percentile(fin, 1)), float(np.percentile(fin, 99))) if fin.size
+                          else (0.0, 1.0))
+            if vmax <= vmin:
+                vmax = vmin + (abs(vmin) or 1.0)
+        e = _scale(max(abs(vmin), abs(vmax)))
+        fac = 10.0 ** (-e)
+        cm = matplotlib.colormaps[cmap or ("RdBu_r" if sg else ("gray" if outline else "viridis"))]
+        cm = cm.with_extremes(bad=_OUTSIDE)
+        disp = shown if outline else np.where(support, shown, np.nan)
+        axes = []
+        im = None
+        for col, plane in enumerate(_PLANES):
+            ax = fig.add_subplot(gs[row, col])
+            axes.append(ax)
+            plo, phi = _plane_crop(plane, lo, hi)
+            img = _plane(disp, plane, centre, plo, phi) * fac
+            ext = _extent(plane, plo, phi, vs, shape)
+            im = ax.imshow(img.T, origin="lower", extent=ext, cmap=cm, vmin=vmin * fac, vmax=vmax * fac,
+                           interpolation="nearest", aspect="equal")
+            if outline:
+                sup2 = _plane(support, plane, centre, plo, phi, fill=0.0)
+                h_c = np.linspace(ext[0], ext[1], sup2.shape[0] + 1)
+                v_c = np.linspace(ext[2], ext[3], sup2.shape[1] + 1)
+                ax.contour(0.5 * (h_c[1:] + h_c[:-1]), 0.5 * (v_c[1:] + v_c[:-1]), sup2.T, levels=[0.5],
+                           colors=["#ff9f1c"], linewidths=1.0)
+            ax.set_xticks([])
+            ax.set_yticks([])
+            ax.set_xlabel(f"{_AXIS[plane[2]]} →", fontsize=8, labelpad=2)
+            ax.set_ylabel(f"{_AXIS[plane[3]]} →", fontsize=8, labelpad=2)
+            _scale_bar(ax, ext, "white" if outline else "black")
+            if row == 0:
+                ax.set_title(_plane_title(plane, centre, vs, shape), fontsize=9)
+        cb = fig.colorbar(im, ax=axes, shrink=0.9, aspect=12, pad=0.02)
+        cb.set_label(_unit_label(name, unit, e), fontsize=9)
+        cb.ax.tick_params(labelsize=8)
+    if title:
+        fig.suptitle(title, fontsize=11)
+    if path is not None:
+        _save(fig, path)
+    return fig
+
+
+def plot_amplitude(results, path=None):
+    """Central slices of the mean normalised amplitude with the support outline."""
+    g = results["grid"]
+    return plot_slices([results["amplitude"]], results["support"], g["voxel_size"], path,
+                       names=["amplitude"], units=["normalised"], signed=False, outline=True,
+                       title="Mean amplitude (support outlined)",
+                       limits=[(0.0, float(np.percentile(np.asarray(results["amplitude"])[results["support"]], 99.5))
+                                or 1.0)])
+
+
+def plot_strain(results, path=None):
+    """Central slices of the six strain components."""
+    from braggstrain.io.results import STRAIN_COMPONENTS, strain_components
+
+    tf = results["tensor"]
+    comps = strain_components(tf.strain)
+    return plot_slices(list(comps), tf.support & results["support"], results["grid"]["voxel_size"], path,
+                       names=[f"ε_{c}" for c in STRAIN_COMPONENTS], units=[""] * 6, signed=True,
+                       title="Strain tensor (sample frame, tensile positive)")
+
+
+def plot_rotation(results, path=None):
+    """Central slices of the three lattice-rotation components, degrees."""
+    tf = results["tensor"]
+    return plot_slices(list(tf.rotation), tf.support & results["support"], results["grid"]["voxel_size"], path,
+                       names=["ω_x", "ω_y", "ω_z"], units=["°"] * 3, signed=True, scale_to=180.0 / np.pi,
+                       title="Lattice rotation (axial vector, sample frame)")
+
+
+def plot_derived(results, path=None):
+    """Hydrostatic strain, von Mises equivalent strain and tensor residual."""
+    tf = results["tensor"]
+    mean_g = float(np.mean(np.linalg.norm(np.asarray(tf.g_vectors, float), axis=1)))
+    return plot_slices([tf.hydrostatic, tf.von_mises, np.asarray(tf.residual) / mean_g],
+                       tf.support & results["support"], results["grid"]["voxel_size"], path,
+                       names=["tr(ε)/3", "von Mises strain", "residual / mean |G|"], units=["", "", ""],
+                       signed=[True, False, False],
+                       title="Derived maps (residual shown strain-equivalent: rad/Å ÷ Å⁻¹)")
+
+
+def plot_displacements(results, path=None):
+    """Central slices of each reflection's displacement along G, Å."""
+    rows, names = [], []
+    for x in results["reflections"]:
+        if x.get("displacement") is None:
+            continue
+        rows.append(x["displacement"])
+        names.append(f"u_G for {_hkl(x['hkl'])}")
+    if not rows:
+        return None
+    return plot_slices(rows, results["support"], results["grid"]["voxel_size"], path, names=names,
+                       units=["Å"] * len(rows), signed=True,
+                       title="Displacement along each G vector, u_G = −φ/|G|")
+
+
+def _hkl(hkl):
+    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
+
+
+# --------------------------------------------------------------------------
+# phasing figures
+# --------------------------------------------------------------------------
+
+def _colours(n):
+    import matplotlib
+
+    cm = matplotlib.colormaps["tab10"]
+    return [cm(i % 10) for i in range(n)]
+
+
+def plot_prtf(results, path=None):
+    """PRTF of each reflection against |q| (Å⁻¹), with the 1/e threshold."""
+    refl = [x for x in results["reflections"] if x.get("prtf") is not None]
+    if not refl:
+        return None
+    fig = _figure(6.4, 4.2)
+    ax = fig.add_subplot(111)
+    for x, c in zip(refl, _colours(len(refl))):
+        p = x["prtf"]
+        res = p.get("resolution", np.nan)
+        lab = f"{x['name']} {_hkl(x['hkl'])}"
+        lab += f": resolution {res / 10.0:.1f} nm" if np.isfinite(res) else ": stays above 1/e"
+        ax.plot(p["q"], p["values"], "-o", ms=2.5, lw=1.4, color=c, label=lab)
+    ax.axhline(np.exp(-1), color="0.3", ls="--", lw=1)
+    ax.text(0.99, np.exp(-1) + 0.015, "1/e", transform=ax.get_yaxis_transform(), ha="right", va="bottom",
+            fontsize=8, color="0.3")
+    ax.set_xlabel("|q| (Å⁻¹)")
+    ax.set_ylabel("PRTF")
+    ax.set_ylim(0, 1.05)
+    ax.set_xlim(left=0)
+    ax.grid(alpha=0.3)
+    ax.legend(fontsize=8, loc="lower left")
+    ax.set_title("Phase-retrieval transfer function")
+    if path is not None:
+        _save(fig, path)
+    return fig
+
+
+_SKIP_HISTORY = ("checkpoint", "stage")
+
+
+def plot_histories(results, path=None):
+    """One panel per recorded metric, one curve per reflection (best run)."""
+    refl = results["reflections"]
+    keys = []
+    for x in refl:
+        for k in x.get("history", {}):
+            if k not in keys and k not in _SKIP_HISTORY:
+                keys.append(k)
+    if not keys:
+        return None
+    n = len(keys)
+    ncol = 2 if n > 1 else 1
+    nrow = int(np.ceil(n / ncol))
+    fig = _figure(4.2 * ncol, 2.9 * nrow + 0.5)
+    cols = _colours(len(refl))
+    for m, key in enumerate(keys):
+        ax = fig.add_subplot(nrow, ncol, m + 1)
+        positive = True
+        for x, c in zip(refl, cols):
+            h = x.get("history", {})
+            if key not in h:
+                continue
+            y = np.asarray(h[key], float)
+            it = np.arange(len(y))
+            chk = h.get("checkpoint")
+            if chk is not None and len(chk) == len(y) and len(y) != max(len(v) for v in h.values()):
+                it = np.asarray(chk, float)
+            ax.plot(it, y, lw=1.2, color=c, label=f"{x['name']} {_hkl(x['hkl'])}",
+                    marker="o" if len(y) < 30 else None, ms=3)
+            st = h.get("stage")
+            if st is not None and len(st) == len(y):
+                for b in np.nonzero(np.diff(np.asarray(st)))[0]:
+                    ax.axvline(b + 0.5, color=c, ls=":", lw=0.8, alpha=0.7)
+            fin = y[np.isfinite(y)]
+            positive &= bool(fin.size) and bool(np.all(fin > 0)) and fin.max() / fin.min() > 20
+        if positive:
+            ax.set_yscale("log")
+        ax.set_title(key.replace("_", " "), fontsize=10)
+        ax.set_xlabel("iteration", fontsize=9)
+        ax.tick_params(labelsize=8)
+        ax.grid(alpha=0.3)
+        if m == 0:
+            ax.legend(fontsize=7)
+    staged = any("stage" in x.get("history", {}) for x in refl)
+    fig.suptitle("Phasing history of the best run" + (" (dotted: plan-stage changes)" if staged else ""),
+                 fontsize=11)
+    if path is not None:
+        _save(fig, path)
+    return fig
+
+
+_RANK_KEYS = ("free_llk", "free_nll", "llk", "nll", "amplitude_error", "free_amplitude_error")
+
+
+def _rank_key(runs):
+    cols = []
+    for m in runs:
+        for k, v in m.items():
+            if k not in cols and isinstance(v, (int, float, np.number)) and not isinstance(v, bool):
+                cols.append(k)
+    for k in _RANK_KEYS:
+        if k in cols and any(np.isfinite(float(m.get(k, np.nan))) for m in runs):
+            return k
+    rest = [k for k in cols if k not in ("run", "seed", "iterations", "elapsed")]
+    return rest[0] if rest else None
+
+
+def plot_runs(results, path=None):
+    """Final metric of every random start, per reflection."""
+    refl = results["reflections"]
+    if all(_rank_key(x.get("run_metrics") or []) is None for x in refl):
+        return None
+    fig = _figure(6.4, 1.0 + 0.55 * max(len(refl), 1) + 1.2)
+    ax = fig.add_subplot(111)
+    labels = []
+    key_used = set()
+    for j, x in enumerate(refl):
+        runs = x.get("run_metrics") or []
+        labels.append(f"{x['name']} {_hkl(x['hkl'])}")
+        key = _rank_key(runs)
+        if key is None:
+            continue
+        key_used.add(key)
+        vals = np.array([float(m.get(key, np.nan)) for m in runs])
+        ok = np.array([str(m.get("status", "ok")) == "ok" for m in runs])
+        kept = np.array([bool(m.get("kept", False)) for m in runs])
+        jit = (np.arange(len(runs)) - (len(runs) - 1) / 2) * min(0.08, 0.6 / max(len(runs), 1))
+        yy = j + jit
+        ax.scatter(vals[ok & kept], yy[ok & kept], s=36, color="C0", zorder=3,
+                   label="kept" if j == 0 or not ax.get_legend_handles_labels()[1] else None)
+        ax.scatter(vals[ok & ~kept], yy[ok & ~kept], s=36, facecolor="white", edgecolor="C0", zorder=3)
+        bad = ~ok & np.isfinite(vals)
+        ax.scatter(vals[bad], yy[bad], s=40, marker="x", color="C3", zorder=3)
+    from matplotlib.lines import Line2D
+
+    handles = [Line2D([], [], ls="", marker="o", color="C0", label="kept"),
+               Line2D([], [], ls="", marker="o", mfc="white", mec="C0", label="not kept"),
+               Line2D([], [], ls="", marker="x", color="C3", label="failed run")]
+    ax.legend(handles=handles, fontsize=8, loc="upper center", bbox_to_anchor=(0.5, -0.22), ncol=3,
+              frameon=False)
+    ax.set_yticks(range(len(refl)))
+    ax.set_yticklabels(labels, fontsize=8)
+    ax.set_ylim(-0.6, len(refl) - 0.4)
+    ax.invert_yaxis()
+    ax.set_xlabel(", ".join(sorted(key_used)))
+    ax.grid(axis="x", alpha=0.3)
+    ax.set_title("Random starts (lower is better)")
+    if path is not None:
+        _save(fig, path)
+    return fig
+
+
+# --------------------------------------------------------------------------
+# all figures
+# --------------------------------------------------------------------------
+
+def make_figures(results, out_dir):
+    """Write every figure of a results bundle as PNG into ``out_dir``.
+
+    Parameters
+    ----------
+    results : dict
+        A results bundle (:class:`braggstrain.outputs.Results`) or what
+        :func:`braggstrain.outputs.read_results` returns.
+    out_dir : str or Path
+        Folder (created if missing).
+
+    Returns
+    -------
+    list of Path
+        In the order of :data:`FIGURES`; ``displacement.png``, ``prtf.png``,
+        ``history.png`` and ``runs.png`` are left out when no reflection has
+        a displacement map, a PRTF, a history or run metrics.
+    """
+    from braggstrain.report.dislocations import plot_dislocations
+    from braggstrain.io.results import check_results
+
+    r = check_results(results)
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    makers = {
+        "amplitude.png": plot_amplitude,
+        "strain.png": plot_strain,
+        "rotation.png": plot_rotation,
+        "derived.png": plot_derived,
+        "displacement.png": plot_displacements,
+        "prtf.png": plot_prtf,
+        "history.png": plot_histories,
+        "runs.png": plot_runs,
+    }
+    written = []
+    for name in FIGURES:
+        path = out_dir / name
+        if name == "dislocations.png":
+            plot_dislocations(r["dislocations"], r["support"], r["grid"]["voxel_size"], path)
+            written.append(path)
+            continue
+        fig = makers[name](r, path)
+        if fig is not None:
+            written.append(path)
+    return written

@@ -1,0 +1,1034 @@
+"""Several reflections of one crystal: registration and the full strain tensor.
+
+Conventions (DESIGN.md): ρ_j(r) = s(r)·exp(−i G_j·u(r)) for reflection j,
+so ∂_k φ_j = −Σ_i G_ji ∂u_i/∂x_k = −(G D)_jk with the displacement gradient
+D_ik = ∂u_i/∂x_k; strain ε = (D + Dᵀ)/2 (tensile positive), rotation
+ω = (D − Dᵀ)/2 given as its axial vector (radians). Arrays have axes 0, 1, 2
+along sample-frame x, y, z with the origin at index n//2.
+
+Per voxel the weighted least-squares problem Σ_j w_j |∂φ_j + G_j·D|² = min
+is solved column by column of D (Newton et al., Nat. Mater. 9, 120, 2010;
+Hofmann et al., Sci. Rep. 7, 45993, 2017 for the multi-reflection tensor);
+the covariance of each column is σ²(GᵀWG)⁻¹ with σ² from the weighted
+residual (the usual least-squares covariance, e.g. Press et al., Numerical
+Recipes, 3rd ed., 2007, §15.4).
+
+Twin: intensity cannot tell ρ(r) from ρ*(−r). For reflection G the twin
+conj ρ(−r) = s(−r)·exp(−i G·u′(r)) with u′(r) = −u(−r), whose displacement
+gradient is D′(r) = D(−r): the point-inverted crystal with the same strain.
+:func:`register` keeps every G as given and replaces an object by its twin
+when that matches the reference better, so all reflections describe one
+crystal; whether that crystal is the true one or its point image cannot be
+decided from intensities (the reference object fixes the choice).
+"""
+
+from __future__ import annotations
+
+import itertools
+import warnings
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import ndimage as ndi
+
+from braggstrain.errors import TensorError
+from braggstrain.strain.fields import (_complex3d, _voxel_size, default_support, phase_gradient, phase_ramp,
+                     reference_voxel, trusted_voxels, unwrapped_phase)
+from braggstrain.strain.objects import SampleObject
+
+__all__ = [
+    "ReflectionConsistencyWarning",
+    "TensorField",
+    "strain_tensor",
+    "condition_number",
+    "hydrostatic_strain",
+    "von_mises_strain",
+    "principal_strains",
+    "twin",
+    "RegistrationReport",
+    "register",
+    "MeanLattice",
+    "mean_lattice_strain",
+]
+
+
+class ReflectionConsistencyWarning(UserWarning):
+    """One reflection disagrees with the others, or a twin choice is unsure."""
+
+
+def _fmt_label(hkl):
+    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
+
+
+# --------------------------------------------------------------------------
+# derived maps
+# --------------------------------------------------------------------------
+
+def hydrostatic_strain(strain):
+    """Hydrostatic strain tr(ε)/3 (dimensionless) of a (3, 3, ...) strain field."""
+    e = np.asarray(strain)
+    return (e[0, 0] + e[1, 1] + e[2, 2]) / 3.0
+
+
+def von_mises_strain(strain):
+    """Von Mises equivalent strain √(2/3 e:e), e = ε − tr(ε)/3·I.
+
+    Equal to (√2/3)·[(ε₁−ε₂)² + (ε₂−ε₃)² + (ε₃−ε₁)²]^½ in principal strains
+    (Dieter, Mechanical Metallurgy, 3rd ed., 1986, the effective strain of
+    ch. 3; from memory), so a uniaxial isochoric strain (a, −a/2, −a/2)
+    gives a.
+    """
+    e = np.asarray(strain, dtype=float)
+    tr = hydrostatic_strain(e)
+    dev = e.copy()
+    for i in range(3):
+        dev[i, i] = dev[i, i] - tr
+    return np.sqrt(2.0 / 3.0 * np.sum(dev * dev, axis=(0, 1)))
+
+
+def principal_strains(strain):
+    """Principal strains (descending) and directions of a (3, 3, ...) field.
+
+    Returns
+    -------
+    values : (3, ...) array
+        ε₁ ≥ ε₂ ≥ ε₃; NaN where the strain is NaN.
+    directions : (3, 3, ...) array
+        directions[:, m] is the unit eigenvector of values[m] (sign arbitrary).
+    """
+    e = np.asarray(strain, dtype=float)
+    grid = e.shape[2:]
+    flat = np.moveaxis(e.reshape(3, 3, -1), -1, 0)
+    ok = np.all(np.isfinite(flat), axis=(1, 2))
+    vals = np.full((flat.shape[0], 3), np.nan)
+    vecs = np.full((flat.shape[0], 3, 3), np.nan)
+    if ok.any():
+        w, v = np.linalg.eigh(flat[ok])
+        vals[ok] = w[:, ::-1]
+        vecs[ok] = v[:, :, ::-1]
+    values = np.moveaxis(vals, 0, -1).reshape((3,) + grid)
+    directions = np.moveaxis(vecs, 0, -1).reshape((3, 3) + grid)
+    return values, directions
+
+
+def _axial(D):
+    """Axial vector of the antisymmetric part of D (3, 3, ...)."""
+    return 0.5 * np.stack([D[2, 1] - D[1, 2], D[0, 2] - D[2, 0], D[1, 0] - D[0, 1]])
+
+
+# --------------------------------------------------------------------------
+# the tensor field
+# --------------------------------------------------------------------------
+
+@dataclass
+class TensorField:
+    """Displacement gradient, strain and rotation of one crystal, per voxel.
+
+    Grid arrays are float32 with NaN outside ``support`` (and where the solve
+    was impossible); axes along sample-frame x, y, z.
+
+    Attributes
+    ----------
+    displacement_gradient : (3, 3, nx, ny, nz)
+        D_ik = ∂u_i/∂x_k, dimensionless.
+    strain : (3, 3, nx, ny, nz)
+        ε = (D + Dᵀ)/2, tensile positive.
+    rotation : (3, nx, ny, nz)
+        Axial vector of (D − Dᵀ)/2, radians (ω_x = (D_zy − D_yz)/2, ...).
+    residual : (nx, ny, nz)
+        Weighted RMS misfit of the phase gradients,
+        √(Σ_jk w_j r_jk² / (3 Σ_j w_j)) with r = ∂φ + G·D, rad/Å.
+    residual_per_reflection : (J, nx, ny, nz)
+        √(Σ_k r_jk²/3) for each reflection, rad/Å.
+    strain_uncertainty : (3, 3, nx, ny, nz)
+        One standard deviation of each strain component from the
+        least-squares covariance σ²(GᵀWG)⁻¹; NaN where it cannot be
+        estimated (three reflections and no ``gradient_noise``).
+    rotation_uncertainty : (3, nx, ny, nz)
+        The same for the rotation vector, radians.
+    displacement : (3, nx, ny, nz) or None
+        u in Å from the unwrapped phases, zero at ``reference``; NaN outside
+        the support and where unwrapping failed: parts of the support not
+        connected to the reference, and (with ≥ 4 reflections) voxels where
+        the reflections' phases cannot be brought onto one displacement even
+        after a 2π branch correction (see ``_branch_correction``). Around
+        dislocations u is, like any Volterra field, defined modulo a lattice
+        translation across a cut surface.
+    support : bool (nx, ny, nz)
+    trusted : bool (nx, ny, nz)
+        Support eroded by one voxel, every amplitude above the threshold.
+    condition_number : float
+        2-norm condition number of the J×3 matrix of G vectors.
+    g_vectors : (J, 3) float, Å⁻¹
+    labels : list of str
+    voxel_size : (3,) float, Å
+    reference : tuple of 3 int
+        Voxel at the centre of mass (u = 0 there).
+    outlier : str or None
+        Label of the reflection flagged as inconsistent, if any.
+    outlier_scores : dict
+        Leave-one-out consistency score per label (see :func:`strain_tensor`).
+    """
+
+    displacement_gradient: np.ndarray
+    strain: np.ndarray
+    rotation: np.ndarray
+    residual: np.ndarray
+    residual_per_reflection: np.ndarray
+    strain_uncertainty: np.ndarray
+    rotation_uncertainty: np.ndarray
+    displacement: np.ndarray | None
+    support: np.ndarray
+    trusted: np.ndarray
+    condition_number: float
+    g_vectors: np.ndarray
+    labels: list
+    voxel_size: np.ndarray
+    reference: tuple
+    outlier: str | None = None
+    outlier_scores: dict = field(default_factory=dict)
+
+    @property
+    def hydrostatic(self):
+        """tr(ε)/3, float32 grid."""
+        return hydrostatic_strain(self.strain).astype(np.float32)
+
+    @property
+    def von_mises(self):
+        """Von Mises equivalent strain, float32 grid (:func:`von_mises_strain`)."""
+        return von_mises_strain(self.strain).astype(np.float32)
+
+    @property
+    def principal(self):
+        """(values (3, *grid), directions (3, 3, *grid)), float32; see :func:`principal_strains`."""
+        v, d = principal_strains(self.strain)
+        return v.astype(np.float32), d.astype(np.float32)
+
+
+def condition_number(g_vectors):
+    """2-norm condition number σ_max/σ_min of the J×3 matrix of G vectors.
+
+    It bounds how much relative error in the phase gradients can grow in D;
+    infinite for coplanar sets.
+    """
+    G = np.asarray(g_vectors, dtype=float)
+    s = np.linalg.svd(G, compute_uv=False)
+    return float(s[0] / s[-1]) if s[-1] > 0 else float("inf")
+
+
+def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
+    if isinstance(objects, np.ndarray) and objects.ndim == 4:
+        objects = list(objects)
+    if not isinstance(objects, (list, tuple)):
+        raise TensorError(f"objects: expected a list of 3-D complex arrays (one per reflection), got {type(objects).__name__}")
+    J = len(objects)
+    arrays, sups, hkls = [], [], []
+    for j, o in enumerate(objects):
+        if isinstance(o, SampleObject):
+            sups.append(o.support)
+            hkls.append(o.hkl)
+            o = o.obj
+        else:
+            sups.append(None)
+            hkls.append(None)
+        arrays.append(_complex3d(o, f"objects[{j}]"))
+    if J:
+        shape0 = arrays[0].shape
+        for j, a in enumerate(arrays):
+            if a.shape != shape0:
+                raise TensorError(
+                    f"objects[{j}]: grid shape {a.shape} differs from objects[0] {shape0}; expected all "
+                    f"reflections on one common grid (use braggstrain.tensor.register first)")
+    G = np.asarray(g_vectors, dtype=float) if g_vectors is not None else None
+    if G is None or G.ndim != 2 or G.shape[1] != 3 or not np.all(np.isfinite(G)):
+        shape = None if G is None else G.shape
+        raise TensorError(f"g_vectors: expected a (J, 3) array of finite G vectors in Å⁻¹, got shape {shape}")
+    if G.shape[0] != J:
+        raise TensorError(f"g_vectors: {G.shape[0]} G vectors for {J} objects; expected one G per object")
+    if labels is None:
+        labels = [(_fmt_label(h) if h is not None else
+                   f"reflection {j} (G = [{G[j, 0]:.4f}, {G[j, 1]:.4f}, {G[j, 2]:.4f}] Å⁻¹)")
+                  for j, h in enumerate(hkls)]
+    else:
+        labels = [str(v) if not isinstance(v, (tuple, list)) else _fmt_label(v) for v in labels]
+        if len(labels) != J:
+            raise TensorError(f"labels: {len(labels)} labels for {J} objects; expected one per object")
+    if J < 3:
+        raise TensorError(
+            f"objects: {J} reflection(s) {', '.join(labels)}; the strain tensor needs at least three "
+            f"non-coplanar reflections")
+    vs = _voxel_size(voxel_size)
+    for j, o in enumerate(objects):
+        if isinstance(o, SampleObject) and not np.allclose(o.voxel_size, vs, rtol=1e-6):
+            raise TensorError(
+                f"objects[{j}] {labels[j]}: voxel size {tuple(o.voxel_size)} Å differs from voxel_size "
+                f"{tuple(vs)} Å; expected one common grid (use register first)")
+        if (isinstance(o, SampleObject) and isinstance(objects[0], SampleObject)
+                and not np.allclose(o.origin, objects[0].origin, atol=1e-6 * float(vs.min()))):
+            raise TensorError(
+                f"objects[{j}] {labels[j]}: origin {tuple(o.origin)} Å differs from objects[0] "
+                f"{tuple(objects[0].origin)} Å; expected one common grid (use register first)")
+    shape = arrays[0].shape
+    if support is None:
+        if all(s is not None for s in sups):
+            support = np.logical_and.reduce(sups)
+        else:
+            support = np.logical_and.reduce([default_support(a) for a in arrays])
+    else:
+        support = np.asarray(support)
+        if support.shape != shape:
+            raise TensorError(f"support: expected a boolean array of the grid shape {shape}, got shape {support.shape}")
+        support = support.astype(bool)
+    if not support.any():
+        raise TensorError("support: no voxel lies inside the crystal in every reflection (empty common support)")
+    if weights is not None:
+        weights = np.asarray(weights, dtype=float)
+        if weights.shape == (J,):
+            weights = weights.reshape((J, 1, 1, 1)) * np.ones((1,) + shape)
+        elif weights.shape != (J,) + shape:
+            raise TensorError(f"weights: expected shape ({J},) or {(J,) + shape}, got {weights.shape}")
+        if not np.all(np.isfinite(weights)) or np.any(weights < 0):
+            raise TensorError("weights: expected finite non-negative weights")
+    return arrays, G, vs, support, weights, labels
+
+
+def _check_set(G, labels, max_condition):
+    Gn = G / np.linalg.norm(G, axis=1, keepdims=True)
+    s = np.linalg.svd(Gn, compute_uv=False)
+    cond = condition_number(G)
+    names = ", ".join(labels)
+    if s[-1] < 1e-6 * s[0]:
+        raise TensorError(
+            f"reflections {names}: their G vectors are coplanar (condition number {cond:.3g}); "
+            f"expected at least three non-coplanar reflections")
+    if cond > max_condition:
+        raise TensorError(
+            f"reflections {names}: ill-conditioned set, condition number {cond:.3g} > {max_condition:g}; "
+            f"expected reflections whose G vectors span 3-D space more evenly")
+    return cond
+
+
+def _solve(P, w, G):
+    """Batched weighted least squares.
+
+    P : (N, J, 3) phase gradients; w : (N, J) weights; G : (J, 3).
+    Returns D (N, 3, 3), Minv (N, 3, 3), r (N, J, 3), local condition (N,).
+    """
+    M = np.einsum("nj,ja,jb->nab", w, G, G)
+    R = -np.einsum("nj,ja,njk->nak", w, G, P)
+    lam = np.linalg.eigvalsh(M)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cond = np.sqrt(lam[:, -1] / lam[:, 0])
+    bad = ~(np.isfinite(cond) & (lam[:, 0] > 0))
+    M[bad] = np.eye(3)
+    Minv = np.linalg.inv(M)
+    D = Minv @ R
+    r = P + np.einsum("ja,nak->njk", G, D)
+    cond[bad] = np.inf
+    return D, Minv, r, cond
+
+
+def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *, labels=None,
+                  order=2, amplitude_threshold=0.3, max_condition=30.0, gradient_noise=None,
+                  displacement=True, uniform_gradient=None, phase_tolerance=np.pi / 4,
+                  outlier_ratio=0.25, warn=True):
+    """Strain tensor, rotation and residual per voxel from J ≥ 3 reflections.
+
+    Parameters
+    ----------
+    objects : list of complex 3-D arrays (or SampleObject), or (J, nx, ny, nz) array
+        ρ_j on one common grid, axes 0, 1, 2 along sample-frame x, y, z.
+    g_vectors : (J, 3) array
+        G_j in the sample frame, Å⁻¹ (2π included).
+    voxel_size : float or 3 floats
+        Voxel edges, Å.
+    support : bool array, optional
+        Crystal voxels. Default: the intersection of the objects' supports
+        (SampleObject) or of amplitudes ≥ 0.2·max (plain arrays).
+    weights : (J,) or (J, nx, ny, nz) array, optional
+        Relative weights (inverse variances up to a common factor). Default:
+        each reflection's amplitude divided by its median inside the support.
+    labels : list, optional
+        Names of the reflections for messages (default: their hkl, or G).
+    order : {2, 4}
+        Finite-difference order of the wrap-free phase gradients.
+    amplitude_threshold : float
+        Trusted voxels need |ρ_j| ≥ this fraction of the median, for all j.
+    max_condition : float
+        Refuse sets whose condition number exceeds this (common practice,
+        no source: the error in D grows up to that factor).
+    gradient_noise : float, optional
+        Standard deviation of one phase-gradient component at unit weight,
+        rad/Å. Given, it sets σ of the covariance; otherwise σ comes from the
+        residual (needs J ≥ 4).
+    displacement : bool
+        Compute the displacement map from unwrapped phases (costs one 3-D
+        unwrapping per reflection).
+    phase_tolerance : float
+        Largest misfit (rad) of an unwrapped phase to the fitted
+        displacement that is accepted (J ≥ 4). A 2π slip of one reflection
+        leaves a misfit of 2π(1 − h_jj), h_jj its leverage, e.g. π/2 for four
+        {111}; π/4 catches slips up to h_jj = 7/8 (common practice, no
+        source).
+    uniform_gradient : (3, 3) array, optional
+        D₀ added to every voxel (and D₀·(r − r_ref) to the displacement),
+        e.g. from :func:`mean_lattice_strain` when the reconstructions were
+        centred on the measured peaks and strain relative to the reference
+        lattice is wanted (first order in D₀).
+    outlier_ratio : float
+        A reflection is named inconsistent when leaving it out makes the
+        leave-one-out score at most this fraction of the next best
+        (common practice, no source).
+    warn : bool
+        Issue :class:`ReflectionConsistencyWarning` for an inconsistent
+        reflection.
+
+    Returns
+    -------
+    TensorField
+
+    Raises
+    ------
+    TensorError
+        Fewer than three reflections, coplanar or ill-conditioned G set,
+        objects on different grids, G of the wrong shape.
+
+    Notes
+    -----
+    Outlier test (J ≥ 4, common practice, no source): the fit is repeated
+    leaving out each reflection in turn, over the trusted voxels, and scored
+    by the residual of the remaining reflections (divided by the mean |G|,
+    so strain-equivalent) together with the deviation of their strain from
+    its median over the crystal, both averaged with weights equal to the
+    full residual² (so the inconsistent voxels count). Leaving out the
+    corrupted reflection leaves consistent data and no spurious strain.
+    Consistency alone cannot say which reflection is wrong when there is
+    only one redundant reflection; the strain term assumes the true strain
+    varies less than the error does. A reflection that alone lifts the set
+    out of a plane (all others coplanar) cannot be checked at all: its
+    errors go into D without residual.
+    """
+    arrays, G, vs, support, weights, labels = _check_inputs(objects, g_vectors, voxel_size, support,
+                                                           weights, labels)
+    J = len(arrays)
+    shape = arrays[0].shape
+    cond = _check_set(G, labels, max_condition)
+
+    amps = np.stack([np.abs(a) for a in arrays]).astype(np.float32)
+    if weights is None:
+        meds = np.array([np.median(amps[j][support]) for j in range(J)])
+        if np.any(meds <= 0):
+            bad = [labels[j] for j in range(J) if meds[j] <= 0]
+            raise TensorError(f"objects: reflection(s) {', '.join(bad)} have zero median amplitude inside the support")
+        weights = amps / meds.reshape(J, 1, 1, 1)
+    trusted = ndi.binary_erosion(support)
+    for j in range(J):
+        trusted &= trusted_voxels(arrays[j], support, amplitude_threshold, erosion=0)
+
+    grads = np.stack([phase_gradient(a, vs, support, order=order) for a in arrays])  # (J,3,...)
+    idx = np.flatnonzero(support)
+    P = np.moveaxis(grads.reshape(J, 3, -1)[:, :, idx], 2, 0).astype(float)  # (N,J,3)
+    w = weights.reshape(J, -1)[:, idx].T.copy()  # (N,J)
+    finite = np.all(np.isfinite(P), axis=2)
+    w[~finite] = 0.0
+    P[~finite] = 0.0
+    D, Minv, r, lcond = _solve(P, w, G)
+    nvalid = np.sum(w > 0, axis=1)
+    ok = (nvalid >= 3) & (lcond <= max_condition * 10)
+    D[~ok] = np.nan
+    r[~ok] = np.nan
+    if uniform_gradient is not None:
+        D0 = np.asarray(uniform_gradient, float)
+        if D0.shape != (3, 3) or not np.all(np.isfinite(D0)):
+            raise TensorError(f"uniform_gradient: expected a finite 3×3 displacement gradient, got shape {D0.shape}")
+        D = D + D0
+
+    wsum = np.sum(w, axis=1)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        ss = np.sum(w[:, :, None] * r * r, axis=(1, 2))
+        res = np.sqrt(ss / (3 * wsum))
+        res_j = np.sqrt(np.sum(r * r, axis=2) / 3)  # (N,J)
+        if gradient_noise is not None:
+            if not np.isfinite(gradient_noise) or gradient_noise <= 0:
+                raise TensorError(f"gradient_noise: expected a positive noise level in rad/Å, got {gradient_noise!r}")
+            sigma2 = np.full(len(idx), float(gradient_noise) ** 2)
+        else:
+            dof = 3 * (nvalid - 3)
+            sigma2 = np.where(dof > 0, ss / np.maximum(dof, 1), np.nan)
+    var_d = sigma2[:, None] * np.diagonal(Minv, axis1=1, axis2=2)  # Var(D_ik) = σ² Minv_ii for every k
+    var_d[~ok] = np.nan
+
+    def to_grid(flat, lead):
+        out = np.full(lead + (int(np.prod(shape)),), np.nan, dtype=np.float32)
+        out[..., idx] = flat
+        return out.reshape(lead + shape)
+
+    Dg = to_grid(np.moveaxis(D, 0, -1), (3, 3))
+    strain = 0.5 * (Dg + np.swapaxes(Dg, 0, 1))
+    rotation = _axial(Dg).astype(np.float32)
+    # uncertainties: columns of D independent, Var(D_ik) = σ² (M⁻¹)_ii
+    su = np.empty((3, 3, len(idx)))
+    for i in range(3):
+        for k in range(3):
+            su[i, k] = np.sqrt(var_d[:, i]) if i == k else 0.5 * np.sqrt(var_d[:, i] + var_d[:, k])
+    ru = np.stack([0.5 * np.sqrt(var_d[:, 1] + var_d[:, 2]),
+                   0.5 * np.sqrt(var_d[:, 0] + var_d[:, 2]),
+                   0.5 * np.sqrt(var_d[:, 0] + var_d[:, 1])])
+    residual = to_grid(res, ())
+    residual_j = to_grid(res_j.T, (J,))
+    okg = to_grid(ok.astype(np.float32), ()) == 1
+    trusted &= okg
+
+    ref = reference_voxel(np.sum(amps, axis=0).astype(np.complex64), support)
+    disp = None
+    if displacement:
+        disp = _displacement(arrays, G, vs, support, weights, ref, D0=uniform_gradient, tol=phase_tolerance)
+
+    tf = TensorField(
+        displacement_gradient=Dg.astype(np.float32),
+        strain=strain.astype(np.float32),
+        rotation=rotation,
+        residual=residual,
+        residual_per_reflection=residual_j,
+        strain_uncertainty=to_grid(su, (3, 3)),
+        rotation_uncertainty=to_grid(ru, (3,)),
+        displacement=disp,
+        support=support,
+        trusted=trusted,
+        condition_number=cond,
+        g_vectors=G.copy(),
+        labels=list(labels),
+        voxel_size=vs,
+        reference=ref,
+    )
+    if J >= 4:
+        _outlier_check(tf, P, w, G, idx, trusted, max_condition, outlier_ratio, warn)
+    return tf
+
+
+def _displacement(arrays, G, vs, support, weights, ref, D0=None, tol=np.pi / 4):
+    """Displacement u (3, *grid) Å by least squares from unwrapped phases."""
+    J = len(arrays)
+    phases = np.stack([unwrapped_phase(a, support, ref)[0] for a in arrays])  # (J, ...)
+    idx = np.flatnonzero(support)
+    ph = phases.reshape(J, -1)[:, idx].T  # (N,J)
+    w = weights.reshape(J, -1)[:, idx].T.copy()
+    good = np.all(np.isfinite(ph), axis=1)
+    ph = np.where(np.isfinite(ph), ph, 0.0)
+    M = np.einsum("nj,ja,jb->nab", w, G, G)
+    rhs = -np.einsum("nj,ja,nj->na", w, G, ph)
+    lam = np.linalg.eigvalsh(M)
+    sing = ~(lam[:, 0] > 1e-12 * np.maximum(lam[:, -1], 1e-300))
+    M[sing] = np.eye(3)
+    u = np.linalg.solve(M, rhs[..., None])[..., 0]
+    good &= ~sing
+    if J >= 4:
+        mis = ph + u @ G.T
+        bad = good & ~np.all(np.abs(mis) < tol, axis=1)
+        if bad.any():
+            ub, okb = _branch_correction(ph[bad], w[bad], G, np.linalg.inv(M[bad]), tol)
+            u[bad] = ub
+            good[bad] = okb
+    u[~good] = np.nan
+    if D0 is not None:
+        pos = np.stack([(np.unravel_index(idx, support.shape)[k] - ref[k]) * vs[k] for k in range(3)], axis=1)
+        u = u + pos @ np.asarray(D0, float).T
+    out = np.full((3, support.size), np.nan, dtype=np.float32)
+    out[:, idx] = u.T
+    return out.reshape((3,) + support.shape)
+
+
+def _branch_correction(ph, w, G, Minv, tol, max_reflections=8):
+    """Re-solve voxels whose unwrapped phases disagree, allowing 2π·k_j.
+
+    Each reflection's unwrapping puts its cuts (around dislocations) in its
+    own places, so in between the phases of different reflections can be
+    on different branches. For every such voxel the integer vector k with
+    k_j ∈ {−1, 0, 1} is sought that makes φ_j + 2π k_j consistent with one
+    displacement (every misfit below ``tol``), preferring the smallest Σ|k_j|
+    and then the smallest weighted misfit. The displacement is then right
+    modulo a lattice translation (G_j reciprocal lattice vectors), like the
+    Volterra cut itself.
+    """
+    J = len(G)
+    if J > max_reflections:  # 3^J branch combinations: too many to try
+        return np.full((len(ph), 3), np.nan), np.zeros(len(ph), bool)
+    K = np.array(list(itertools.product((-1, 0, 1), repeat=J)), float)  # (C, J)
+    block = max(16, int(2_000_000 // (len(K) * J)))  # bounds memory to ~100 MB
+    nk = np.sum(np.abs(K), axis=1)
+    u_out = np.full((len(ph), 3), np.nan)
+    ok_out = np.zeros(len(ph), bool)
+    for s in range(0, len(ph), block):
+        sl = slice(s, s + block)
+        p = ph[sl][:, None, :] + 2 * np.pi * K[None]  # (n, C, J)
+        wb = w[sl]
+        rhs = -np.einsum("nj,ja,ncj->nca", wb, G, p)
+        u = np.einsum("nab,ncb->nca", Minv[sl], rhs)
+        r = p + u @ G.T
+        cost = np.sum(wb[:, None, :] * r * r, axis=2) / np.maximum(np.sum(wb, axis=1), 1e-300)[:, None]
+        valid = np.all(np.abs(r) < tol, axis=2)
+        key = np.where(valid, nk[None] + 0.5 * np.tanh(cost), np.inf)
+        best = np.argmin(key, axis=1)
+        rows = np.arange(len(best))
+        u_out[sl] = u[rows, best]
+        ok_out[sl] = np.isfinite(key[rows, best])
+    return u_out, ok_out
+
+
+def _outlier_check(tf, P, w, G, idx, trusted, max_condition, ratio, warn):
+    J = len(G)
+    tmask = trusted.reshape(-1)[idx]
+    if tmask.sum() < 10:
+        return
+    Pt, wt = P[tmask], w[tmask]
+    full_res = tf.residual.reshape(-1)[idx][tmask].astype(float)
+    gscale = float(np.mean(np.linalg.norm(G, axis=1)))
+    if not np.all(np.isfinite(full_res)) or np.sqrt(np.mean(full_res**2)) / gscale < 1e-7:
+        return  # exact data: nothing to single out
+    q = full_res**2
+    scores = {}
+    for j in range(J):
+        keep = [i for i in range(J) if i != j]
+        if condition_number(G[keep]) > max_condition:
+            scores[tf.labels[j]] = np.inf
+            continue
+        wj = wt.copy()
+        wj[:, j] = 0.0
+        D, _, r, _ = _solve(Pt, wj, G)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            rest = np.sum(wj[:, :, None] * r * r, axis=(1, 2)) / (3 * np.sum(wj, axis=1))
+        e = 0.5 * (D + np.swapaxes(D, 1, 2))
+        dev = e - np.median(e, axis=0)
+        per_voxel = rest / gscale**2 + np.sum(dev * dev, axis=(1, 2))
+        scores[tf.labels[j]] = float(np.sqrt(np.sum(q * per_voxel) / np.sum(q)))
+    tf.outlier_scores = scores
+    order = sorted(scores, key=scores.get)
+    best, second = order[0], order[1]
+    if np.isfinite(scores[second]) and scores[best] <= ratio * scores[second]:
+        tf.outlier = best
+        if warn:
+            rms = [np.sqrt(np.nanmean(tf.residual_per_reflection[i][trusted] ** 2)) for i in range(J)]
+            warnings.warn(
+                f"the reflections disagree (residual RMS {np.sqrt(np.mean(q)):.3g} rad/Å over the trusted "
+                f"voxels; per reflection " + ", ".join(f"{tf.labels[i]} {rms[i]:.3g}" for i in range(J))
+                + f"); reflection {best} is the likely culprit: leaving it out lowers the inconsistency "
+                f"score (strain-equivalent) from {scores[second]:.3g} to {scores[best]:.3g}. "
+                f"Check its reconstruction and its hkl.",
+                ReflectionConsistencyWarning, stacklevel=3)
+
+
+# --------------------------------------------------------------------------
+# registration
+# --------------------------------------------------------------------------
+
+def twin(obj):
+    """The twin conj ρ(−r) of an object whose origin is at index n//2.
+
+    Index i maps to 2·(n//2) − i on each axis (for even n index 0 has no
+    image and is set to zero).
+    """
+    a = np.asarray(obj)
+    out = np.conj(a[::-1, ::-1, ::-1]).copy()
+    for ax, n in enumerate(a.shape):
+        if n % 2 == 0:
+            out = np.roll(out, 1, axis=ax)
+            sl = [slice(None)] * 3
+            sl[ax] = 0
+            out[tuple(sl)] = 0
+    return out
+
+
+@dataclass
+class RegistrationReport:
+    """What :func:`register` did to each object (lists in input order).
+
+    Attributes
+    ----------
+    reference : int
+        Index of the object the others were aligned to.
+    voxel_size : (3,) float, Å
+    shape : tuple of 3 int
+    origin : (3,) float, Å
+        Sample-frame position of index n//2 of the common grid.
+    shifts_voxels, shifts_angstrom : list of (3,) float
+        Translation applied to each object after resampling (and after the
+        twin operation, if chosen), in common-grid voxels and in Å.
+    twins : list of bool
+        True where the object was replaced by its twin conj ρ(−r).
+    twin_scores : list of (float, float)
+        Amplitude correlation with the reference of the object and of its
+        twin, after alignment.
+    twin_decided_by : list of str
+        "reference", "amplitude", "residual" (phase consistency of all
+        reflections, used when amplitudes cannot tell), "symmetric" (object
+        and twin equal: choice irrelevant) or "ambiguous".
+    overlap : list of float
+        Dice coefficient 2|A∩B|/(|A|+|B|) of each registered support with the
+        reference support.
+    """
+
+    reference: int
+    voxel_size: np.ndarray
+    shape: tuple
+    origin: np.ndarray
+    shifts_voxels: list
+    shifts_angstrom: list
+    twins: list
+    twin_scores: list
+    twin_decided_by: list
+    overlap: list
+    overlap_measure: str = "Dice"
+
+
+def _dice(a, b):
+    s = a.sum() + b.sum()
+    return float(2 * np.logical_and(a, b).sum() / s) if s else 0.0
+
+
+def _ncc(a, b):
+    den = np.sqrt(np.sum(a * a) * np.sum(b * b))
+    return float(np.sum(a * b) / den) if den > 0 else 0.0
+
+
+class _Resampler:
+    """Samples one object on the common grid at arbitrary (common-index) points.
+
+    The object's mean phase ramp is removed before interpolation and put
+    back after, so that linear interpolation of the complex values meets a
+    slowly varying phase only.
+    """
+
+    def __init__(self, so, vs_common, origin_common, shape_common):
+        self.so = so
+        vs_o = so.voxel_size
+        sup = so.support
+        grad = phase_gradient(so.obj, vs_o, sup)
+        tr = trusted_voxels(so.obj, sup)
+        self.ramp = phase_ramp(grad, tr if tr.any() else sup, np.abs(so.obj))
+        n_o = np.array(so.shape)
+        self.pos_o = [(np.arange(n) - n // 2) * vs_o[k] for k, n in enumerate(so.shape)]
+        pos = np.ix_(*self.pos_o)
+        demod = so.obj * np.exp(-1j * sum(self.ramp[k] * pos[k] for k in range(3)))
+        self.re = demod.real.astype(np.float64)
+        self.im = demod.imag.astype(np.float64)
+        self.sup = sup.astype(np.float64)
+        # common index m -> physical r = origin_c + (m − c)·vs_c -> object index
+        self.scale = vs_common / vs_o
+        self.offset = (origin_common - so.origin) / vs_o + n_o // 2 - (np.array(shape_common) // 2) * self.scale
+        self.vs_o = vs_o
+        self.n_o = n_o
+
+    def sample(self, coords_common):
+        """coords_common: (3, *grid) common-grid indices. Returns (obj, support)."""
+        c = coords_common * self.scale.reshape(3, 1, 1, 1) + self.offset.reshape(3, 1, 1, 1)
+        re = ndi.map_coordinates(self.re, c, order=1, mode="constant", cval=0.0)
+        im = ndi.map_coordinates(self.im, c, order=1, mode="constant", cval=0.0)
+        sp = ndi.map_coordinates(self.sup, c, order=1, mode="constant", cval=0.0)
+        phys = (c - (self.n_o // 2).reshape(3, 1, 1, 1)) * self.vs_o.reshape(3, 1, 1, 1)
+        ramp = np.tensordot(self.ramp, phys, axes=1)
+        obj = (re + 1j * im) * np.exp(1j * ramp)
+        return obj.astype(np.complex64), sp >= 0.5
+
+
+def register(objects, *, voxel_size=None, reference=0, min_overlap=0.7, upsample=20,
+             twin_tolerance=0.002, return_report=False):
+    """Bring every reflection's SampleObject onto one common sample-frame grid.
+
+    Each object is resampled onto the common grid (voxel size: the finest of
+    the objects per axis, or ``voxel_size``; centred on the reference's
+    origin; large enough to hold every object), then aligned to the
+    reference by sub-voxel phase correlation of the amplitudes
+    (scikit-image ``phase_cross_correlation``, upsampled by ``upsample``),
+    once as it is and once as its twin conj ρ(−r); the better match of the
+    two is kept. Where the amplitudes cannot tell (correlations within
+    ``twin_tolerance``) and there are at least four reflections, the twin
+    choices are made by the consistency of all phase gradients (smallest
+    residual of :func:`strain_tensor`). The final object is made by one
+    linear interpolation from the input.
+
+    Parameters
+    ----------
+    objects : list of SampleObject
+    voxel_size : float or 3 floats, optional, Å
+    reference : int
+        Index of the reference object.
+    min_overlap : float
+        Smallest Dice coefficient of a registered support with the reference
+        support that is accepted (the pipeline file sets it).
+    upsample : int
+        Sub-voxel precision of the correlation, 1/upsample voxel.
+    twin_tolerance : float
+        Correlation difference below which the amplitudes are taken as unable
+        to tell an object from its twin (common practice, no source).
+    return_report : bool
+        Also return a :class:`RegistrationReport`.
+
+    Returns
+    -------
+    list of SampleObject (and the report if asked)
+        On the common grid, same G and hkl; ``meta["registration"]`` holds
+        this object's shift (voxels, Å), twin choice and Dice overlap.
+
+    Raises
+    ------
+    TensorError
+        Objects that are not SampleObjects, or registered supports that
+        overlap the reference less than ``min_overlap``.
+    """
+    from skimage.registration import phase_cross_correlation
+
+    objects = list(objects)
+    if len(objects) < 1:
+        raise TensorError("objects: expected at least one SampleObject")
+    for j, o in enumerate(objects):
+        if not isinstance(o, SampleObject):
+            raise TensorError(f"objects[{j}]: expected a braggstrain.objects.SampleObject, got {type(o).__name__}")
+        if not o.support.any():
+            raise TensorError(f"objects[{j}] {_label(o, j)}: empty support")
+    J = len(objects)
+    if not 0 <= int(reference) < J:
+        raise TensorError(f"reference: expected an index in 0..{J - 1}, got {reference!r}")
+    reference = int(reference)
+    if not 0 < min_overlap <= 1:
+        raise TensorError(f"min_overlap: expected a Dice coefficient in (0, 1], got {min_overlap!r}")
+    vs = (np.min([o.voxel_size for o in objects], axis=0) if voxel_size is None
+          else _voxel_size(voxel_size))
+    origin = objects[reference].origin.copy()
+    lo = np.max([origin - (o.origin - (np.array(o.shape) // 2) * o.voxel_size) for o in objects], axis=0)
+    hi = np.max([(o.origin + (np.array(o.shape) - 1 - np.array(o.shape) // 2) * o.voxel_size) - origin
+                 for o in objects], axis=0)
+    m = np.ceil(np.maximum(lo / vs, hi / vs + 1) - 1e-9).astype(int)
+    shape = tuple(int(2 * v) for v in m)
+    base = np.indices(shape, dtype=float)
+    c = (np.array(shape) // 2).reshape(3, 1, 1, 1).astype(float)
+
+    samplers = [_Resampler(o, vs, origin, shape) for o in objects]
+    ref_obj, ref_sup = samplers[reference].sample(base)
+    ref_amp = np.abs(ref_obj)
+
+    results = [None] * J
+    info = []
+    for j in range(J):
+        if j == reference:
+            results[j] = {False: (ref_obj, ref_sup, np.zeros(3))}
+            info.append(dict(twin=False, scores=(1.0, float("nan")), by="reference", shift=np.zeros(3)))
+            continue
+        cands = {}
+        scores = {}
+        for tw in (False, True):
+            coords = (2 * c - base) if tw else base
+            o, s = samplers[j].sample(coords)
+            if tw:
+                o = np.conj(o)
+            amp = np.abs(o)
+            shift, _, _ = phase_cross_correlation(ref_amp, amp, upsample_factor=upsample,
+                                                  normalization=None)
+            shift = np.asarray(shift, float)
+            # final object by one interpolation from the input
+            mv = base - shift.reshape(3, 1, 1, 1)
+            coords = (2 * c - mv) if tw else mv
+            o, s = samplers[j].sample(coords)
+            if tw:
+                o = np.conj(o)
+            cands[tw] = (o, s, shift)
+            scores[tw] = _ncc(ref_amp, np.abs(o))
+        diff = scores[True] - scores[False]
+        if abs(diff) >= twin_tolerance:
+            choice, by = diff > 0, "amplitude"
+        else:
+            same = (np.linalg.norm(cands[True][0] - cands[False][0])
+                    <= 1e-3 * np.linalg.norm(cands[False][0]))
+            choice, by = False, ("symmetric" if same else "ambiguous")
+        results[j] = cands
+        info.append(dict(twin=choice, scores=(scores[False], scores[True]), by=by, shift=cands[choice][2]))
+
+    amb = [j for j in range(J) if info[j]["by"] == "ambiguous"]
+    if amb and J >= 4:
+        _twin_by_residual(objects, results, info, amb, vs)
+    for j in range(J):
+        if info[j]["by"] == "ambiguous":
+            why = ("phase consistency needs at least four reflections" if J < 4 else
+                   "the residuals of the twin combinations are too close")
+            warnings.warn(
+                f"objects[{j}] {_label(objects[j], j)}: the amplitudes cannot tell the object from its twin "
+                f"and {why}; kept as given",
+                ReflectionConsistencyWarning, stacklevel=2)
+
+    out, overlaps = [], []
+    for j, o in enumerate(objects):
+        ob, sp, shift = results[j][info[j]["twin"]]
+        overlaps.append(_dice(ref_sup, sp))
+    poor = [j for j in range(J) if overlaps[j] < min_overlap]
+    if poor:
+        raise TensorError(
+            "register: support overlap with the reference "
+            f"{_label(objects[reference], reference)} too small for "
+            + ", ".join(f"objects[{j}] {_label(objects[j], j)} (Dice {overlaps[j]:.3f})" for j in poor)
+            + f"; expected Dice ≥ {min_overlap:g}. Check the reconstructions or lower min_overlap")
+    for j, o in enumerate(objects):
+        ob, sp, shift = results[j][info[j]["twin"]]
+        meta = dict(o.meta)
+        meta["registration"] = {
+            "reference": reference,
+            "shift_voxels": [float(v) for v in shift],
+            "shift_angstrom": [float(v) for v in shift * vs],
+            "twin": bool(info[j]["twin"]),
+            "twin_scores": [float(v) for v in info[j]["scores"]],
+            "twin_decided_by": info[j]["by"],
+            "overlap_dice": overlaps[j],
+        }
+        out.append(SampleObject(ob, vs.copy(), o.g_vector.copy(), sp, origin.copy(), o.hkl, meta))
+    if not return_report:
+        return out
+    report = RegistrationReport(
+        reference=reference, voxel_size=vs.copy(), shape=shape, origin=origin.copy(),
+        shifts_voxels=[results[j][info[j]["twin"]][2].copy() for j in range(J)],
+        shifts_angstrom=[results[j][info[j]["twin"]][2] * vs for j in range(J)],
+        twins=[bool(i["twin"]) for i in info],
+        twin_scores=[tuple(i["scores"]) for i in info],
+        twin_decided_by=[i["by"] for i in info],
+        overlap=overlaps)
+    return out, report
+
+
+def _label(o, j):
+    return _fmt_label(o.hkl) if o.hkl is not None else f"(reflection {j})"
+
+
+def _twin_by_residual(objects, results, info, amb, vs):
+    """Choose the twins of the ambiguous objects by the smallest tensor residual.
+
+    Phase gradients of both candidates of every object are computed once on
+    the voxels common to all candidates; each combination of twin choices is
+    then one batched least-squares solve (amplitude weights).
+    """
+    J = len(objects)
+    G = np.array([o.g_vector for o in objects])
+    cands = {j: ([info[j]["twin"]] if j not in amb else [False, True]) for j in range(J)}
+    sup = np.logical_and.reduce([results[j][t][1] for j in range(J) for t in cands[j]])
+    inner = ndi.binary_erosion(sup)
+    if inner.sum() < 10:
+        return
+    idx = np.flatnonzero(inner)
+    grads, amps = {}, {}
+    for j in range(J):
+        for t in cands[j]:
+            o = results[j][t][0]
+            g = phase_gradient(o, vs, sup).reshape(3, -1)[:, idx].T
+            a = np.abs(o).reshape(-1)[idx].astype(float)
+            grads[j, t] = np.nan_to_num(g.astype(float))
+            amps[j, t] = a / max(float(np.median(a)), 1e-30)
+    best, best_val, vals = None, np.inf, []
+    for combo in itertools.product((False, True), repeat=len(amb)):
+        choice = {j: info[j]["twin"] for j in range(J)}
+        choice.update(dict(zip(amb, combo)))
+        P = np.stack([grads[j, choice[j]] for j in range(J)], axis=1)  # (N, J, 3)
+        w = np.stack([amps[j, choice[j]] for j in range(J)], axis=1)
+        _, _, r, _ = _solve(P, w, G)
+        v = float(np.sqrt(np.sum(w[:, :, None] * r * r) / (3 * np.sum(w))))
+        vals.append(v)
+        if v < best_val:
+            best, best_val = combo, v
+    others = sorted(vals)[1:2]
+    # RMS over thousands of voxels: a 10 % drop is far beyond its scatter
+    # (common practice, no source)
+    if others and best_val < 0.9 * others[0]:
+        for j, tw in zip(amb, best):
+            info[j]["twin"] = tw
+            info[j]["by"] = "residual"
+            info[j]["shift"] = results[j][tw][2]
+
+
+# --------------------------------------------------------------------------
+# absolute versus relative strain
+# --------------------------------------------------------------------------
+
+@dataclass
+class MeanLattice:
+    """Mean homogeneous deformation of the crystal from its peak positions.
+
+    Attributes
+    ----------
+    displacement_gradient : (3, 3) float
+        D₀ (exact for a homogeneous deformation: F = I + D₀ with
+        G_meas = F⁻ᵀ G_ref).
+    strain : (3, 3) float
+        (D₀ + D₀ᵀ)/2.
+    rotation : (3,) float
+        Axial vector of (D₀ − D₀ᵀ)/2, radians.
+    lattice_parameter : float or None
+        Mean cubic lattice parameter a_ref·det(F)^{1/3}, Å (when a
+        reference lattice parameter was given).
+    lattice_parameter_per_reflection : (J,) float or None
+        a_ref·|G_ref,j|/|G_meas,j|, Å: what each peak alone says for a
+        cubic lattice.
+    residual : float
+        RMS misfit |G_meas − F⁻ᵀG_ref| over the reflections, Å⁻¹ (zero for
+        three reflections).
+    condition_number : float
+        Of the reference G set.
+    """
+
+    displacement_gradient: np.ndarray
+    strain: np.ndarray
+    rotation: np.ndarray
+    lattice_parameter: float | None
+    lattice_parameter_per_reflection: np.ndarray | None
+    residual: float
+    condition_number: float
+
+
+def mean_lattice_strain(g_measured, g_reference, lattice_parameter=None, *, max_condition=30.0):
+    """Mean displacement gradient D₀ from measured and reference G vectors.
+
+    Derivation: a homogeneous deformation F = I + D₀ takes the real-space
+    lattice vectors a_i to F a_i, so the reciprocal basis B = 2π A⁻ᵀ becomes
+    2π (F A)⁻ᵀ = F⁻ᵀ B and every reflection moves to G_meas = F⁻ᵀ G_ref,
+    i.e. G_meas ≈ (I − D₀ᵀ) G_ref to first order. A tensile strain therefore
+    shortens G (Bragg's law: d grows, |G| = 2π/d falls). Here M = F⁻ᵀ is
+    found by least squares over the J ≥ 3 reflections,
+    M = argmin Σ_j |G_meas,j − M G_ref,j|², and D₀ = M⁻ᵀ − I.
+
+    Parameters
+    ----------
+    g_measured : (J, 3) array
+        G from the measured peak positions, sample frame, Å⁻¹.
+    g_reference : (J, 3) array
+        G of the same reflections from the reference lattice, Å⁻¹.
+    lattice_parameter : float, optional
+        Cubic reference lattice parameter, Å, for the implied mean a.
+    max_condition : float
+        Refuse ill-conditioned sets.
+
+    Returns
+    -------
+    MeanLattice
+    """
+    Gm = np.asarray(g_measured, dtype=float)
+    Gr = np.asarray(g_reference, dtype=float)
+    for name, g in (("g_measured", Gm), ("g_reference", Gr)):
+        if g.ndim != 2 or g.shape[1] != 3 or not np.all(np.isfinite(g)):
+            raise TensorError(f"{name}: expected a (J, 3) array of finite G vectors in Å⁻¹, got shape {g.shape}")
+    if Gm.shape != Gr.shape:
+        raise TensorError(f"g_measured: shape {Gm.shape} differs from g_reference {Gr.shape}; expected one pair per reflection")
+    J = Gm.shape[0]
+    labels = [f"G_ref[{j}]" for j in range(J)]
+    if J < 3:
+        raise TensorError(f"g_reference: {J} reflection(s); the mean deformation needs at least three non-coplanar reflections")
+    cond = _check_set(Gr, labels, max_condition)
+    # Gm_j = M Gr_j for all j  <=>  Gr @ Mᵀ = Gm
+    Mt, *_ = np.linalg.lstsq(Gr, Gm, rcond=None)
+    M = Mt.T
+    F = np.linalg.inv(M).T
+    D0 = F - np.eye(3)
+    res = float(np.sqrt(np.mean(np.sum((Gm - Gr @ M.T) ** 2, axis=1))))
+    a, a_j = None, None
+    if lattice_parameter is not None:
+        a_ref = float(lattice_parameter)
+        if not np.isfinite(a_ref) or a_ref <= 0:
+            raise TensorError(f"lattice_parameter: expected a positive length in Å, got {lattice_parameter!r}")
+        a = a_ref * float(np.linalg.det(F)) ** (1.0 / 3.0)
+        a_j = a_ref * np.linalg.norm(Gr, axis=1) / np.linalg.norm(Gm, axis=1)
+    eps = 0.5 * (D0 + D0.T)
+    rot = _axial(D0)
+    return MeanLattice(D0, eps, rot, a, a_j, res, cond)
