@@ -56,6 +56,8 @@ __all__ = [
     "linear_q",
     "fast_size",
     "find_hot_pixels",
+    "choose_crop",
+    "estimate_background",
     "PREPARED_FORMAT",
     "PREPARED_VERSION",
 ]
@@ -426,6 +428,10 @@ class PreparedScan:
         The scan's file.
     options : dict
         The options used (plain values).
+    crop_choice : dict
+        How the crop was chosen (:func:`choose_crop`'s report: background,
+        signal level and extent, sizes wanted and chosen, what limited each
+        axis).
     """
 
     intensity: np.ndarray
@@ -454,6 +460,7 @@ class PreparedScan:
     hkl: tuple | None = None
     source: str = ""
     options: dict = field(default_factory=dict)
+    crop_choice: dict = field(default_factory=dict)
 
     @property
     def shape(self):
@@ -476,7 +483,7 @@ _MASK_CAUSES = ("gaps", "scan_mask", "user_mask", "flat_field", "hot", "dead", "
 
 def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_min_counts=20.0,
                  saturation=None, user_mask=None, zero_frames="mask", center="max", crop="auto",
-                 crop_threshold=1e-4, min_crop=16, max_crop=(128, 256, 256), bin=(1, 1, 1), pad=None,
+                 crop_threshold=1e-4, crop_sigma=5.0, min_crop=16, max_crop=(128, 256, 256), bin=(1, 1, 1), pad=None,
                  background="corners", min_oversampling=2.0, oversampling_threshold=0.005):
     """Clean a rocking scan and cut the phasing-ready block around its peak.
 
@@ -513,9 +520,13 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
                                                    extent above ``crop_threshold``, capped
                                                    by ``max_crop`` and the data) or "full"
                                                    (largest centred block that fits)
-    crop_threshold          1e-4                   "auto": keep where the 3×3×3-smoothed
-                                                   intensity exceeds this × the peak (and
-                                                   the background noise)
+    crop_threshold          1e-4                   "auto": signal is where the 3×3×3 mean
+                                                   exceeds the background by this × the
+                                                   background-subtracted peak ...
+    crop_sigma              5.0                    ... and by this many Poisson standard
+                                                   deviations of that mean; only signal
+                                                   connected to the peak counts
+                                                   (:func:`choose_crop`)
     min_crop                16                     smallest allowed size per axis, raw
     max_crop                (128, 256, 256)        "auto": largest size per axis, raw
     bin                     (1, 1, 1)              voxels summed per axis (frame, row, col)
@@ -660,59 +671,11 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
                              f"got {center!r}")
         ctr = np.round(ctr).astype(int)
 
-    # crop sizes: lo / hi = raw voxels available before / after the centre
-    lo_av = ctr.copy()
-    hi_av = np.array(data.shape) - 1 - ctr
+    start, stop, crop_choice = choose_crop(data, mask, ctr, crop=crop, binning=binning,
+                                           threshold=float(crop_threshold), n_sigma=float(crop_sigma),
+                                           min_crop=min_crop, max_crop=max_crop, source=src)
+    sizes = stop - start
     axis_names = ("frames", "rows", "columns")
-    before_of = lambda n, b: b * ((n // b) // 2) + (b - 1) // 2  # noqa: E731 - raw voxels before the centre
-    if isinstance(crop, str) and crop not in ("auto", "full"):
-        raise InputError(f"{src}: option 'crop': expected 'auto', 'full' or three sizes, got {crop!r}")
-    if isinstance(crop, str):
-        want = np.zeros(3, int)
-        if crop == "auto":
-            want = _auto_extent(data, mask, ctr, bg_raw, max_counts, float(crop_threshold))
-            mc = np.broadcast_to(np.asarray(max_crop, int), (3,))
-            want = np.minimum(want, mc)
-        sizes = []
-        for k in range(3):
-            b = int(binning[k])
-            # largest size of the form b·N (N a 2·3·5 product) that fits around the centre
-            n_fit = 0
-            nb = fast_size(int(data.shape[k] // b), up=False)
-            while nb >= 1:
-                n = nb * b
-                if before_of(n, b) <= lo_av[k] and n - 1 - before_of(n, b) <= hi_av[k]:
-                    n_fit = n
-                    break
-                nb = fast_size(nb - 1, up=False)
-            if crop == "auto":
-                n = fast_size(max(int(want[k]), int(min_crop)), up=True, multiple=b)
-                n = min(n, n_fit) if n_fit else 0
-            else:
-                n = n_fit
-            if n < int(min_crop) or n == 0:
-                raise ScanFileError(src, "frames", f"crop impossible: the peak (centre) at raw {axis_names[k][:-1]} "
-                                                   f"{int(ctr[k])} of {data.shape[k]} {axis_names[k]} leaves no "
-                                                   f"centred block of at least min_crop = {int(min_crop)} "
-                                                   f"{axis_names[k]} (peak too close to the edge of the "
-                                                   f"{'scan' if k == 0 else 'detector'})")
-            sizes.append(n)
-        sizes = np.array(sizes)
-    else:
-        sizes = np.asarray(crop, dtype=int).reshape(-1)
-        if sizes.shape != (3,) or np.any(sizes < 1):
-            raise InputError(f"{src}: option 'crop': expected three positive sizes (frames, rows, columns), "
-                             f"got {crop!r}")
-        for k in range(3):
-            if sizes[k] % binning[k] or not _is_smooth(int(sizes[k] // binning[k])):
-                raise InputError(f"{src}: option 'crop': {axis_names[k]} size {sizes[k]} must be bin ({binning[k]}) "
-                                 f"× a product of 2, 3 and 5")
-            if before_of(sizes[k], binning[k]) > lo_av[k] or sizes[k] - 1 - before_of(sizes[k], binning[k]) > hi_av[k]:
-                raise ScanFileError(src, "frames", f"crop impossible: {sizes[k]} {axis_names[k]} centred on raw "
-                                                   f"{axis_names[k][:-1]} {int(ctr[k])} do not fit in the "
-                                                   f"{data.shape[k]} {axis_names[k]} (peak too close to the edge)")
-    start = np.array([ctr[k] - before_of(sizes[k], binning[k]) for k in range(3)])
-    stop = start + sizes
     sl = tuple(slice(int(a), int(b)) for a, b in zip(start, stop))
     block = data[sl].astype(np.float64)
     bmask = mask[sl]
@@ -793,7 +756,8 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
     opts = dict(hot_pixel_threshold=hot_pixel_threshold, dead_min_counts=dead_min_counts, saturation=saturation,
                 zero_frames=zero_frames, center=center if isinstance(center, str) else [int(v) for v in ctr],
                 crop=crop if isinstance(crop, str) else [int(v) for v in sizes], crop_threshold=crop_threshold,
-                min_crop=min_crop, bin=[int(v) for v in binning], pad=None if pad is None else [int(v) for v in pad],
+                crop_sigma=crop_sigma, min_crop=min_crop, bin=[int(v) for v in binning],
+                pad=None if pad is None else [int(v) for v in pad],
                 background=background if (background is None or isinstance(background, str)) else float(background),
                 min_oversampling=min_oversampling, oversampling_threshold=oversampling_threshold,
                 dark=None if dark is None else (str(dark) if isinstance(dark, (str, Path)) else "array"),
@@ -807,7 +771,7 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
         hot_pixels=hot, dead_pixels=dead, zero_frames=empty, mask_counts=counts, oversampling=sigma,
         angles=crop_angles, centre_angles=ang_c, rocking_circle=scan.rocking_circle, rocking_step=step,
         instrument=inst, hkl=None if scan.hkl is None else tuple(int(v) for v in scan.hkl), source=src,
-        options=opts)
+        options=opts, crop_choice=crop_choice)
 
 
 def _com(w):
@@ -833,25 +797,216 @@ def _corner_background(block, mask):
     return float(v.mean()) if v.size else 0.0
 
 
-def _auto_extent(data, mask, ctr, bg, peak, frac):
-    """Raw size per axis that holds the signal: twice the largest distance from
-    the centre where the 3×3×3-mean intensity exceeds max(frac·peak, the
-    background plus six standard deviations of that mean), plus one."""
+def _before_centre(n, b):
+    """Raw voxels before the centre in a crop of n raw voxels binned by b
+    (the centre voxel lands at index (n/b)//2 of the binned array)."""
+    return b * ((n // b) // 2) + (b - 1) // 2
+
+
+def estimate_background(data, mask=None, *, n_sigma=5.0, size=3, iterations=10):
+    """Flat background per voxel of Poisson counts, the signal clipped away.
+
+    The mean of the measured voxels whose ``size``³ neighbourhood mean stays
+    below the current estimate plus ``n_sigma`` Poisson standard deviations
+    of that mean (√(b / size³)), iterated to convergence (a sigma-clipped
+    mean; common practice, no source). Unlike the median, which is 0 for
+    Poisson counts of mean below ln 2 ≈ 0.69 (a weak reflection's flat
+    background of 0.5 counts per pixel has a median of 0), it is unbiased
+    for sparse counts; the peak, a small part of a detector-wide scan, is
+    clipped away.
+
+    Parameters
+    ----------
+    data : (F, R, C) counts
+    mask : optional bool array of the same shape, True = not measured
+    n_sigma : clipping level, Poisson standard deviations of the
+        neighbourhood mean
+    size : neighbourhood edge, voxels
+    iterations : at most this many clipping passes
+
+    Returns
+    -------
+    float, counts per voxel
+    """
     from scipy import ndimage
 
-    sm = ndimage.uniform_filter(np.where(mask, bg, data).astype(np.float32), size=3, mode="nearest")
-    noise = bg + 6.0 * np.sqrt(max(bg, 1e-3) / 27.0) + 1.0 / 27.0
-    thr = max(frac * peak, noise)
-    above = sm > thr
-    out = np.zeros(3, int)
-    for k in range(3):
-        other = tuple(a for a in range(3) if a != k)
-        prof = np.nonzero(above.any(axis=other))[0]
-        if prof.size == 0:
-            out[k] = 1
-            continue
-        out[k] = 2 * int(max(ctr[k] - prof.min(), prof.max() - ctr[k])) + 1
-    return out
+    data = np.asarray(data, np.float32)
+    good = np.ones(data.shape, bool) if mask is None else ~np.asarray(mask, bool)
+    if not np.any(good):
+        return 0.0
+    b = float(data[good].mean())
+    w = good.astype(np.float32)
+    num = ndimage.uniform_filter(np.where(good, data, 0).astype(np.float32), size=size, mode="nearest")
+    den = ndimage.uniform_filter(w, size=size, mode="nearest")
+    smooth = np.where(den > 0, num / np.maximum(den, 1e-6), np.inf)
+    n = float(size) ** 3
+    for _ in range(int(iterations)):
+        keep = good & (smooth <= b + n_sigma * np.sqrt(max(b, 1.0 / n) / n))
+        if not np.any(keep):
+            break
+        nb = float(data[keep].mean())
+        if abs(nb - b) <= 1e-3 * max(b, 1e-3):
+            b = nb
+            break
+        b = nb
+    return b
+
+
+def choose_crop(data, mask, center, *, crop="auto", binning=(1, 1, 1), threshold=1e-4, n_sigma=5.0,
+                min_crop=16, max_crop=(128, 256, 256), source=""):
+    """Raw block of FFT-friendly size centred on the peak, and why.
+
+    ``crop = "auto"`` keeps the extent of the peak's signal above the
+    background, found on the background-subtracted counts:
+
+    1. the flat background b (counts per voxel) is the sigma-clipped mean of
+       :func:`estimate_background`;
+    2. a voxel carries signal where its 3×3×3-neighbourhood mean exceeds
+       b + max(``threshold`` × (peak − b), ``n_sigma``·√(b/27) + 1/27):
+       a fraction of the background-subtracted peak, and never less than
+       ``n_sigma`` Poisson standard deviations of the neighbourhood mean
+       above the background (the 1/27, one count, keeps a zero background
+       from letting single counts through);
+    3. only the signal connected to the peak counts (26-connected after
+       closing gaps of up to two voxels between fringes): isolated noise
+       excursions, a missed hot pixel or another crystal's peak elsewhere
+       on the detector cannot stretch the crop;
+    4. per axis the size is twice the largest distance of that signal from
+       the centre, plus one, rounded up to ``binning`` × a product of 2, 3
+       and 5, at least ``min_crop``, capped by ``max_crop`` and by the
+       largest centred block the data hold.
+
+    ``crop = "full"`` takes the largest centred block; three sizes are
+    checked and used as given.
+
+    Parameters
+    ----------
+    data : (F, R, C) float, cleaned counts (masked voxels may hold anything)
+    mask : (F, R, C) bool, True = not measured
+    center : (3,) int, raw (frame, row, column) that becomes index n//2
+    crop : "auto", "full" or three raw sizes
+    binning : (3,) int
+    threshold : fraction of the background-subtracted peak that counts as
+        signal ("auto")
+    n_sigma : Poisson standard deviations of the 3×3×3 mean above the
+        background that count as signal ("auto")
+    min_crop : smallest size per axis, raw voxels
+    max_crop : largest size per axis, raw voxels ("auto")
+    source : name of the scan for messages
+
+    Returns
+    -------
+    start, stop : (3,) int arrays, raw [start, stop) per axis
+    report : dict with the mode, the background (counts per voxel), the
+        signal threshold (counts per voxel above the background), the
+        signal's raw extent per axis, the sizes wanted and chosen, and what
+        limited each axis ("signal", "min_crop", "max_crop", "data" or
+        "given")
+
+    Raises
+    ------
+    ScanFileError
+        when no centred block of at least ``min_crop`` fits (peak at the
+        edge of the scan or the detector), or given sizes do not fit.
+    InputError
+        a malformed ``crop``.
+    """
+    from scipy import ndimage
+
+    src = source or "<in-memory scan>"
+    data = np.asarray(data)
+    mask = np.asarray(mask, bool)
+    ctr = np.asarray(center, int)
+    binning = np.broadcast_to(np.asarray(binning, int), (3,))
+    shape = np.array(data.shape)
+    lo_av, hi_av = ctr, shape - 1 - ctr
+    axis_names = ("frames", "rows", "columns")
+    report = {"mode": crop if isinstance(crop, str) else "given"}
+
+    def fits(n, k):
+        b = int(binning[k])
+        before = _before_centre(n, b)
+        return before <= lo_av[k] and n - 1 - before <= hi_av[k]
+
+    def impossible(k):
+        return ScanFileError(src, "frames", f"crop impossible: the peak (centre) at raw {axis_names[k][:-1]} "
+                                            f"{int(ctr[k])} of {data.shape[k]} {axis_names[k]} leaves no "
+                                            f"centred block of at least min_crop = {int(min_crop)} "
+                                            f"{axis_names[k]} (peak too close to the edge of the "
+                                            f"{'scan' if k == 0 else 'detector'})")
+
+    if isinstance(crop, str):
+        if crop not in ("auto", "full"):
+            raise InputError(f"{src}: option 'crop': expected 'auto', 'full' or three sizes, got {crop!r}")
+        if crop == "auto":
+            bg = estimate_background(data, mask)
+            filled = np.where(mask, bg, data).astype(np.float32)
+            smooth = ndimage.uniform_filter(filled, size=3, mode="nearest")
+            peak = float(np.max(np.where(mask, 0, data)))
+            level = max(float(threshold) * (peak - bg), float(n_sigma) * np.sqrt(max(bg, 0.0) / 27.0) + 1.0 / 27.0)
+            above = smooth > bg + level
+            closed = ndimage.binary_dilation(above, structure=np.ones((3, 3, 3), bool))
+            labels, _ = ndimage.label(closed, structure=np.ones((3, 3, 3), bool))
+            box = tuple(slice(max(0, c - 1), c + 2) for c in ctr)
+            ids = np.unique(labels[box])
+            ids = ids[ids > 0]
+            signal = np.isin(labels, ids) & above if ids.size else np.zeros(data.shape, bool)
+            extent = np.zeros(3, int)
+            want = np.ones(3, int)
+            for k in range(3):
+                other = tuple(a for a in range(3) if a != k)
+                idx = np.nonzero(signal.any(axis=other))[0]
+                if idx.size:
+                    extent[k] = int(idx.max() - idx.min() + 1)
+                    want[k] = 2 * int(max(ctr[k] - idx.min(), idx.max() - ctr[k])) + 1
+            report.update(background=float(bg), signal_level=float(level), signal_extent=extent.tolist(),
+                          wanted=want.tolist())
+        mc = np.broadcast_to(np.asarray(max_crop, int), (3,))
+        sizes, limited = [], []
+        for k in range(3):
+            b = int(binning[k])
+            # largest size of the form b·N (N a 2·3·5 product) that fits around the centre
+            n_fit = 0
+            nb = fast_size(int(data.shape[k] // b), up=False)
+            while nb >= 1:
+                if fits(nb * b, k):
+                    n_fit = nb * b
+                    break
+                nb = fast_size(nb - 1, up=False)
+            why = "data"
+            n = n_fit
+            if crop == "auto":
+                n = fast_size(max(int(want[k]), int(min_crop)), up=True, multiple=b)
+                why = "signal" if want[k] >= int(min_crop) else "min_crop"
+                cap = fast_size(int(mc[k]), up=False, multiple=b)
+                if cap and n > cap:
+                    n, why = cap, "max_crop"
+                if n_fit and n > n_fit:
+                    n, why = n_fit, "data"
+                if not n_fit:
+                    n = 0
+            if n < int(min_crop) or n == 0:
+                raise impossible(k)
+            sizes.append(n)
+            limited.append(why)
+        sizes = np.array(sizes)
+    else:
+        sizes = np.asarray(crop, dtype=int).reshape(-1)
+        if sizes.shape != (3,) or np.any(sizes < 1):
+            raise InputError(f"{src}: option 'crop': expected three positive sizes (frames, rows, columns), "
+                             f"got {crop!r}")
+        for k in range(3):
+            if sizes[k] % binning[k] or not _is_smooth(int(sizes[k] // binning[k])):
+                raise InputError(f"{src}: option 'crop': {axis_names[k]} size {sizes[k]} must be bin ({binning[k]}) "
+                                 f"× a product of 2, 3 and 5")
+            if not fits(sizes[k], k):
+                raise ScanFileError(src, "frames", f"crop impossible: {sizes[k]} {axis_names[k]} centred on raw "
+                                                   f"{axis_names[k][:-1]} {int(ctr[k])} do not fit in the "
+                                                   f"{data.shape[k]} {axis_names[k]} (peak too close to the edge)")
+        limited = ["given"] * 3
+    report.update(sizes=[int(v) for v in sizes], limited_by=limited)
+    start = np.array([ctr[k] - _before_centre(int(sizes[k]), int(binning[k])) for k in range(3)])
+    return start, start + sizes, report
 
 
 # --------------------------------------------------------------------------
@@ -935,6 +1090,7 @@ def summarize_prepared(prepared):
         f"padding {[tuple(int(v) for v in r) for r in p.padding]}",
         "  crop (raw, [start, stop)): " + ", ".join(f"{n} [{int(a)}, {int(b)})" for n, (a, b) in
                                                     zip(("frames", "rows", "columns"), p.crop)),
+        _crop_line(p.crop_choice),
         f"  cleaned peak, raw (frame, row, column): max at {tuple(int(v) for v in p.peak_max)}, "
         f"centre of mass at ({p.peak_com[0]:.2f}, {p.peak_com[1]:.2f}, {p.peak_com[2]:.2f})",
         f"  max counts: {p.max_counts:.6g}; background removed: {p.background:.4g} counts per raw voxel",
@@ -954,6 +1110,17 @@ def summarize_prepared(prepared):
         f"row {np.linalg.norm(p.linear_map[:, 1]):.3e}, column {np.linalg.norm(p.linear_map[:, 2]):.3e}",
     ]
     return "\n".join(lines)
+
+
+def _crop_line(choice):
+    if not choice:
+        return "  crop choice: not recorded"
+    line = f"  crop choice ({choice.get('mode')}): sizes {tuple(choice.get('sizes', ()))} limited by " \
+           f"{', '.join(choice.get('limited_by', ()))} (frames, rows, columns)"
+    if "background" in choice:
+        line += (f"; background {choice['background']:.3g} counts/voxel, signal ≥ "
+                 f"{choice['signal_level']:.3g} above it over raw extent {tuple(choice['signal_extent'])}")
+    return line
 
 
 def _json_default(o):
@@ -1002,6 +1169,7 @@ def write_prepared(prepared, path):
             f.attrs["instrument"] = json.dumps(p.instrument.to_dict(), default=_json_default)
             f.attrs["options"] = json.dumps(p.options, default=_json_default)
             f.attrs["mask_counts"] = json.dumps(p.mask_counts, default=_json_default)
+            f.attrs["crop_choice"] = json.dumps(p.crop_choice, default=_json_default)
             d = f.create_dataset("intensity", data=p.intensity.astype(np.float32), compression="gzip")
             d.attrs["units"] = "counts"
             d.attrs["axes"] = "frame,row,column"
@@ -1078,5 +1246,6 @@ def read_prepared(path):
             mask_counts=json.loads(f.attrs.get("mask_counts", "{}")), oversampling=geo["oversampling"],
             angles=angles, centre_angles=centre, rocking_circle=str(f.attrs["rocking_circle"]),
             rocking_step=float(f.attrs["rocking_step_deg"]), instrument=inst, hkl=hkl,
-            source=str(f.attrs.get("source", "")), options=json.loads(f.attrs.get("options", "{}")))
+            source=str(f.attrs.get("source", "")), options=json.loads(f.attrs.get("options", "{}")),
+            crop_choice=json.loads(f.attrs.get("crop_choice", "{}")))
     return out
