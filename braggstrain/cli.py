@@ -160,7 +160,7 @@ def cmd_demo(args):
 
 def cmd_prepare(args):
     from braggstrain.config import load_config
-    from braggstrain.pipeline import _scan_for, check_options
+    from braggstrain.pipeline import _prepare_options, _scan_for, check_options
     from braggstrain.prepare.scan import prepare_scan, summarize_prepared, write_prepared
 
     cfg = load_config(args.config)
@@ -168,8 +168,8 @@ def cmd_prepare(args):
     out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
     for i, r in enumerate(cfg["reflection"]):
-        scan, _ = _scan_for(cfg, i, r)
-        prep = prepare_scan(scan, **opts["prepare"])
+        scan, _ = _scan_for(cfg, i, r, opts["prepare"])
+        prep = prepare_scan(scan, **_prepare_options(scan, opts["prepare"]))
         name = r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m")
         path = write_prepared(prep, out / f"{name}_prepared.h5")
         _print(f"{name} {tuple(r['hkl'])} → {path}", args.quiet)

@@ -282,9 +282,21 @@ def _executor(scheduler, workers):
 # the run
 # ---------------------------------------------------------------------------
 
-def _scan_for(cfg, i, r):
-    """Read reflection i's scan: a braggstrain scan file, or a frame stack with angles."""
-    from braggstrain.io.scans import Scan, read_frame_stack, read_scan
+def _prepare_options(scan, options):
+    """The [prepare] options for one scan: summed repeats had their saturation
+    tested on each raw scan already."""
+    if "repeats" in scan.extra and "saturation" in options:
+        options = {k: v for k, v in options.items() if k != "saturation"}
+    return options
+
+
+def _scan_for(cfg, i, r, prepare_opts=None):
+    """Read reflection i's scan: a braggstrain scan file, or frames with their
+    angles, monitor and energy from the pipeline file or the beamline's files
+    (braggstrain.io.sources); repeated scans are aligned and summed."""
+    from braggstrain.io.scans import read_scan
+    from braggstrain.io.sources import reflection_scan
+    from braggstrain.prepare.measured import sum_repeats
 
     src = cfg.get("_source", "<pipeline>")
     if r["scan"] is not None:
@@ -294,33 +306,14 @@ def _scan_for(cfg, i, r):
         return read_scan(p), file_digest(p)
     if r["frames"] is None:
         raise ConfigError(f"{src}: key 'reflection[{i}]': expected 'scan' (a scan file) or 'frames' (a frame stack)")
-    p = resolve_path(cfg, r["frames"], f"reflection[{i}].frames")
-    if not p.exists():
-        raise ConfigError(f"{src}: key 'reflection[{i}].frames': {p} not found")
-    frames = read_frame_stack(p, r["dataset"])
-    inst = build_instrument(cfg)
-    angles = {}
-    given = r["angles"] or {}
-    for c in inst.circles:
-        if c.name not in given:
-            raise ConfigError(f"{src}: key 'reflection[{i}].angles.{c.name}': missing; expected degrees or "
-                              "{start, step} for the rocked circle")
-        v = given[c.name]
-        if isinstance(v, dict):
-            if set(v) - {"start", "step"} or "start" not in v or "step" not in v:
-                raise ConfigError(f"{src}: key 'reflection[{i}].angles.{c.name}': expected {{start, step}} (degrees)")
-            angles[c.name] = v["start"] + v["step"] * np.arange(frames.shape[0])
-        elif isinstance(v, list):
-            angles[c.name] = np.asarray(v, float)
-        else:
-            angles[c.name] = float(v)
-    rock = r["rocking_circle"]
-    if rock is None:
-        raise ConfigError(f"{src}: key 'reflection[{i}].rocking_circle': expected the name of the rocked circle")
-    mask = None
-    scan = Scan(frames=frames, angles=angles, rocking_circle=rock, instrument=inst, mask=mask,
-                hkl=tuple(r["hkl"]), path=str(p))
-    digest = file_digest(p) if p.is_file() else hash_inputs(frames)
+    scans = reflection_scan(r, build_instrument(cfg), base_dir=cfg.get("_dir", "."), key=f"reflection[{i}]",
+                            source=src, detector_roi=cfg["instrument"]["detector"].get("roi"))
+    if len(scans) > 1:
+        sat = (prepare_opts or {}).get("saturation")
+        scan, _ = sum_repeats(scans, max_shift=float(r.get("repeat_max_shift", 5.0)), saturation=sat)
+    else:
+        scan = scans[0]
+    digest = hash_inputs(scan.frames, scan.mask, scan.monitor, scan.angles, scan.instrument, scan.extra.get("roi"))
     return scan, digest
 
 
@@ -383,7 +376,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     # read every scan up front, so bad input fails before any work is done
     scans = []
     for i, r in enumerate(cfg["reflection"]):
-        scans.append(_scan_for(cfg, i, r))
+        scans.append(_scan_for(cfg, i, r, opts["prepare"]))
     ph_opts = dict(opts["phasing"])
     runs = int(ph_opts.pop("runs", 8))
     keep = int(ph_opts.pop("keep", 4))
@@ -412,7 +405,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                     except BraggStrainError:
                         prepared = None
                 if prepared is None:
-                    prepared = prp.prepare_scan(scan, **opts["prepare"])
+                    prepared = prp.prepare_scan(scan, **_prepare_options(scan, opts["prepare"]))
                     run.ck.mkdir(parents=True, exist_ok=True)
                     prp.write_prepared(prepared, pp)
             data = prepared

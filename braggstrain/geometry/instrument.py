@@ -124,6 +124,36 @@ class Detector:
                 m[:, int(start):int(stop)] = True
         return m
 
+    def region(self, first_row, first_column, shape):
+        """The detector seen through a region of interest.
+
+        Frames stored as a region of ``shape`` (rows, columns) whose first
+        pixel is the full detector's (``first_row``, ``first_column``): the
+        region's pixel (i, j) is the full detector's (first_row + i,
+        first_column + j), so the returned detector has the same geometry with
+        the direct beam and the gaps given in the region's indices.
+
+        Raises
+        ------
+        InputError
+            when the region does not lie on the detector.
+        """
+        r0, c0 = int(first_row), int(first_column)
+        nr, nc = int(shape[0]), int(shape[1])
+        if r0 < 0 or c0 < 0 or r0 + nr > self.shape[0] or c0 + nc > self.shape[1]:
+            raise InputError(f"detector region of interest: rows [{r0}, {r0 + nr}) and columns [{c0}, {c0 + nc}) "
+                             f"expected inside the {self.shape[0]} × {self.shape[1]} detector")
+        gaps = []
+        for axis, start, stop in self.gaps:
+            off, n = (r0, nr) if int(axis) == 0 else (c0, nc)
+            a, b = max(int(start) - off, 0), min(int(stop) - off, n)
+            if a < b:
+                gaps.append((int(axis), a, b))
+        from dataclasses import replace
+
+        return replace(self, shape=(nr, nc), direct_beam=(self.direct_beam[0] - r0, self.direct_beam[1] - c0),
+                       gaps=tuple(gaps))
+
     def to_dict(self):
         return {
             "shape": list(self.shape), "pixel_size": list(self.pixel_size), "distance": self.distance,

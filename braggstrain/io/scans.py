@@ -52,6 +52,10 @@ class Scan:
     hkl : tuple or None
     material : str or None
     path : source file
+    extra : dict, what the readers noted (sources of each value, detector
+        region of interest, repeats)
+    monitor : (F,) incident-beam monitor per frame, or None; the
+        preparation divides each frame by monitor / mean(monitor)
     """
 
     frames: np.ndarray
@@ -63,6 +67,7 @@ class Scan:
     material: str | None = None
     path: str = ""
     extra: dict = field(default_factory=dict)
+    monitor: np.ndarray | None = None
 
     @property
     def rocking_angles(self):

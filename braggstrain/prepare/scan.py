@@ -204,13 +204,10 @@ def _validate_scan(scan):
     if ra.ndim == 0 or nf < 2 or np.ptp(ra) == 0:
         raise ScanFileError(src, f"instrument/circles/{rc}",
                             f"the rocked circle must change from frame to frame ({nf} angles expected)")
-    steps = np.diff(ra)
-    mean = float(np.mean(steps))
-    if np.any(steps == 0) or np.max(np.abs(steps - mean)) > 0.05 * abs(mean):
-        raise ScanFileError(src, f"instrument/circles/{rc}",
-                            f"expected a uniform rocking step (within 5 %); steps range from "
-                            f"{steps.min():.6g} to {steps.max():.6g} degrees")
-    return frames, mean
+    from braggstrain.prepare.measured import fit_rocking_step
+
+    step, _ = fit_rocking_step(ra, source=src, field=f"instrument/circles/{rc}")
+    return frames, step
 
 
 def _as_stack_mask(m, shape, field_name, src):
@@ -478,7 +475,8 @@ class PreparedScan:
         return 2 * np.pi * np.linalg.inv(self.linear_map).T / N[None, :]
 
 
-_MASK_CAUSES = ("gaps", "scan_mask", "user_mask", "flat_field", "hot", "dead", "saturated", "zero_frames")
+_MASK_CAUSES = ("gaps", "scan_mask", "user_mask", "flat_field", "hot", "dead", "saturated", "zero_frames",
+                "monitor")
 
 
 def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_min_counts=20.0,
@@ -607,6 +605,15 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
                                              f"got {d.shape}")
         data -= d
         np.maximum(data, 0, out=data)
+    monitor_bad = []
+    if getattr(scan, "monitor", None) is not None:
+        # counts per mean monitor; the dark (no beam) was removed from the raw counts first
+        from braggstrain.prepare.measured import monitor_scale
+
+        mscale, monitor_bad = monitor_scale(scan.monitor, F, source=src)
+        data /= mscale.astype(np.float32)[:, None, None]
+        mask[monitor_bad] = True
+        counts["monitor"] = len(monitor_bad)
     fl = _load_array(flat, "flat", src)
     if fl is not None:
         fl = np.asarray(fl, np.float64)
@@ -633,7 +640,7 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
 
     # empty frames
     frame_sums = np.where(mask, 0, data).sum(axis=(1, 2), dtype=np.float64)
-    empty = [int(i) for i in np.nonzero(frame_sums == 0)[0]]
+    empty = [int(i) for i in np.nonzero(frame_sums == 0)[0] if int(i) not in monitor_bad]
     if empty:
         if zero_frames == "error":
             raise ScanFileError(src, "frames", f"frame(s) {empty} have no counts at all (missing or blocked "
@@ -764,6 +771,9 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
                 flat=None if flat is None else (str(flat) if isinstance(flat, (str, Path)) else "array"),
                 user_mask=None if user_mask is None else (str(user_mask) if isinstance(user_mask, (str, Path))
                                                            else "array"))
+    if getattr(scan, "monitor", None) is not None:
+        opts["monitor_scale"] = [float(v) for v in mscale]
+        opts["monitor_masked_frames"] = list(monitor_bad)
     return PreparedScan(
         intensity=inten.astype(np.float32), mask=bmask_b, linear_map=M, q_center=q_center, rotation=R_c,
         center_index=ctr.astype(float) + delta, crop=np.column_stack([start, stop]), binning=binning,
