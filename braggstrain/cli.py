@@ -75,10 +75,131 @@ def describe_scan(path):
     return lines
 
 
+def describe_reflection(cfg, i):
+    """Text lines describing reflection i of a pipeline file: where every
+    value comes from, the frames, motors, monitor, rocking jitter, and the
+    crop the preparation would choose (used by ``inspect``)."""
+    from braggstrain.io.frames import describe_frames
+    from braggstrain.pipeline import _prepare_options, _scan_for, prepare_options
+    from braggstrain.prepare.measured import fit_rocking_step
+    from braggstrain.prepare.scan import prepare_scan, summarize_prepared
+
+    r = cfg["reflection"][i]
+    name = r["name"] or f"reflection[{i}]"
+    opts = prepare_options(cfg)
+    scan, _ = _scan_for(cfg, i, r, opts)
+    lines = [f"reflection  {name} {tuple(r['hkl'])} of {cfg.get('_source')}"]
+    if r["scan"] is not None:
+        lines.append(f"scan file   {scan.path}")
+    else:
+        reps = scan.extra.get("repeats")
+        srcs = reps["sources"] if reps else [scan.path]
+        for k, s in enumerate(srcs):
+            d = describe_frames(s, r["dataset"])
+            comp = ", ".join(d["compression"]) or "none"
+            how = " (virtual dataset)" if d["virtual"] else " (external link)" if d["external_link"] else ""
+            lines.append(f"frames{'' if len(srcs) == 1 else f' [{k}]':6s} {s}: {d['format']}{how}, {d['frames']} "
+                         f"frames of {d['shape'][0]} × {d['shape'][1]} ({d['dtype']}), compression {comp}, "
+                         f"{len(d['files'])} file(s)")
+        if reps:
+            sh = np.asarray(reps["shifts"])
+            lines.append("repeats     aligned to the first by the peak's centre of mass; shifts (frames, rows, "
+                         "columns): " + "; ".join(f"({a:+.2f}, {b:+.2f}, {c:+.2f})" for a, b, c in sh))
+    roi = scan.extra.get("roi")
+    if roi:
+        full = cfg["instrument"]["detector"]["shape"]
+        lines.append(f"detector    region of interest from row {roi[0]}, column {roi[1]} of the {full[0]} × "
+                     f"{full[1]} detector")
+    sources = scan.extra.get("sources", {})
+    for c in scan.instrument.circles:
+        a = np.asarray(scan.angles[c.name], float)
+        where = sources.get(c.name, "pipeline file")
+        if a.ndim:
+            lines.append(f"  {c.name:8s} {a[0]:.4f} → {a[-1]:.4f}° per frame ({where})")
+        else:
+            lines.append(f"  {c.name:8s} {float(a):.4f}° ({where})")
+    lines.append(f"energy      {scan.instrument.energy_kev:g} keV ({sources.get('energy_kev', 'pipeline file')}); "
+                 f"detector distance {scan.instrument.detector.distance:g} m "
+                 f"({sources.get('distance_m', 'pipeline file')})")
+    if scan.monitor is not None:
+        m = np.asarray(scan.monitor, float)
+        lines.append(f"monitor     {m.min():.6g} … {m.max():.6g} (mean {m.mean():.6g}) from {sources.get('monitor')}"
+                     + (f"; {int(np.sum(m <= 0))} frame(s) ≤ 0 will be masked" if np.any(m <= 0) else ""))
+    else:
+        lines.append("monitor     none")
+    rc = scan.rocking_circle
+    step, dev = fit_rocking_step(scan.rocking_angles, source=scan.path, field=f"angles.{rc}")
+    k = int(np.argmax(np.abs(dev)))
+    lines.append(f"rocking     {rc} step {step:.6g}° (straight-line fit); read-back deviation rms "
+                 f"{np.sqrt(np.mean(dev ** 2)):.3g}°, largest {dev[k]:+.3g}° at frame {k} "
+                 f"({abs(dev[k] / step):.1%} of the step)")
+    fr = scan.frames
+    lines.append(f"max counts  {float(np.max(fr)):.6g} (raw: hot pixels not yet removed)")
+    try:
+        prep = prepare_scan(scan, **_prepare_options(scan, opts))
+        lines.append("after preparation:")
+        lines.extend("  " + s for s in summarize_prepared(prep).splitlines())
+    except BraggStrainError as e:
+        lines.append(f"preparation failed: {e}")
+    return lines
+
+
+def describe_source(path):
+    """Text lines describing a file that is not a scan file: a frames source."""
+    from braggstrain.io.frames import describe_frames, read_frames
+
+    d = describe_frames(path)
+    fr = read_frames(path)
+    peak = np.unravel_index(int(np.argmax(fr)), fr.shape)
+    return [f"frames      {path}: {d['format']}, {d['frames']} frames of {d['shape'][0]} × {d['shape'][1]} "
+            f"({d['dtype']}), compression {', '.join(d['compression']) or 'none'}",
+            "files       " + ", ".join(d["files"][:5]) + (" ..." if len(d["files"]) > 5 else ""),
+            f"max counts  {float(fr.max()):.6g} at (frame, row, column) {tuple(int(v) for v in peak)}",
+            "(angles, monitor and geometry come from a pipeline file: braggstrain inspect FILE.toml "
+            "--reflection NAME)"]
+
+
 def cmd_inspect(args):
-    for line in describe_scan(args.file):
+    from braggstrain.config import load_config
+
+    path = str(args.file)
+    if path.lower().endswith(".toml"):
+        cfg = load_config(path)
+        names = [r["name"] or f"reflection[{i}]" for i, r in enumerate(cfg["reflection"])]
+        if args.reflection is not None:
+            if args.reflection not in names:
+                raise InputError(f"{path}: reflection '{args.reflection}' not found; expected one of {names}")
+            which = [names.index(args.reflection)]
+        else:
+            which = range(len(names))
+        for i in which:
+            for line in describe_reflection(cfg, i):
+                print(line)
+        return 0
+    if _is_scan_file(path):
+        lines = describe_scan(path)
+    else:
+        lines = describe_source(path)
+    for line in lines:
         print(line)
     return 0
+
+
+def _is_scan_file(path):
+    from braggstrain.io.frames import split_source
+
+    p, ds = split_source(path)
+    if ds is not None or not p.is_file() or p.suffix.lower() not in (".h5", ".hdf5", ".nxs", ".hdf"):
+        return False
+    import h5py
+
+    try:
+        with h5py.File(p, "r") as f:
+            fmt = f.attrs.get("format")
+    except OSError:
+        return True  # let the scan reader name the problem
+    fmt = fmt.decode() if isinstance(fmt, bytes) else fmt
+    return fmt == "braggstrain-scan"
 
 
 def _timing_table(timings, wall):
@@ -227,8 +348,11 @@ def build_parser():
     s.add_argument("--out", required=True, help="output folder for scan files, truth.h5 and pipeline.toml")
     s.set_defaults(func=cmd_simulate)
 
-    s = sub.add_parser("inspect", help="describe a scan file, raw and after preparation")
-    s.add_argument("file", help="braggstrain scan file (HDF5)")
+    s = sub.add_parser("inspect", help="describe a scan, raw and after preparation: a scan file, a frames "
+                                       "file/folder/pattern, or a pipeline file and a reflection")
+    s.add_argument("file", help="braggstrain scan file, frames source (HDF5 'file.h5#/path', EDF, CBF, TIFF, "
+                                "folder, glob pattern) or pipeline file (TOML)")
+    s.add_argument("--reflection", default=None, help="with a pipeline file: the reflection's name (default: all)")
     s.set_defaults(func=cmd_inspect)
 
     def add_exec(sp):

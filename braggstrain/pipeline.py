@@ -33,7 +33,7 @@ from braggstrain.errors import BraggStrainError, ConfigError, InputError, Tensor
 from braggstrain.strain.objects import SampleObject
 from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 
-__all__ = ["run_pipeline", "check_options", "PipelineRun", "STAGES"]
+__all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES"]
 
 STAGES = ("prepare", "grid", "phase", "frame", "register", "tensor", "defects", "outputs")
 
@@ -58,6 +58,19 @@ def _check_keys(table, allowed, where, src):
             raise ConfigError(f"{src}: unknown key '{where}.{k}'{hint}; expected one of {sorted(allowed)}")
 
 
+def prepare_options(cfg):
+    """The [prepare] table checked against prepare_scan's options (ConfigError
+    naming the key), lists turned into tuples."""
+    from braggstrain.prepare import scan as prepare
+
+    p = dict(cfg["prepare"])
+    _check_keys(p, _kwargs_of(prepare.prepare_scan, {"scan"}), "prepare", cfg.get("_source", "<pipeline>"))
+    for k in ("bin", "crop", "max_crop", "pad"):
+        if isinstance(p.get(k), list):
+            p[k] = tuple(p[k])
+    return p
+
+
 def check_options(cfg):
     """Validate the stage option tables against the functions they feed.
 
@@ -73,12 +86,7 @@ def check_options(cfg):
 
     src = cfg.get("_source", "<pipeline>")
     out = {}
-    p = dict(cfg["prepare"])
-    _check_keys(p, _kwargs_of(prepare.prepare_scan, {"scan"}), "prepare", src)
-    for k in ("bin", "crop", "max_crop", "pad"):
-        if isinstance(p.get(k), list):
-            p[k] = tuple(p[k])
-    out["prepare"] = p
+    out["prepare"] = prepare_options(cfg)
     ph = dict(cfg["phasing"])
     try:
         out["phasing"] = options_from_config(ph)
@@ -313,6 +321,11 @@ def _scan_for(cfg, i, r, prepare_opts=None):
         scan, _ = sum_repeats(scans, max_shift=float(r.get("repeat_max_shift", 5.0)), saturation=sat)
     else:
         scan = scans[0]
+    from braggstrain.prepare.measured import fit_rocking_step
+
+    rc = scan.rocking_circle
+    fit_rocking_step(scan.rocking_angles, source=scan.extra.get("sources", {}).get(rc, scan.path),
+                     field=f"reflection[{i}].angles.{rc}")  # refused here, before any work
     digest = hash_inputs(scan.frames, scan.mask, scan.monitor, scan.angles, scan.instrument, scan.extra.get("roi"))
     return scan, digest
 

@@ -73,3 +73,29 @@ def small_config(tmp_path):
     p = tmp_path / "small.toml"
     p.write_text(small_toml())
     return p
+
+
+def simulated_cube(peak_counts=1e5, background=0.5, seed=4, hot_pixels=0, gaps=()):
+    """A 250 nm Pt cube at (1 1 1) made by the project's simulator: 48 frames, a
+    64 × 64 signal window on a 150 × 170 detector (55 µm pixels at 0.5 m, 9 keV).
+    Invented numbers, for tests only. Returns (Scan, SimulatedScan)."""
+    import numpy as np
+
+    from braggstrain.geometry.crystal import Crystal
+    from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
+    from braggstrain.io.scans import Scan
+    from braggstrain.simulate import forward as fw
+
+    det = Detector(shape=(150, 170), pixel_size=(55e-6, 55e-6), distance=0.5, direct_beam=(75, 85), gaps=gaps)
+    ins = Diffractometer([Circle("mu", "z+"), Circle("eta", "x+"), Circle("phi", "z+")],
+                         [Circle("nu", "z+"), Circle("delta", "x+")], det, 9.0)
+    cr = Crystal("Pt").oriented_by((1, 1, 1), (0, 0, 1), (1, -1, 0), (1, 0, 0))
+    g = cr.g_sample((1, 1, 1))
+    ang = ins.solve_bragg(g, free=["mu", "eta", "delta"], fixed={"phi": 0.0, "nu": 3.0}, starts=2)
+    step = np.degrees(6e-4 / np.linalg.norm(g))
+    shape = fw.Polyhedron(fw._CUBE_FACES @ cr.U.T, np.full(6, 1250.0))
+    sim = fw.simulate_scan(ins, cr, (1, 1, 1), shape, None, rocking_circle="eta", n_frames=48, step_deg=step,
+                           free_circles=None, bragg_angles=ang, window=(64, 64), peak_counts=peak_counts,
+                           background=background, hot_pixels=hot_pixels, seed=seed)
+    return Scan(frames=sim.frames, angles=sim.angles, rocking_circle="eta", instrument=ins, mask=None,
+                hkl=(1, 1, 1), path=f"cube_{peak_counts:g}.h5"), sim

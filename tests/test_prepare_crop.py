@@ -14,28 +14,13 @@ import numpy as np
 import pytest
 
 from braggstrain.errors import InputError, ScanFileError
-from braggstrain.geometry.crystal import Crystal
-from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
-from braggstrain.io.scans import Scan
 from braggstrain.prepare import scan as pr
-from braggstrain.simulate import forward as fw
+
+from conftest import simulated_cube
 
 
-def _scene(peak_counts, background=0.5, seed=4):
-    """A 250 nm Pt cube at (1 1 1), 48 frames, a 64 × 64 signal window on a 150 × 170 detector."""
-    det = Detector(shape=(150, 170), pixel_size=(55e-6, 55e-6), distance=0.5, direct_beam=(75, 85))
-    ins = Diffractometer([Circle("mu", "z+"), Circle("eta", "x+"), Circle("phi", "z+")],
-                         [Circle("nu", "z+"), Circle("delta", "x+")], det, 9.0)
-    cr = Crystal("Pt").oriented_by((1, 1, 1), (0, 0, 1), (1, -1, 0), (1, 0, 0))
-    g = cr.g_sample((1, 1, 1))
-    ang = ins.solve_bragg(g, free=["mu", "eta", "delta"], fixed={"phi": 0.0, "nu": 3.0}, starts=2)
-    step = np.degrees(6e-4 / np.linalg.norm(g))
-    shape = fw.Polyhedron(fw._CUBE_FACES @ cr.U.T, np.full(6, 1250.0))
-    sim = fw.simulate_scan(ins, cr, (1, 1, 1), shape, None, rocking_circle="eta", n_frames=48, step_deg=step,
-                           free_circles=None, bragg_angles=ang, window=(64, 64), peak_counts=peak_counts,
-                           background=background, hot_pixels=0, seed=seed)
-    return Scan(frames=sim.frames, angles=sim.angles, rocking_circle="eta", instrument=ins, mask=None,
-                hkl=(1, 1, 1), path=f"cube_{peak_counts:g}.h5"), sim
+def _scene(peak_counts):
+    return simulated_cube(peak_counts)
 
 
 @pytest.fixture(scope="module")
