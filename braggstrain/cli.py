@@ -125,6 +125,10 @@ def describe_reflection(cfg, i):
         m = np.asarray(scan.monitor, float)
         lines.append(f"monitor     {m.min():.6g} … {m.max():.6g} (mean {m.mean():.6g}) from {sources.get('monitor')}"
                      + (f"; {int(np.sum(m <= 0))} frame(s) ≤ 0 will be masked" if np.any(m <= 0) else ""))
+    elif scan.extra.get("repeats", {}).get("monitor_scale"):
+        sc = scan.extra["repeats"]["monitor_scale"]
+        lines.append("monitor     applied to each repeat before the sum; mean scale per repeat "
+                     + ", ".join(f"{v:.4g}" for v in sc) + f" ({sources.get('monitor')})")
     else:
         lines.append("monitor     none")
     rc = scan.rocking_circle

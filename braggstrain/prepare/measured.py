@@ -135,11 +135,15 @@ def sum_repeats(scans, *, max_shift=5.0, saturation=None):
     """Sum repeated scans of one reflection after aligning their peaks.
 
     Each scan is divided by its monitor scale (relative to the mean monitor
-    over all scans), then shifted onto the first by the difference of the
+    over all scans), its hot pixels masked (:func:`~braggstrain.prepare.scan.find_hot_pixels`
+    with the default threshold), then shifted onto the first by the difference of the
     peaks' centres of mass (:func:`peak_center_of_mass`; linear
     interpolation, scipy.ndimage.shift with order 1, which keeps the total
-    counts); the shifted scans are summed. A voxel is masked in the sum when
-    it is masked (or saturated, or shifted in from outside) in any scan.
+    counts; a voxel that received measured counts from less than half its
+    volume, e.g. shifted in from outside, is masked, otherwise rescaled by
+    the measured fraction, as in binning); the shifted scans are summed. A
+    voxel is masked in the sum when it is masked (or saturated, or a hot
+    pixel) in any scan.
 
     Parameters
     ----------
@@ -164,6 +168,8 @@ def sum_repeats(scans, *, max_shift=5.0, saturation=None):
     from dataclasses import replace
 
     from scipy import ndimage
+
+    from braggstrain.prepare.scan import find_hot_pixels
 
     ref = scans[0]
     shape = np.asarray(ref.frames).shape
@@ -197,20 +203,26 @@ def sum_repeats(scans, *, max_shift=5.0, saturation=None):
             d /= scale[:, None, None]
             m[bad] = True
             scales.append(float(np.mean(scale[mon > 0])))
+        # hot pixels (the local median test of the preparation) would outshine the peak
+        hot, _ = find_hot_pixels(d, m)
+        if len(hot):
+            m[:, hot[:, 0], hot[:, 1]] = True
         c = peak_center_of_mass(d, m)
         if c_ref is None:
             c_ref = c
         sh = c_ref - c
         if np.any(np.abs(sh) > float(max_shift)):
             raise ScanFileError(s.path, "frames", f"repeat {k}: peak moved by (frames, rows, columns) "
-                                                  f"{tuple(np.round(-sh, 2))} from the first scan's; expected at "
+                                                  f"{tuple(round(float(v), 2) for v in -sh)} from the first scan's; expected at "
                                                   f"most {max_shift:g} on every axis (repeat_max_shift)")
         shifts.append(sh)
         if np.any(sh != 0):
-            d = ndimage.shift(np.where(m, 0.0, d), sh, order=1, mode="constant", cval=0.0)
-            outside = ndimage.shift(np.zeros(shape, np.float32), sh, order=0, mode="constant", cval=1.0) > 0
-            mm = ndimage.shift(m.astype(np.float32), sh, order=1, mode="constant", cval=1.0) > 0
-            m = mm | outside
+            # linear interpolation of the measured counts, rescaled by the measured weight that
+            # reached each voxel; less than half measured (or shifted in from outside) is masked
+            num = ndimage.shift(np.where(m, 0.0, d), sh, order=1, mode="grid-constant", cval=0.0)
+            w = ndimage.shift((~m).astype(np.float64), sh, order=1, mode="grid-constant", cval=0.0)
+            m = w < 0.5
+            d = np.where(m, 0.0, num / np.maximum(w, 0.5))
         total += np.where(m, 0.0, d)
         mask |= m
     total[mask] = 0

@@ -86,12 +86,17 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
         raise ConfigError(f"{src}: key 'simulate.free_circles': expected the circles solved for the Bragg condition")
     written = []
     refl_meta = {}
+    for r in cfg["reflection"]:  # SPEC files are appended scan by scan: start them afresh
+        for sp in (r["spec"] if isinstance(r["spec"], list) else [r["spec"]]):
+            if sp is not None and not Path(sp["file"]).is_absolute() and ".." not in Path(sp["file"]).parts:
+                (out / sp["file"]).unlink(missing_ok=True)
     rng = np.random.default_rng(sim["seed"])
     for i, r in enumerate(cfg["reflection"]):
         name = r["name"] or "refl_{}{}{}".format(*r["hkl"])
-        if r["scan"] is None:
-            raise ConfigError(f"{src}: key 'reflection[{i}].scan': expected the scan file to write")
-        rel = Path(r["scan"])
+        if r["scan"] is None and r["frames"] is None:
+            raise ConfigError(f"{src}: key 'reflection[{i}].scan': expected the scan file to write (or 'frames' "
+                              "in a beamline form)")
+        rel = Path(r["scan"] if r["scan"] is not None else ".")
         if rel.is_absolute() or ".." in rel.parts:
             raise ConfigError(f"{src}: key 'reflection[{i}].scan': a simulated scan must stay inside the output "
                               f"folder; expected a relative path without '..', got {r['scan']!r}")
@@ -107,16 +112,30 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
         dq_per_deg = np.linalg.norm(M[:, 0]) / 0.01
         step = sim["rocking_q_step"] / dq_per_deg
         seed = int(rng.integers(0, 2**31 - 1))
-        scan = fw.simulate_scan(inst, crystal, r["hkl"], shape, field_, rocking_circle=rock,
-                                n_frames=sim["frames"], step_deg=step, free_circles=free,
-                                fixed_angles=sim["fixed_angles"], peak_pixel=sim["peak_pixel"],
-                                window=tuple(sim["window"]), peak_counts=sim["peak_counts"],
-                                background=sim["background"], hot_pixels=sim["hot_pixels"],
-                                supersample=sim["supersample"], seed=seed, bragg_angles=ang)
-        path = out / rel
-        write_scan(path, scan.frames, scan.angles, rock, inst, mask=scan.mask, hkl=r["hkl"],
-                   material=crystal.name)
-        written.append(path)
+        n_rep = len(r["frames"]) if isinstance(r["frames"], list) else 1
+        sims = []
+        for k in range(n_rep):  # repeated scans: independent, peak_counts / n each, drifting k rows
+            scan = fw.simulate_scan(inst, crystal, r["hkl"], shape, field_, rocking_circle=rock,
+                                    n_frames=sim["frames"], step_deg=step, free_circles=free,
+                                    fixed_angles=sim["fixed_angles"], peak_pixel=sim["peak_pixel"],
+                                    window=tuple(sim["window"]), peak_counts=sim["peak_counts"] / n_rep,
+                                    background=sim["background"], hot_pixels=sim["hot_pixels"],
+                                    supersample=sim["supersample"], seed=seed + k, bragg_angles=ang)
+            if k:
+                scan.frames = np.roll(scan.frames, k, axis=1)
+            sims.append(scan)
+        scan = sims[0]
+        if r["scan"] is not None:
+            path = out / rel
+            write_scan(path, scan.frames, scan.angles, rock, inst, mask=scan.mask, hkl=r["hkl"],
+                       material=crystal.name)
+            written.append(path)
+        else:
+            from braggstrain.simulate.beamline import write_reflection_files
+
+            files = write_reflection_files(out, r, i, sims, rock, np.random.default_rng(seed), src=src)
+            path = files[0]
+            written.append(path)
         refl_meta[name] = {"hkl": list(r["hkl"]), "g_sample": g.tolist(),
                            "angles": {k: (np.asarray(v).tolist()) for k, v in scan.angles.items()},
                            "bragg_angles": ang, "linear_map": scan.linear_map.tolist(),
