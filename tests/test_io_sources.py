@@ -119,6 +119,7 @@ def _write_hdf5_beamline(cube, raw, monitor_name="monitor", monitor=None):
         f[monitor_name] = cube["monitor"] if monitor is None else monitor
         f["monitor_short"] = cube["monitor"][:-1]
         f["energy"] = 9.0
+        f["distance"] = 0.5
 
 
 def test_compressed_hdf5_with_motors_and_monitor_in_a_second_file(tmp_path, cube):
@@ -126,23 +127,25 @@ def test_compressed_hdf5_with_motors_and_monitor_in_a_second_file(tmp_path, cube
     angles = ", ".join(f'{c} = "raw/positions.h5#/positions/{c}"' for c in CIRCLES)
     scan, prep, _ = _via_pipeline(tmp_path, f'frames = "raw/master.h5#/entry/data/data"\nangles = {{ {angles} }}\n'
                                             f'monitor = "raw/positions.h5#/monitor"\n'
-                                            f'energy_kev = "raw/positions.h5#/energy"')
+                                            f'energy_kev = "raw/positions.h5#/energy"\n'
+                                            f'distance_m = "raw/positions.h5#/distance"')
+    assert scan.extra["sources"]["distance_m"].endswith("positions.h5#/distance")
     assert np.array_equal(scan.frames, cube["scan"].frames)
     _same(prep, _plain(cube, cube["monitor"]), exact=False)
     np.testing.assert_allclose(prep.options["monitor_scale"], cube["monitor"] / cube["monitor"].mean(), rtol=1e-12)
 
 
-def _spec_file(path, cube, number=42, monitor=None):
+def _spec_file(path, cube, number=42, monitor=None, rocked="eta"):
     """A SPEC file in the standard layout; eta scanned, the other motors in the header."""
     s = cube["scan"]
     mon = cube["monitor"] if monitor is None else monitor
     eta = [float(v) for v in s.angles["eta"]]
     mon = [float(v) for v in mon]
-    lines = ["#F " + path.name, "#E 1764662400", "#D Wed Dec 02 08:00:00 2026", "#O0 mu  eta  phi  nu", "#O1 delta",
-             "", f"#S {number}  ascan  eta {eta[0]!r} {eta[-1]!r} {len(eta) - 1} 1",
+    lines = ["#F " + path.name, "#E 1764662400", "#D Wed Dec 02 08:00:00 2026", f"#O0 mu  {rocked}  phi  nu", "#O1 delta",
+             "", f"#S {number}  ascan  {rocked} {eta[0]!r} {eta[-1]!r} {len(eta) - 1} 1",
              "#D Wed Dec 02 08:00:00 2026", "#T 1  (Seconds)",
              "#P0 " + " ".join(repr(float(np.mean(s.angles[c]))) for c in ("mu", "eta", "phi", "nu")),
-             "#P1 " + repr(float(s.angles["delta"])), "#N 4", "#L eta  mon  Seconds  det"]
+             "#P1 " + repr(float(s.angles["delta"])), "#N 4", f"#L {rocked}  mon  Seconds  det"]
     for k in range(len(eta)):
         lines.append(f"{eta[k]!r} {mon[k]!r} 1 {int(s.frames[k].sum())}")
     path.write_text("\n".join(lines) + "\n\n")
@@ -153,8 +156,9 @@ def test_edf_frames_with_a_spec_file(tmp_path, cube):
     (tmp_path / "edf").mkdir()
     for k in range(s.frames.shape[0]):  # frame numbers 0 … 47: natural order, not string order
         fabio.edfimage.EdfImage(data=s.frames[k].astype(np.int32)).write(str(tmp_path / "edf" / f"img_{k}.edf"))
-    _spec_file(tmp_path / "run.spec", cube)
-    scan, prep, _ = _via_pipeline(tmp_path, 'frames = "edf/img_*.edf"\nspec = { file = "run.spec", scan = 42 }\n'
+    _spec_file(tmp_path / "run.spec", cube, rocked="th")  # the circle eta is the motor th at this beamline
+    scan, prep, _ = _via_pipeline(tmp_path, 'frames = "edf/img_*.edf"\n'
+                                            'spec = { file = "run.spec", scan = 42, motors = { eta = "th" } }\n'
                                             'monitor = "mon"')
     assert np.array_equal(scan.frames, s.frames)
     # xrayutilities' SPEC reader holds the data columns as float32 (7 significant

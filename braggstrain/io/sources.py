@@ -85,7 +85,7 @@ def read_value(spec, base_dir=None, *, key="value", n_frames=None):
                 raise ScanFileError(path, ds, f"expected numbers for '{key}' ({e})") from None
         spec = f"{path}#{ds}"
         if a.ndim > 1:
-            a = a.reshape(-1) if a.size in (1, n_frames or -1) else a
+            a = np.squeeze(a)  # e.g. (F, 1) as some writers store a column
         if a.ndim > 1:
             raise ScanFileError(path, ds, f"expected a scalar or a 1-D array for '{key}', got shape {a.shape}")
     if not np.all(np.isfinite(a)):
