@@ -74,7 +74,7 @@ def main(argv=None):
         raw = tuple(int(b - a) for a, b in prep.crop)
         line = (f"peak {peak:.0e} counts, background {args.background:g}: raw crop {raw[0]} × {raw[1]} × {raw[2]}, "
                 f"prepared {prep.shape}, σ {np.round(prep.oversampling, 2).tolist()}")
-        ch = prep.crop_choice
+        ch = getattr(prep, "crop_choice", {})
         if "background" in ch:  # the crop's own report (absent before choose_crop existed)
             line += (f", background {ch['background']:.3f}, signal extent {tuple(ch['signal_extent'])}, "
                      f"limited by {ch['limited_by']}")

@@ -14,7 +14,6 @@ the same, to float precision after monitor scaling.
 
 import warnings
 from dataclasses import replace
-from pathlib import Path
 
 import fabio.edfimage
 import fabio.tifimage
@@ -183,6 +182,13 @@ def test_tiff_frames_of_a_detector_region(tmp_path, cube):
     _same(prep, full, exact=True, offset=(r0, c0))
     # the geometry of every pixel is the full detector's: xrayutilities' per-pixel Q agree
     np.testing.assert_allclose(pr.exact_q(prep), pr.exact_q(full), rtol=1e-9)
+    # the same region given once for all reflections, in the detector table
+    p = tmp_path / "detector_roi.toml"
+    p.write_text(HEAD.format(reflection=f'frames = "tif"\nangles = {{ {angles} }}').replace(
+        "gaps = [[1, 100, 103]]", f"gaps = [[1, 100, 103]]\nroi = [{r0}, {c0}]"))
+    cfg = load_config(p)
+    scan2, _ = _scan_for(cfg, 0, cfg["reflection"][0], {})
+    assert scan2.instrument.detector == scan.instrument.detector
 
 
 BAD = [
