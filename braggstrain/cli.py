@@ -137,6 +137,8 @@ def describe_reflection(cfg, i):
     lines.append(f"rocking     {rc} step {step:.6g}° (straight-line fit); read-back deviation rms "
                  f"{np.sqrt(np.mean(dev ** 2)):.3g}°, largest {dev[k]:+.3g}° at frame {k} "
                  f"({abs(dev[k] / step):.1%} of the step)")
+    if abs(dev[k] / step) > 0.01:
+        lines.append("  deviation per frame, % of the step: " + " ".join(f"{100 * v / step:+.1f}" for v in dev))
     fr = scan.frames
     lines.append(f"max counts  {float(np.max(fr)):.6g} (raw: hot pixels not yet removed)")
     try:
