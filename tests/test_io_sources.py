@@ -12,6 +12,7 @@ prepared data must equal the plain route's: bit for bit where the counts are
 the same, to float precision after monitor scaling.
 """
 
+import re
 import warnings
 from dataclasses import replace
 
@@ -229,7 +230,7 @@ def test_bad_input_is_named_with_exit_code_2(tmp_path, cube, capsys, case, refle
     assert main(["inspect", str(p), "--reflection", "r"]) == 2
     err = capsys.readouterr().err
     for pattern in expect:
-        assert __import__("re").search(pattern, err), (pattern, err)
+        assert re.search(pattern, err), (pattern, err)
     assert (out / "earlier.txt").read_text() == "kept"
 
 
@@ -244,6 +245,16 @@ def test_inspect_a_pipeline_reflection_and_a_frames_file(tmp_path, cube, capsys)
     for s in ("48 frames of 150 × 170", "compression bitshuffle", "(external link)", "run.spec scan 42",
               "monitor", "step", "read-back deviation", "crop choice (given)"):
         assert s in text, (s, text)
+    # read-back jitter of 6 % of the step at frame 3 (the typed angles override the SPEC file's)
+    eta = [float(v) for v in cube["scan"].angles["eta"]]
+    eta[3] += 0.06 * float(np.mean(np.diff(eta)))
+    p.write_text(HEAD.format(reflection='frames = "raw/master.h5#/entry/data/data"\n'
+                                        'spec = { file = "run.spec", scan = 42 }\nmonitor = "mon"\n'
+                                        f'angles = {{ eta = {eta!r} }}'))
+    assert main(["inspect", str(p), "--reflection", "r"]) == 0
+    text = capsys.readouterr().out
+    assert re.search(r"largest \+[0-9.e-]+° at frame 3 \(5\.\d% of the step\)", text), text
+    assert "deviation per frame, % of the step: " in text
     assert main(["inspect", str(tmp_path / "raw" / "master.h5") + "#/entry/data/data"]) == 0
     text = capsys.readouterr().out
     assert "HDF5" in text and "bitshuffle" in text and "48 frames" in text
