@@ -542,7 +542,13 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
 
     Parameters
     ----------
-    scan : braggstrain.scanio.Scan, or the path of a scan file
+    scan : braggstrain.scanio.Scan, or the path of a scan file. With a
+        ``monitor`` (one value per frame), the counts are divided by
+        monitor / mean(monitor) after the dark is removed (saturation is
+        tested on the raw counts) and frames with a zero or negative monitor
+        are masked (:func:`braggstrain.prepare.measured.monitor_scale`).
+        The rocked circle's read-back angles may jitter by up to 10 % of
+        the step (:func:`braggstrain.prepare.measured.fit_rocking_step`).
 
     Returns
     -------
