@@ -193,6 +193,7 @@ def test_tiff_frames_of_a_detector_region(tmp_path, cube):
 
 
 BAD = [
+    ("empty repeats", "frames = []", "angles", [r"reflection\[0\]\.frames", "expected a frames source"]),
     ("missing dataset", 'frames = "raw/master.h5#/entry/data/nothing"', None,
      [r"master\.h5", "/entry/data/nothing", "dataset not found"]),
     ("SPEC scan", 'frames = "raw/master.h5#/entry/data/data"\nspec = { file = "run.spec", scan = 43 }', None,

@@ -221,6 +221,9 @@ def reflection_scan(entry, instrument, *, base_dir, key, source="<pipeline>", de
 
     frames_list = _as_list(entry["frames"])
     n_rep = len(frames_list)
+    if n_rep == 0 or not all(isinstance(f, str) for f in frames_list):
+        raise ConfigError(f"{source}: key '{key}.frames': value {entry['frames']!r}; expected a frames source "
+                          "(\"file.h5#/path\", an image file, folder or pattern) or a list of them")
     specs = entry.get("spec")
     specs = _as_list(specs) if specs is not None else [None] * n_rep
     if len(specs) != n_rep:
