@@ -236,8 +236,9 @@ def _summary(res):
         lines.append(f"mean lattice parameter from the peak positions: {ml['lattice_parameter']:.5f} Å")
     for d in r["dislocations"]:
         b = " ".join(f"{v:+.2f}" for v in np.atleast_1d(d.burgers)) if d.burgers is not None else "unknown"
+        c = ", ".join(f"{v / 10:.0f}" for v in d.center)
         lines.append(f"dislocation: b = [{b}], {d.character_deg:.0f}° character, length {d.length / 10:.0f} nm, "
-                     f"seen in {len(d.visible_in)} reflections")
+                     f"centre ({c}) nm, seen in {len(d.visible_in)} reflections")
     if not r["dislocations"]:
         lines.append("no dislocations found")
     for k, v in res["paths"].items():

@@ -38,9 +38,12 @@ __all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "S
 STAGES = ("prepare", "grid", "phase", "frame", "register", "tensor", "defects", "outputs")
 
 # Keys of the option tables that are the pipeline's own (not a stage function's).
-_FRAME_OWN = {"route", "voxel_nm"}
+_FRAME_OWN = {"route", "voxel_nm", "origin_nm"}
 _TENSOR_OWN = {"min_overlap", "voxel_nm", "upsample", "twin_tolerance"}
 _DEFECTS_OWN = {"enabled"}
+# Part of the defects checkpoint's key: lines checkpointed before their points
+# were put on the common grid (origin included, issue 17) are not reused.
+_DEFECTS_POINTS = "points: positions on the common grid"
 _OUTPUT_KEYS = {"vtk": bool, "figures": bool, "report": bool}
 
 
@@ -106,6 +109,13 @@ def check_options(cfg):
                                                                   "support", "voxel_size", "shape", "origin"})
     allowed |= {"grid_" + k for k in _kwargs_of(regrid.regrid, {"prepared"})}
     _check_keys(fr, allowed, "frame", src)
+    if "origin_nm" in fr:
+        v = fr["origin_nm"]
+        ok = (isinstance(v, list) and len(v) == 3
+              and all(isinstance(x, (int, float)) and not isinstance(x, bool) and np.isfinite(x) for x in v))
+        if not ok:
+            raise ConfigError(f"{src}: key 'frame.origin_nm': value {v!r}; expected three numbers in nm (the "
+                              f"sample-frame position of the grid's centre voxel)")
     out["frame"] = fr
     te = dict(cfg["tensor"])
     allowed = _TENSOR_OWN | _kwargs_of(tensor.strain_tensor, {"objects", "g_vectors", "voxel_size", "support",
@@ -397,10 +407,13 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     fr_opts = dict(opts["frame"])
     route = fr_opts.pop("route", frm.DEFAULT_ROUTE)
     voxel_nm = fr_opts.pop("voxel_nm", None)
+    origin_nm = fr_opts.pop("origin_nm", None)
     grid_opts = {k[5:]: v for k, v in fr_opts.items() if k.startswith("grid_")}
     fr_opts = {k: v for k, v in fr_opts.items() if not k.startswith("grid_")}
     if voxel_nm is not None:
         fr_opts["voxel_size"] = float(voxel_nm) * 10.0
+    if origin_nm is not None:
+        fr_opts["origin"] = np.asarray(origin_nm, float) * 10.0
 
     per_refl = []
     with _executor(scheduler, workers) as (executor, where):
@@ -475,7 +488,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             rt = {"objects": [_sample_to_tree(o) for o in reg], "report": _plain(report)}
             run.save("register", "all", k_reg, rt)
     registered = [_tree_to_sample(t) for t in rt["objects"]]
-    common_vs = registered[0].voxel_size
+    grid = registered[0].grid  # the common grid: every position below is on it
+    common_vs = grid.voxel_size
     G = np.array([o.g_vector for o in registered])
     labels = [p["name"] for p in per_refl]
 
@@ -513,14 +527,14 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     # -- defects
     de_opts = dict(opts["defects"])
     enabled = de_opts.pop("enabled", True)
-    k_def = hash_inputs("defects", k_reg, de_opts, enabled)
+    k_def = hash_inputs("defects", k_reg, de_opts, enabled, _DEFECTS_POINTS)
     dislocations = []
     with run.timed("defects"):
         if enabled:
             dt = run.cached("defects", "all", k_def)
             if dt is None:
                 lines = dfx.find_dislocations([o.obj for o in registered], [o.hkl for o in registered], G,
-                                              common_vs, tfield.support, crystal, **de_opts)
+                                              support=tfield.support, crystal=crystal, grid=grid, **de_opts)
                 dt = {"lines": [_disl_to_tree(d) for d in lines]}
                 run.save("defects", "all", k_def, dt)
             dislocations = [_tree_to_dislocation(d) for d in dt["lines"]]
@@ -628,7 +642,8 @@ def _versions():
 def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, mean_lattice, run, seed, runs,
             keep, route):
     """The results bundle the outputs stage writes (see braggstrain.outputs)."""
-    vs = registered[0].voxel_size
+    grid = registered[0].grid
+    vs = grid.voxel_size
     support = tf.support
     amps = []
     refl = []
@@ -654,11 +669,11 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
             "scan": p["scan"], "max_counts": float(pr.max_counts), "oversampling": np.asarray(pr.oversampling, float),
             "runs": runs, "kept": len(t["kept"]), "run_metrics": t["runs"], "final_metrics": final,
             "prtf": t["prtf"], "history": t["history"], "amplitude": a, "phase": ph, "displacement": disp,
-            "support": o.support, "shift_vox": np.asarray(meta_reg.get("shift_vox", np.zeros(3)), float),
+            "support": o.support, "shift_vox": np.asarray(meta_reg.get("shift_voxels", np.zeros(3)), float),
             "twin": bool(meta_reg.get("twin", False)), "route": route,
         })
     return {
-        "grid": {"voxel_size": vs, "origin": registered[0].origin, "shape": tuple(support.shape)},
+        "grid": grid.to_dict(),
         "support": support, "amplitude": np.mean(amps, axis=0).astype(np.float32),
         "reflections": refl, "tensor": tf, "dislocations": dislocations,
         "registration": reg_report, "mean_lattice": mean_lattice,

@@ -141,7 +141,7 @@ G = np.array([o.g_vector for o in reg])
 tf = tensor.strain_tensor([o.obj for o in reg], G, reg[0].voxel_size,
                           support=np.logical_and.reduce([o.support for o in reg]), labels=[str(h) for h in hkls])
 print("condition number of the G set:", round(tf.condition_number, 2))
-lines = defects.find_dislocations([o.obj for o in reg], hkls, G, reg[0].voxel_size, tf.support, crystal)
+lines = defects.find_dislocations(reg, support=tf.support, crystal=crystal)  # the points on reg[0].grid
 for d in lines:
     print("line: b =", d.burgers, f"character {d.character_deg:.0f}°, length {d.length / 10:.0f} nm, seen in", d.visible_in)
 """)

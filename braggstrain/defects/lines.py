@@ -29,7 +29,8 @@ The stage works in four steps:
 Outputs: :class:`Dislocation` records, a CSV/JSON table
 (:func:`write_dislocation_table`), an HDF5 group
 (:func:`write_dislocations_h5`, read back by :func:`read_dislocations_h5`) and
-a figure (:func:`braggstrain.defects_plot.plot_dislocations`).
+a figure (:func:`braggstrain.report.dislocations.plot_dislocations`). Line points
+are sample-frame positions on the objects' grid (:class:`braggstrain.strain.grid.Grid`).
 """
 
 from __future__ import annotations
@@ -47,6 +48,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from braggstrain.errors import InputError
+from braggstrain.strain.grid import Grid
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
@@ -62,7 +64,13 @@ __all__ = [
     "write_dislocation_table",
     "write_dislocations_h5",
     "read_dislocations_h5",
+    "POINTS_FRAME",
 ]
+
+
+#: What the line points are, written with every table and HDF5 group of lines.
+POINTS_FRAME = ("Å, sample-frame x y z on the results' grid: the voxel at index i lies at "
+                "origin + (i − n//2)·voxel_size, the positions of /grid/x, y, z")
 
 
 class BurgersWarning(UserWarning):
@@ -80,9 +88,11 @@ class Dislocation:
     Attributes
     ----------
     points : (M, 3) float64 ndarray
-        Points along the line, Å, sample-frame x, y, z, origin at the array
-        centre (index n//2 on each axis). Consecutive points are about one
-        voxel apart; for a closed loop the last point joins the first.
+        Points along the line: sample-frame positions x, y, z in Å on the
+        objects' grid (:class:`~braggstrain.strain.grid.Grid`: the voxel at
+        index i lies at origin + (i − n//2)·voxel_size, the results file's
+        ``/grid/x, y, z``). Consecutive points are about one voxel apart;
+        for a closed loop the last point joins the first.
     directions : (M, 3) float64 ndarray
         Unit line direction ξ at each point (the order of ``points``).
     length : float
@@ -696,7 +706,7 @@ def _vote(values):
 # the stage
 # --------------------------------------------------------------------------
 
-def _gather(objects, hkls, g_vectors, voxel_size, support):
+def _gather(objects, hkls, g_vectors, voxel_size, support, grid):
     if isinstance(objects, (np.ndarray, SampleObject)):
         objects = [objects]
     objects = list(objects)
@@ -744,13 +754,22 @@ def _gather(objects, hkls, g_vectors, voxel_size, support):
     if G.shape != (len(arrays), 3) or not np.all(np.isfinite(G)):
         raise InputError(f"g_vectors: expected {len(arrays)} vectors of 3 finite components "
                          f"(Å⁻¹, sample frame), got shape {np.shape(g_vectors)}")
-    if voxel_size is None:
-        if not samples:
-            raise InputError("voxel_size: expected the voxel edge along x, y, z in Å")
-        voxel_size = samples[0].voxel_size
-    vs = np.broadcast_to(np.asarray(voxel_size, float), (3,)).copy()
-    if not np.all(np.isfinite(vs)) or np.any(vs <= 0):
-        raise InputError(f"voxel_size: expected three positive lengths in Å, got {voxel_size!r}")
+    if grid is not None:
+        grid = Grid.of(grid, shape)
+        if samples and not grid.same_as(samples[0].grid):
+            raise InputError(f"grid: {grid} differs from the objects' own {samples[0].grid}")
+    elif samples:
+        grid = samples[0].grid
+    if voxel_size is not None:
+        vs = np.broadcast_to(np.asarray(voxel_size, float), (3,)).copy()
+        if not np.all(np.isfinite(vs)) or np.any(vs <= 0):
+            raise InputError(f"voxel_size: expected three positive lengths in Å, got {voxel_size!r}")
+        if grid is None:
+            grid = Grid(shape, vs)  # plain arrays: positions relative to the voxel at index n//2
+        elif not np.allclose(vs, grid.voxel_size, rtol=1e-6):
+            raise InputError(f"voxel_size {tuple(vs)} Å differs from the grid's {tuple(grid.voxel_size)} Å")
+    if grid is None:
+        raise InputError("grid: expected the objects' Grid (or SampleObjects, or at least voxel_size)")
     if support is None:
         if not samples:
             raise InputError("support: expected a bool mask of the crystal on the objects' grid")
@@ -759,7 +778,7 @@ def _gather(objects, hkls, g_vectors, voxel_size, support):
             support |= o.support
     support = _as_mask(support, shape, "support")
     hk = [tuple(int(v) for v in h) for h in np.rint(H)]
-    return arrays, hk, G, vs, support
+    return arrays, hk, G, grid, support
 
 
 def _check_registered(arrays, support):
@@ -789,7 +808,7 @@ def _check_registered(arrays, support):
 
 
 def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, support=None, crystal=None, *,
-                      amplitude_threshold=0.1, support_dilation=2, ring_radii=(2.0, 3.0, 4.0),
+                      grid=None, amplitude_threshold=0.1, support_dilation=2, ring_radii=(2.0, 3.0, 4.0),
                       min_length=4.0, smoothing=1.5):
     """Dislocation lines of a crystal from the phase vortices of its reflections.
 
@@ -797,7 +816,7 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
     ----------
     objects : sequence of complex ndarrays or SampleObjects
         One object per reflection, all on one common sample-frame grid (axes
-        x, y, z; origin at index n//2).
+        x, y, z).
     hkls : (J, 3) ints
         Miller indices of the reflections (taken from SampleObject.hkl if None).
     g_vectors : (J, 3) floats
@@ -805,13 +824,19 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
         hkls they fix the orientation U (taken from SampleObject.g_vector if
         None).
     voxel_size : float or 3 floats
-        Voxel edge along x, y, z, Å.
+        Voxel edge along x, y, z, Å (taken from ``grid`` or the
+        SampleObjects if None).
     support : bool ndarray
         The crystal on the common grid (union of the SampleObjects' supports
         if None).
     crystal : braggstrain.crystal.Crystal
         The lattice and its translations and slip planes; its own orientation
         is not used.
+    grid : Grid, optional
+        The common grid (:class:`~braggstrain.strain.grid.Grid`), whose
+        positions the line points are given in; default the SampleObjects'
+        grid, or for plain arrays a grid of ``voxel_size`` with origin zero
+        (positions relative to the voxel at index n//2).
     amplitude_threshold : float
         Phases are trusted where the amplitude is at least this fraction of
         the median amplitude in the support (see :func:`vortex_map`).
@@ -841,7 +866,8 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
     """
     if crystal is None:
         raise InputError("crystal: expected a braggstrain.crystal.Crystal (lattice and its translations)")
-    arrays, hk, G, vs, support = _gather(objects, hkls, g_vectors, voxel_size, support)
+    arrays, hk, G, grid, support = _gather(objects, hkls, g_vectors, voxel_size, support, grid)
+    vs = grid.voxel_size
     _check_registered(arrays, support)
     U = orientation_from_reflections(crystal, hk, G)
     shape = arrays[0].shape
@@ -867,7 +893,6 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
         return []
 
     depth = ndimage.distance_transform_edt(support, sampling=vs)
-    center_idx = np.array([n // 2 for n in shape], float)
     vmean = float(np.exp(np.log(vs).mean()))
     labels, nlab = ndimage.label(ndimage.binary_dilation(cells, structure=np.ones((3, 3, 3), bool)),
                                  structure=np.ones((3, 3, 3), bool))
@@ -880,11 +905,11 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
             if len(path) < 2:
                 continue
             path = _smooth(path, closed, smoothing)
-            pts_A = (path - center_idx) * vs
+            pts_A = grid.position(path)
             if closed and len(path) < 8:
                 continue
             pts_A = _orient(pts_A, closed)
-            path = pts_A / vs + center_idx
+            path = grid.index(pts_A)
             length = _path_length(pts_A, closed)
             if length < min_length * vmean:
                 continue
@@ -1075,7 +1100,7 @@ def write_dislocation_table(lines, path, format=None):
     if fmt == "json":
         doc = {
             "content": "braggstrain dislocation lines",
-            "units": {"points_A": "Å, sample frame x y z, origin at the array centre",
+            "units": {"points_A": POINTS_FRAME,
                       "burgers_lattice": "lattice coordinates of the conventional cell",
                       "burgers_sample_A": "Å, sample frame", "length_A": "Å", "character_deg": "degrees"},
             "convention": "phase of reflection j gains 2π n_j = −G_j·b right-handed about ξ; h_j·b = −n_j",
@@ -1131,7 +1156,8 @@ def write_dislocations_h5(group, lines):
     for name in [k for k in group.keys() if k.startswith("line_")]:
         del group[name]
     group.attrs["count"] = len(lines)
-    group.attrs["units"] = "points: Å, sample frame x y z, origin at the array centre; burgers: lattice coordinates"
+    group.attrs["units"] = "points: Å; burgers: lattice coordinates"
+    group.attrs["points_frame"] = POINTS_FRAME
     group.attrs["convention"] = "h_j·b = −n_j, n_j the phase winding right-handed about ξ"
     for k, (d, r) in enumerate(zip(lines, recs)):
         g = group.create_group(f"line_{k + 1:03d}")

@@ -19,9 +19,11 @@ Figures are made by :mod:`braggstrain.figures`, the HTML page by
 
 Conventions (DESIGN.md): grid arrays have axes 0, 1, 2 along sample-frame
 x, y, z; the grid's ``origin`` is the sample-frame position (Å) of the voxel
-at index n//2 on each axis; lengths in Å, angles in radians inside the file
-unless an attribute says otherwise; strain is dimensionless, tensile
-positive.
+at index n//2 on each axis, and every position written (``/grid/x, y, z``,
+the dislocation lines, the tables, the VTK files) comes from that one grid
+(:class:`braggstrain.strain.grid.Grid`); lengths in Å, angles in radians
+inside the file unless an attribute says otherwise; strain is
+dimensionless, tensile positive.
 """
 
 from __future__ import annotations
@@ -37,6 +39,7 @@ import numpy as np
 
 from braggstrain.errors import BraggStrainError, InputError
 from braggstrain.io.scans import atomic_path
+from braggstrain.strain.grid import Grid
 
 __all__ = [
     "Results",
@@ -607,9 +610,9 @@ def write_results(path, results):
 
     r = check_results(results)
     path = Path(path)
-    grid = r["grid"]
-    shape = grid["shape"]
-    vs = grid["voxel_size"]
+    grid = Grid.of(r["grid"])
+    shape = grid.shape
+    vs = grid.voxel_size
     tf = r["tensor"]
     with atomic_path(path) as tmp:
         with h5py.File(tmp, "w") as f:
@@ -622,13 +625,14 @@ def write_results(path, results):
 
             g = f.create_group("grid")
             g.attrs["voxel_size"] = vs
-            g.attrs["origin"] = grid["origin"]
+            g.attrs["origin"] = grid.origin
             g.attrs["shape"] = np.asarray(shape, np.int64)
             g.attrs["units"] = "Å"
             g.attrs["description"] = ("voxel_size: voxel edge along x, y, z; origin: sample-frame position of "
-                                      "the voxel at index n//2 on each axis")
-            for i, ax in enumerate("xyz"):
-                coord = grid["origin"][i] + (np.arange(shape[i]) - shape[i] // 2) * vs[i]
+                                      "the voxel at index n//2 on each axis; the voxel at index i lies at "
+                                      "origin + (i − n//2)·voxel_size (x, y, z below), and every position in "
+                                      "this file (dislocation points, reference_position) is on this grid")
+            for i, (ax, coord) in enumerate(zip("xyz", grid.axes)):
                 _dataset(g, ax, coord, "Å", ax, f"sample-frame {ax} of the voxel centres along axis {i}",
                          dtype=np.float64, compress=False)
 
@@ -667,6 +671,8 @@ def write_results(path, results):
             t.attrs["labels"] = [str(s) for s in tf.labels]
             t.attrs["condition_number"] = float(tf.condition_number)
             t.attrs["reference_voxel"] = np.asarray(tf.reference, np.int64)
+            t.attrs["reference_position"] = grid.position(np.asarray(tf.reference, float))
+            t.attrs["reference_position_units"] = "Å, sample frame (on /grid): where the displacement is zero"
             t.attrs["outlier"] = "" if tf.outlier is None else str(tf.outlier)
             t.attrs["displacement_gradient"] = ("not stored: D = strain + W(rotation), W the antisymmetric "
                                                 "tensor of the rotation vector")
@@ -719,7 +725,9 @@ def write_results(path, results):
 
 
 _LINE_UNITS = {
-    "points": ("Å", "point, component (x, y, z)", "points along the line, sample frame, origin at index n//2"),
+    "points": ("Å", "point, component (x, y, z)",
+               "points along the line: sample-frame positions on /grid (the voxel at index i lies at "
+               "origin + (i − n//2)·voxel_size)"),
     "directions": ("1 (unit vectors)", "point, component (x, y, z)", "unit line direction ξ at each point"),
     "local_character_deg": ("degrees", "point", "angle between b and ξ at each point: 0 screw, 90 edge"),
     "hkl": ("1 (Miller indices)", "reflection, index", "reflections whose windings were measured"),
@@ -813,7 +821,10 @@ def read_results(path):
     Only datasets and attributes are read (h5py); nothing is evaluated or
     unpickled. The tensor comes back as a :class:`~braggstrain.tensor.TensorField`
     (its displacement gradient rebuilt from strain and rotation), the lines
-    as :class:`~braggstrain.defects.Dislocation` records.
+    as :class:`~braggstrain.defects.Dislocation` records, their points on the
+    file's grid (a file written before the points carried the grid's origin,
+    recognised by its ``/dislocations`` group lacking ``points_frame``, has
+    the origin added on reading).
 
     Raises
     ------
@@ -877,7 +888,13 @@ def read_results(path):
         rg = _need(f, "reflections", path)
         order = [str(s) for s in _plain(rg.attrs["order"])]
         out["reflections"] = [_read_reflection(_need(rg, name, path), path) for name in order]
-        out["dislocations"] = read_dislocations_h5(_need(f, "dislocations", path))
+        dg = _need(f, "dislocations", path)
+        out["dislocations"] = read_dislocations_h5(dg)
+        if "points_frame" not in dg.attrs:
+            # written before the line points were put on the grid (issue 17): they were
+            # computed with the origin taken as zero, i.e. relative to the voxel at n//2
+            for d in out["dislocations"]:
+                d.points = d.points + grid["origin"]
         for key in ("registration", "mean_lattice"):
             out[key] = _get(f[key]) if key in f else {}
         p = _need(f, "provenance", path)
@@ -929,13 +946,14 @@ def export_vtk(results_or_path, out_dir, *, stem="crystal"):
 
     ``<stem>.vti`` holds, as point data on the voxel centres (spacing = the
     voxel size in **nm**, origin = the sample-frame position of voxel
-    (0, 0, 0) in nm): ``amplitude``, ``support`` (0/1), ``strain_xx`` …
+    (0, 0, 0) in nm, so its points are ``/grid/x, y, z`` in nm): ``amplitude``, ``support`` (0/1), ``strain_xx`` …
     ``strain_xy``, ``hydrostatic_strain``, ``von_mises_strain``,
     ``rotation_rad`` (vector), ``displacement_nm`` (vector, nm, so that
     ParaView's warp-by-vector uses the grid's unit), ``residual_rad_per_A``,
     and per reflection ``phase_rad_<name>`` and ``u_along_G_nm_<name>``.
     NaN marks voxels outside the crystal. ``<stem>_dislocations.vtu`` holds
-    the lines as polylines (nm) with point data ``line_id`` (1-based, the
+    the lines as polylines (sample-frame positions in nm, the same frame as
+    the ``.vti``) with point data ``line_id`` (1-based, the
     report's numbering) and ``character_deg``; it is written only when
     there are lines. Written with pyevtk.
 
@@ -966,10 +984,9 @@ def export_vtk(results_or_path, out_dir, *, stem="crystal"):
         raise InputError(f"stem: expected letters, digits, '_' or '-' only, got {stem!r}")
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
-    grid = r["grid"]
-    shape = grid["shape"]
-    vs_nm = grid["voxel_size"] / 10.0
-    origin_nm = (grid["origin"] - (np.array(shape) // 2) * grid["voxel_size"]) / 10.0
+    grid = Grid.of(r["grid"])
+    vs_nm = grid.voxel_size / 10.0
+    origin_nm = grid.corner / 10.0  # VTK's origin: the position of voxel (0, 0, 0)
     tf = r["tensor"]
 
     def f32(a):

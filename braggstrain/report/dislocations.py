@@ -3,8 +3,10 @@
 The crystal is drawn as a semi-transparent isosurface of its support
 (:func:`skimage.measure.marching_cubes`); each line is drawn through its
 points and coloured, point by point, by its character (the angle between b
-and ξ: 0° screw, 90° edge). Axes are in nm, sample frame, origin at the
-array centre. Uses matplotlib's Agg backend, so it runs without a display.
+and ξ: 0° screw, 90° edge). Axes are sample-frame positions in nm, those of
+the results' grid (:class:`braggstrain.strain.grid.Grid`), so the surface and
+the lines share one frame whatever the grid's origin. Uses matplotlib's Agg
+backend, so it runs without a display.
 """
 
 from __future__ import annotations
@@ -15,23 +17,23 @@ import numpy as np
 
 from braggstrain.defects.lines import Dislocation, format_lattice_vector
 from braggstrain.errors import InputError
+from braggstrain.strain.grid import Grid
 
 __all__ = ["plot_dislocations"]
 
 
-def _isosurface(support, voxel_size, step):
+def _isosurface(support, grid, step):
     from scipy import ndimage
     from skimage.measure import marching_cubes
 
     vol = ndimage.gaussian_filter(np.asarray(support, np.float32), 0.7)
     vol = np.pad(vol, 1)  # close the surface where the crystal touches the array's edge
     verts, faces, _, _ = marching_cubes(vol, level=0.5, step_size=step)
-    centre = np.array([n // 2 for n in support.shape], float)
-    verts_nm = (verts - 1.0 - centre) * voxel_size / 10.0
+    verts_nm = grid.position(verts - 1.0) / 10.0  # index in the unpadded array -> position
     return verts_nm, faces
 
 
-def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev=None, azim=None,
+def plot_dislocations(lines, support, grid, path=None, *, title=None, elev=None, azim=None,
                       surface_step=2, dpi=150, cmap="viridis"):
     """Draw the lines inside a semi-transparent isosurface of the crystal.
 
@@ -39,9 +41,11 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
     ----------
     lines : list of Dislocation
     support : bool ndarray (3-D)
-        The crystal on the sample-frame grid (axes x, y, z; origin at n//2).
-    voxel_size : float or 3 floats
-        Voxel edge along x, y, z, Å.
+        The crystal on the sample-frame grid (axes x, y, z).
+    grid : Grid, or the results' grid dict, or a voxel size (float or 3 floats, Å)
+        The grid of ``support`` and of the lines' points
+        (:class:`~braggstrain.strain.grid.Grid`). A bare voxel size means
+        positions relative to the voxel at index n//2 (origin zero).
     path : str or Path, optional
         Where to save the figure (format from the suffix, e.g. .png, .pdf,
         .svg); written atomically (temporary file, then rename).
@@ -72,9 +76,12 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
     support = np.asarray(support)
     if support.ndim != 3 or not support.any():
         raise InputError(f"support: expected a non-empty 3-D mask of the crystal, got shape {support.shape}")
-    vs = np.broadcast_to(np.asarray(voxel_size, float), (3,)).copy()
-    if np.any(~np.isfinite(vs)) or np.any(vs <= 0):
-        raise InputError(f"voxel_size: expected three positive lengths in Å, got {voxel_size!r}")
+    if not isinstance(grid, (Grid, dict)):
+        vs = np.broadcast_to(np.asarray(grid, float), (3,)).copy()
+        if np.any(~np.isfinite(vs)) or np.any(vs <= 0):
+            raise InputError(f"grid: expected a Grid or three positive voxel lengths in Å, got {grid!r}")
+        grid = vs
+    grid = Grid.of(grid, support.shape)
     for k, d in enumerate(lines):
         if not isinstance(d, Dislocation):
             raise InputError(f"lines[{k}]: expected a Dislocation, got {type(d).__name__}")
@@ -82,7 +89,7 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
     fig = Figure(figsize=(7.6, 6.4))
     FigureCanvasAgg(fig)  # Agg: no display needed, no global pyplot state
     ax = fig.add_subplot(111, projection="3d")
-    verts, faces = _isosurface(support.astype(bool), vs, int(surface_step))
+    verts, faces = _isosurface(support.astype(bool), grid, int(surface_step))
     mesh = Poly3DCollection(verts[faces], alpha=0.12, facecolor=(0.55, 0.6, 0.7), edgecolor="none")
     ax.add_collection3d(mesh)
 
@@ -117,13 +124,9 @@ def plot_dislocations(lines, support, voxel_size, path=None, *, title=None, elev
         handles.append(Line2D([0], [0], color=cm(norm(d.character_deg)) if known else "k",
                               lw=3 if known else 2, ls="-" if known else "--", label=desc))
 
-    half = (np.array(support.shape) / 2.0) * vs / 10.0
     idx = np.argwhere(support)
-    centre = np.array([n // 2 for n in support.shape])
-    lo = (idx.min(axis=0) - centre - 2) * vs / 10.0
-    hi = (idx.max(axis=0) - centre + 2) * vs / 10.0
-    lo = np.maximum(lo, -half)
-    hi = np.minimum(hi, half)
+    lo = grid.position(np.maximum(idx.min(axis=0) - 2.0, -0.5)) / 10.0  # the crystal and 2 voxels, inside the array
+    hi = grid.position(np.minimum(idx.max(axis=0) + 2.0, np.array(support.shape) - 0.5)) / 10.0
     ax.set_xlim(lo[0], hi[0])
     ax.set_ylim(lo[1], hi[1])
     ax.set_zlim(lo[2], hi[2])

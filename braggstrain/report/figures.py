@@ -22,6 +22,7 @@ import numpy as np
 
 from braggstrain.errors import InputError
 from braggstrain.io.scans import atomic_path
+from braggstrain.strain.grid import Grid
 
 __all__ = [
     "FIGURES",
@@ -133,14 +134,12 @@ def _plane(vol, plane, centre, lo, hi, fill=np.nan):
     return np.pad(cut, pad, constant_values=fill) if any(a or b for a, b in pad) else cut
 
 
-def _extent(plane, lo, hi, vs, shape):
+def _extent(plane, lo, hi, grid):
+    """Edges (nm, sample-frame positions) of the crop [lo, hi) of one plane."""
     _, _, h, v = plane
-    c = np.array(shape) // 2
-
-    def edge(ax, i):
-        return (i - c[ax] - 0.5) * vs[ax] / 10.0
-
-    return (edge(h, lo[h]), edge(h, hi[h]), edge(v, lo[v]), edge(v, hi[v]))
+    first = grid.position(np.asarray(lo, float) - 0.5) / 10.0
+    last = grid.position(np.asarray(hi, float) - 0.5) / 10.0
+    return (first[h], last[h], first[v], last[v])
 
 
 def _nice_length(span_nm):
@@ -191,9 +190,9 @@ def _unit_label(name, unit, e):
     return f"{name} ({p} {unit})" if unit else f"{name} ({p})"
 
 
-def _plane_title(plane, centre, vs, shape):
+def _plane_title(plane, centre, grid):
     name, fixed, _, _ = plane
-    pos = (centre[fixed] - shape[fixed] // 2) * vs[fixed] / 10.0
+    pos = grid.position(np.asarray(centre, float))[fixed] / 10.0
     return f"{name} plane, {_AXIS[fixed]} = {pos:.0f} nm"
 
 
@@ -201,17 +200,20 @@ def _plane_title(plane, centre, vs, shape):
 # slice figures
 # --------------------------------------------------------------------------
 
-def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=True, scale_to=None,
+def plot_slices(fields, support, grid, path=None, *, names, units, signed=True, scale_to=None,
                 outline=False, title=None, cmap=None, limits=None):
     """Rows of central slices (xy, xz, yz planes) of several 3-D fields.
 
     Parameters
     ----------
     fields : sequence of 3-D arrays
-        Axes 0, 1, 2 along sample-frame x, y, z (origin at index n//2).
+        Axes 0, 1, 2 along sample-frame x, y, z.
     support : bool 3-D array
         The crystal; values outside are shown grey unless ``outline``.
-    voxel_size : float or 3 floats, Å
+    grid : Grid, or the results' grid dict, or a voxel size (float or 3 floats, Å)
+        Where the voxels are (:class:`~braggstrain.strain.grid.Grid`); the
+        plane titles give the cut's sample-frame position. A bare voxel size
+        means positions relative to the voxel at index n//2.
     path : str or Path, optional
         Save the figure there (atomically).
     names, units : sequence of str
@@ -238,7 +240,9 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
     support = np.asarray(support, bool)
     if support.ndim != 3 or not support.any():
         raise InputError(f"support: expected a non-empty 3-D mask, got shape {support.shape}")
-    vs = _voxel(voxel_size)
+    grid = grid if isinstance(grid, (Grid, dict)) else _voxel(grid)
+    grid = Grid.of(grid, support.shape)
+    vs = grid.voxel_size
     fields = [np.asarray(f, float) for f in fields]
     for k, f in enumerate(fields):
         if f.shape != support.shape:
@@ -253,7 +257,6 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
     for f, unit, sg in zip(fields, units, signed):
         if sg:
             floors[unit] = max(floors.get(unit, 0.0), 0.01 * _robust_limit(f[support] * factor))
-    shape = support.shape
     centre = central_index(support)
     lo, hi = _crop(support)
     nrow = len(fields)
@@ -288,7 +291,7 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
             axes.append(ax)
             plo, phi = _plane_crop(plane, lo, hi)
             img = _plane(disp, plane, centre, plo, phi) * fac
-            ext = _extent(plane, plo, phi, vs, shape)
+            ext = _extent(plane, plo, phi, grid)
             im = ax.imshow(img.T, origin="lower", extent=ext, cmap=cm, vmin=vmin * fac, vmax=vmax * fac,
                            interpolation="nearest", aspect="equal")
             if outline:
@@ -303,7 +306,7 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
             ax.set_ylabel(f"{_AXIS[plane[3]]} →", fontsize=8, labelpad=2)
             _scale_bar(ax, ext, "white" if outline else "black")
             if row == 0:
-                ax.set_title(_plane_title(plane, centre, vs, shape), fontsize=9)
+                ax.set_title(_plane_title(plane, centre, grid), fontsize=9)
         cb = fig.colorbar(im, ax=axes, shrink=0.9, aspect=12, pad=0.02)
         cb.set_label(_unit_label(name, unit, e), fontsize=9)
         cb.ax.tick_params(labelsize=8)
@@ -317,7 +320,7 @@ def plot_slices(fields, support, voxel_size, path=None, *, names, units, signed=
 def plot_amplitude(results, path=None):
     """Central slices of the mean normalised amplitude with the support outline."""
     g = results["grid"]
-    return plot_slices([results["amplitude"]], results["support"], g["voxel_size"], path,
+    return plot_slices([results["amplitude"]], results["support"], g, path,
                        names=["amplitude"], units=["normalised"], signed=False, outline=True,
                        title="Mean amplitude (support outlined)",
                        limits=[(0.0, float(np.percentile(np.asarray(results["amplitude"])[results["support"]], 99.5))
@@ -330,7 +333,7 @@ def plot_strain(results, path=None):
 
     tf = results["tensor"]
     comps = strain_components(tf.strain)
-    return plot_slices(list(comps), tf.support & results["support"], results["grid"]["voxel_size"], path,
+    return plot_slices(list(comps), tf.support & results["support"], results["grid"], path,
                        names=[f"ε_{c}" for c in STRAIN_COMPONENTS], units=[""] * 6, signed=True,
                        title="Strain tensor (sample frame, tensile positive)")
 
@@ -338,7 +341,7 @@ def plot_strain(results, path=None):
 def plot_rotation(results, path=None):
     """Central slices of the three lattice-rotation components, degrees."""
     tf = results["tensor"]
-    return plot_slices(list(tf.rotation), tf.support & results["support"], results["grid"]["voxel_size"], path,
+    return plot_slices(list(tf.rotation), tf.support & results["support"], results["grid"], path,
                        names=["ω_x", "ω_y", "ω_z"], units=["°"] * 3, signed=True, scale_to=180.0 / np.pi,
                        title="Lattice rotation (axial vector, sample frame)")
 
@@ -348,7 +351,7 @@ def plot_derived(results, path=None):
     tf = results["tensor"]
     mean_g = float(np.mean(np.linalg.norm(np.asarray(tf.g_vectors, float), axis=1)))
     return plot_slices([tf.hydrostatic, tf.von_mises, np.asarray(tf.residual) / mean_g],
-                       tf.support & results["support"], results["grid"]["voxel_size"], path,
+                       tf.support & results["support"], results["grid"], path,
                        names=["tr(ε)/3", "von Mises strain", "residual / mean |G|"], units=["", "", ""],
                        signed=[True, False, False],
                        title="Derived maps (residual shown strain-equivalent: rad/Å ÷ Å⁻¹)")
@@ -364,7 +367,7 @@ def plot_displacements(results, path=None):
         names.append(f"u_G for {_hkl(x['hkl'])}")
     if not rows:
         return None
-    return plot_slices(rows, results["support"], results["grid"]["voxel_size"], path, names=names,
+    return plot_slices(rows, results["support"], results["grid"], path, names=names,
                        units=["Å"] * len(rows), signed=True,
                        title="Displacement along each G vector, u_G = −φ/|G|")
 
@@ -569,7 +572,7 @@ def make_figures(results, out_dir):
     for name in FIGURES:
         path = out_dir / name
         if name == "dislocations.png":
-            plot_dislocations(r["dislocations"], r["support"], r["grid"]["voxel_size"], path)
+            plot_dislocations(r["dislocations"], r["support"], r["grid"], path)
             written.append(path)
             continue
         fig = makers[name](r, path)

@@ -230,6 +230,8 @@ def _tensor_section(r):
         ("crystal volume (nm³)", _num(vol_nm3, "{:.4g}")),
         ("voxel size x, y, z (nm)", ", ".join(_num(v / 10.0, "{:.3g}") for v in vs)),
         ("grid shape", _e(" × ".join(str(n) for n in r["grid"]["shape"]))),
+        ("grid origin x, y, z (nm): position of the voxel at index n//2",
+         ", ".join(_num(v / 10.0, "{:.4g}") for v in r["grid"]["origin"])),
     ]
     out = ["<h2>Strain tensor</h2>", _table(["quantity", "value"], [[_e(a), b] for a, b in items],
                                               text_cols=(0, 1))]
@@ -319,13 +321,15 @@ def _dislocation_section(r):
         out.append("<p>No dislocation line was found (no phase vortex line in the trusted part of the "
                    "crystal).</p>")
         return "\n".join(out)
-    header = ["line", "Burgers vector b", "|b| (Å)", "character", "angle b–line (°)", "length (nm)", "loop",
-              "slip plane(s)", "windings n_j", "visible in", "invisible in (g·b = 0)", "confidence", "notes"]
+    header = ["line", "Burgers vector b", "|b| (Å)", "character", "angle b–line (°)", "length (nm)",
+              "centre x, y, z (nm)", "loop", "slip plane(s)", "windings n_j", "visible in",
+              "invisible in (g·b = 0)", "confidence", "notes"]
     rows = []
-    for rec in dislocations_to_records(lines):
+    for d, rec in zip(lines, dislocations_to_records(lines)):
         rows.append([
             str(rec["id"]), _e(rec["burgers_label"]), _num(rec["burgers_length_A"], "{:.3f}"),
             _e(rec["character"]), _num(rec["character_deg"], "{:.0f}"), _num(rec["length_A"] / 10.0, "{:.1f}"),
+            ", ".join(_num(v / 10.0, "{:.1f}") for v in d.center),
             "yes" if rec["closed"] else "no",
             _e(", ".join(_hkl(p) for p in rec["slip_planes"]) or "—"),
             _e("; ".join(f"({k}): {'?' if v is None else v}" for k, v in rec["windings"].items())),
@@ -333,9 +337,12 @@ def _dislocation_section(r):
             _e(" ".join(_hkl(h) for h in rec["invisible_in"]) or "—"),
             _num(rec["confidence"], "{:.2f}"), _e(" | ".join(rec["notes"]) or "—"),
         ])
-    out.append(_table(header, rows, text_cols=(1, 3, 7, 8, 9, 10, 12), wrap_cols=(8, 12)))
+    out.append(_table(header, rows, text_cols=(1, 3, 8, 9, 10, 11, 13), wrap_cols=(9, 13)))
     out.append("<p>Burgers vectors in lattice coordinates of the conventional cell; windings n_j are the phase "
-               "windings of reflection j right-handed about the line direction (h_j·b = −n_j). Line numbers "
+               "windings of reflection j right-handed about the line direction (h_j·b = −n_j). The centre is "
+               "the mean of the line's points, a sample-frame position on the results' grid (the voxel at "
+               "index i lies at origin + (i − n//2)·voxel size, <code>/grid/x, y, z</code> of results.h5), the "
+               "frame of the dislocation figure, <code>dislocations.csv</code> and the VTK files. Line numbers "
                "match the dislocation figure and the VTK file's <code>line_id</code>.</p>")
     return "\n".join(out)
 

@@ -33,13 +33,14 @@ from braggstrain.simulate import forward as fw
 from braggstrain.config import build_crystal, build_instrument, build_specimen
 from braggstrain.errors import ConfigError
 from braggstrain.io.scans import atomic_path, write_scan
+from braggstrain.strain.grid import Grid
 
 __all__ = ["simulate_experiment", "truth_fields", "read_truth"]
 
 
 def truth_fields(shape, field_, grid_shape, voxel_size):
-    """Ground truth on a sample-frame grid: density, u, D, strain, rotation."""
-    coords = fw.grid_coordinates(grid_shape, voxel_size)
+    """Ground truth on a sample-frame grid (origin zero): density, u, D, strain, rotation."""
+    coords = Grid(grid_shape, voxel_size).coordinates()
     dens = np.zeros(grid_shape, np.float64)
     s = 2
     offs = (np.arange(s) + 0.5) / s - 0.5
@@ -161,8 +162,9 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
                 d = f.create_dataset(k, data=v, compression="gzip")
                 d.attrs["units"] = unit
             gg = f.create_group("grid")
-            gg.attrs["voxel_size"] = np.full(3, vs)
-            gg.attrs["origin"] = np.zeros(3)
+            tg = Grid(gs, vs)
+            gg.attrs["voxel_size"] = tg.voxel_size
+            gg.attrs["origin"] = tg.origin
             gg.attrs["axes"] = "x, y, z (sample frame)"
             gr = f.create_group("reflections")
             for name, m in refl_meta.items():
@@ -200,6 +202,8 @@ def read_truth(path):
         for k in ("density", "displacement", "displacement_gradient", "strain", "rotation"):
             out[k] = f[k][()]
         out["voxel_size"] = f["grid"].attrs["voxel_size"]
+        out["grid"] = Grid(out["density"].shape, f["grid"].attrs["voxel_size"],
+                           f["grid"].attrs.get("origin", np.zeros(3)))
         out["reflections"] = {n: {k: (json.loads(v) if k == "bragg_angles" else v) for k, v in g.attrs.items()}
                               for n, g in f["reflections"].items()}
         out["lines"] = [dict(g.attrs) for _, g in sorted(f["lines"].items(), key=lambda kv: int(kv[0]))]
@@ -207,22 +211,19 @@ def read_truth(path):
     return out
 
 
-def _truth_on_grid(truth, shape, voxel_size, origin, shift, invert):
+def _truth_on_grid(truth, grid, shift, invert):
     """Sample truth arrays at the result grid's voxels (sample frame, Å).
 
-    A result voxel at r (its sample-frame position) is compared with the
-    truth at r + shift, or at −r + shift for the twin (point-inverted)
-    solution."""
+    A result voxel at r (its sample-frame position on ``grid``) is compared
+    with the truth at r + shift, or at −r + shift for the twin
+    (point-inverted) solution."""
     from scipy import ndimage
 
-    vs_t = np.asarray(truth["voxel_size"], float)
-    nt = np.asarray(truth["density"].shape)
-    r = np.stack(np.meshgrid(*[(np.arange(n) - n // 2) * vs + o for n, vs, o in zip(shape, voxel_size, origin)],
-                             indexing="ij"))
+    r = grid.coordinates()
     if invert:
         r = -r
     r = r + np.asarray(shift, float).reshape(3, 1, 1, 1)
-    idx = r / vs_t.reshape(3, 1, 1, 1) + (nt // 2).reshape(3, 1, 1, 1)
+    idx = truth["grid"].index(r, axis=0)
 
     def samp(a):
         return ndimage.map_coordinates(a.astype(np.float64), idx, order=1, mode="constant", cval=0.0)
@@ -241,7 +242,9 @@ def compare_to_truth(results, truth_path, as_text=True):
     tell them apart). Reported: RMS error of each strain component over the trusted
     voxels (support eroded by one voxel, outside dislocation cores of three
     voxels), the truth's own RMS for scale, the distance of each found
-    dislocation line from the true one and the angle between their
+    dislocation line from the true one (in voxels and nm; the lines' points
+    and the crystal are both placed with the results' grid, so a grid whose
+    origin is not zero is checked too) and the angle between their
     directions, and whether the Burgers vector is right (up to the joint
     sign of b and ξ).
 
@@ -251,17 +254,15 @@ def compare_to_truth(results, truth_path, as_text=True):
     from skimage.registration import phase_cross_correlation
 
     truth = read_truth(truth_path)
-    g = results["grid"]
-    vs = np.asarray(g["voxel_size"], float)
-    origin = np.asarray(g["origin"], float)
     tf = results["tensor"]
     sup = np.asarray(tf.support, bool)
     shape = sup.shape
-    pos = np.stack(np.meshgrid(*[(np.arange(n) - n // 2) * v + o for n, v, o in zip(shape, vs, origin)],
-                               indexing="ij"))
+    grid = Grid.of(results["grid"], shape)
+    vs = grid.voxel_size
+    pos = grid.coordinates()
     com_r = np.array([pos[i][sup].mean() for i in range(3)])
     dens = truth["density"].astype(float)
-    ct = fw.grid_coordinates(dens.shape, truth["voxel_size"])
+    ct = truth["grid"].coordinates()
     com_t = np.array([np.sum(ct[i] * dens) / dens.sum() for i in range(3)])
     eps_r = np.asarray(tf.strain, float)
     comps = [(0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1)]
@@ -271,7 +272,7 @@ def compare_to_truth(results, truth_path, as_text=True):
         """Strain errors of one alignment; the twin is chosen by them, since
         the support of a nearly centrosymmetric crystal cannot tell."""
         core = np.zeros(shape, bool)
-        _, r = _truth_on_grid(truth, shape, vs, origin, shift, invert)
+        _, r = _truth_on_grid(truth, grid, shift, invert)
         for ln in truth["lines"]:
             if ln.get("kind") == "straight":
                 p = np.asarray(ln["point"], float)
@@ -294,13 +295,13 @@ def compare_to_truth(results, truth_path, as_text=True):
     best = None
     for invert in (False, True):
         shift = com_t + (com_r if invert else -com_r)
-        samp, _ = _truth_on_grid(truth, shape, vs, origin, shift, invert)
+        samp, _ = _truth_on_grid(truth, grid, shift, invert)
         d = samp(dens)
         sh, _, _ = phase_cross_correlation(d, sup.astype(float), upsample_factor=10, normalization=None)
         # result voxel at index i + sh matches truth sampled at i: move the truth sample point
         step = sh * vs
         shift2 = shift - (step if not invert else -step)
-        samp, _ = _truth_on_grid(truth, shape, vs, origin, shift2, invert)
+        samp, _ = _truth_on_grid(truth, grid, shift2, invert)
         d = samp(dens) > 0.5
         dice = 2 * np.sum(d & sup) / max(1, d.sum() + sup.sum())
         total, rms, rms_truth, mean_err, trusted = score(invert, shift2, samp)
@@ -326,6 +327,8 @@ def compare_to_truth(results, truth_path, as_text=True):
             b_ok = b is not None and (np.allclose(b, b_true, atol=1e-6) or np.allclose(b, -b_true, atol=1e-6))
             found.append({"median_distance_vox": float(np.median(dist) / vs.mean()),
                           "max_distance_vox": float(np.max(dist) / vs.mean()),
+                          "median_distance_nm": float(np.median(dist) / 10.0),
+                          "max_distance_nm": float(np.max(dist) / 10.0),
                           "median_angle_deg": float(np.median(ang)), "burgers": None if b is None else b.tolist(),
                           "burgers_right": bool(b_ok), "length_A": float(d.length)})
         found.sort(key=lambda f: f["median_distance_vox"])
@@ -343,8 +346,9 @@ def compare_to_truth(results, truth_path, as_text=True):
         bt = " ".join(f"{v:+.1f}" for v in ln["burgers_true"])
         if ln["found"]:
             f = ln["found"][0]
-            txt.append(f"  dislocation b = [{bt}]: nearest found line {f['median_distance_vox']:.1f} voxels "
-                       f"(median; max {f['max_distance_vox']:.1f}) from the truth, direction within "
+            txt.append(f"  dislocation b = [{bt}]: nearest found line {f['median_distance_vox']:.2f} voxels = "
+                       f"{f['median_distance_nm']:.1f} nm (median; max {f['max_distance_vox']:.2f} voxels = "
+                       f"{f['max_distance_nm']:.1f} nm) from the truth, direction within "
                        f"{f['median_angle_deg']:.1f}°, Burgers vector {'right' if f['burgers_right'] else 'WRONG'}")
         else:
             txt.append(f"  dislocation b = [{bt}]: NOT found")

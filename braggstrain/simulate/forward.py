@@ -78,12 +78,12 @@ def grid_coordinates(shape, voxel_size=1.0):
     ndarray, shape (3, *shape), float64
         x, y, z of every voxel in Å, with the origin at index n//2 per axis.
     """
+    from braggstrain.strain.grid import Grid
+
     shape = tuple(int(n) for n in shape)
     if len(shape) != 3 or min(shape) < 1:
         raise InputError(f"shape: expected three positive sizes, got {shape!r}")
-    vs = _as3(voxel_size, "voxel_size")
-    axes = [(np.arange(n) - n // 2) * vs[i] for i, n in enumerate(shape)]
-    return np.stack(np.meshgrid(*axes, indexing="ij"))
+    return Grid(shape, _as3(voxel_size, "voxel_size")).coordinates()
 
 
 class Polyhedron:

@@ -40,6 +40,7 @@ from __future__ import annotations
 import numpy as np
 
 from braggstrain.errors import InputError
+from braggstrain.strain.grid import Grid
 from braggstrain.strain.objects import SampleObject
 from braggstrain.prepare.scan import PreparedScan, fast_size
 
@@ -99,7 +100,7 @@ def _voxel(voxel_size, basis):
 
 
 def _output_grid(support, basis, voxel, shape, origin, margin):
-    """Shape and origin of the output grid: around the support (its voxels'
+    """The output :class:`Grid`: around the support (its voxels'
     parallelepipeds) with ``margin`` voxels on every side; the origin on a
     multiple of the voxel so grids of one voxel size share one lattice."""
     N = np.asarray(support.shape)
@@ -112,6 +113,8 @@ def _output_grid(support, basis, voxel, shape, origin, margin):
         origin = np.round(0.5 * (lo + hi) / voxel) * voxel
     else:
         origin = np.asarray(origin, float).reshape(3)
+        if not np.all(np.isfinite(origin)):
+            raise InputError(f"origin: expected three finite positions in Å, got {origin!r}")
     if shape is None:
         half = np.ceil(np.maximum(hi - origin, origin - lo) / voxel).astype(int) + int(margin)
         shape = np.array([fast_size(2 * h + 1) for h in half])
@@ -119,20 +122,20 @@ def _output_grid(support, basis, voxel, shape, origin, margin):
         shape = np.asarray(shape, int).reshape(-1)
         if shape.shape != (3,) or np.any(shape < 1):
             raise InputError(f"shape: expected three positive sizes, got {shape!r}")
-    return tuple(int(n) for n in shape), origin
+    return Grid(shape, voxel, origin)
 
 
-def _resample(recon, support, basis, voxel, shape, origin, order):
+def _resample(recon, support, basis, grid, order):
     """Sample recon (index grid with positions basis·(j − N//2)) on the
-    orthonormal grid p = voxel·(o − n//2) + origin."""
+    orthonormal ``grid`` (position of index o: grid.position(o))."""
     from scipy import ndimage
 
     N = np.asarray(recon.shape)
-    n = np.asarray(shape)
     Binv = np.linalg.inv(basis)
-    mat = Binv @ np.diag(voxel)
-    off = Binv @ (origin - voxel * (n // 2)) + N // 2
-    kw = dict(matrix=mat, offset=off, output_shape=tuple(int(v) for v in n), order=int(order), mode="constant",
+    # o -> grid.position(o) = corner + diag(voxel)·o -> j = Binv·position + N//2
+    mat = Binv @ np.diag(grid.voxel_size)
+    off = Binv @ grid.corner + N // 2
+    kw = dict(matrix=mat, offset=off, output_shape=grid.shape, order=int(order), mode="constant",
               cval=0.0, prefilter=int(order) > 1)
     re = ndimage.affine_transform(np.ascontiguousarray(recon.real, dtype=np.float32), **kw)
     im = ndimage.affine_transform(np.ascontiguousarray(recon.imag, dtype=np.float32), **kw)
@@ -141,16 +144,15 @@ def _resample(recon, support, basis, voxel, shape, origin, order):
     return (re + 1j * im).astype(np.complex64), sup
 
 
-def _rephase(obj, voxel, origin, dq_sample):
-    """obj · exp(i dq·p) on the grid p = voxel·(o − n//2) + origin."""
+def _rephase(obj, grid, dq_sample):
+    """obj · exp(i dq·p) at the positions p of ``grid``."""
     if not np.any(dq_sample):
         return obj
     ph = np.zeros(obj.shape, np.float64)
     for k, n in enumerate(obj.shape):
-        x = voxel[k] * (np.arange(n) - n // 2) + origin[k]
         sh = [1, 1, 1]
         sh[k] = n
-        ph = ph + (dq_sample[k] * x).reshape(sh)
+        ph = ph + (dq_sample[k] * grid.axis(k)).reshape(sh)
     return (obj * np.exp(1j * ph)).astype(np.complex64)
 
 
@@ -163,17 +165,16 @@ def _finish(recon, support, basis, q_ref_s, g_vector, voxel_size, shape, origin,
         if not np.all(np.isfinite(g)) or not np.any(g):
             raise InputError(f"g_vector: expected a non-zero G in the sample frame (Å⁻¹), got {g_vector!r}")
     if resample:
-        voxel = _voxel(voxel_size, basis)
-        shape, origin = _output_grid(support, basis, voxel, shape, origin, margin)
-        obj, sup = _resample(recon, support, basis, voxel, shape, origin, order)
+        grid = _output_grid(support, basis, _voxel(voxel_size, basis), shape, origin, margin)
+        obj, sup = _resample(recon, support, basis, grid, order)
     else:
-        voxel = np.diag(basis).copy()
-        origin = np.zeros(3)
+        grid = Grid(recon.shape, np.diag(basis).copy())
         obj, sup = recon.astype(np.complex64), support.copy()
-    obj = _rephase(obj, voxel, origin, np.asarray(q_ref_s) - g)
+    obj = _rephase(obj, grid, np.asarray(q_ref_s) - g)
     meta = dict(meta)
     meta.update(q_reference_sample=[float(v) for v in q_ref_s], resampled=bool(resample), order=int(order))
-    return SampleObject(obj=obj, voxel_size=voxel, g_vector=g, support=sup, origin=origin, hkl=hkl, meta=meta)
+    return SampleObject(obj=obj, voxel_size=grid.voxel_size, g_vector=g, support=sup, origin=grid.origin,
+                        hkl=hkl, meta=meta)
 
 
 def detector_to_sample(recon, prepared, *, support=None, support_threshold=0.25, g_vector=None, ramp=None,

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from braggstrain.errors import InputError
+from braggstrain.strain.grid import Grid
 
 __all__ = ["SampleObject"]
 
@@ -27,7 +28,8 @@ class SampleObject:
     support : bool ndarray, same shape as ``obj``
         Voxels inside the crystal.
     origin : (3,) float ndarray
-        Sample-frame position (Å) of the voxel at index n//2 on each axis.
+        Sample-frame position (Å) of the voxel at index n//2 on each axis;
+        :attr:`grid` converts between indices and positions.
     hkl : tuple of 3 int, optional
         Miller indices of the reflection.
     meta : dict
@@ -61,3 +63,9 @@ class SampleObject:
     @property
     def shape(self):
         return self.obj.shape
+
+    @property
+    def grid(self):
+        """The object's :class:`~braggstrain.strain.grid.Grid` (shape, voxel
+        size, origin): the one index ↔ position conversion."""
+        return Grid(self.obj.shape, self.voxel_size, self.origin)

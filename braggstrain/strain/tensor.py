@@ -34,6 +34,7 @@ from scipy import ndimage as ndi
 from braggstrain.errors import TensorError
 from braggstrain.strain.fields import (_complex3d, _voxel_size, default_support, phase_gradient, phase_ramp,
                      reference_voxel, trusted_voxels, unwrapped_phase)
+from braggstrain.strain.grid import Grid
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
@@ -530,8 +531,9 @@ def _displacement(arrays, G, vs, support, weights, ref, D0=None, tol=np.pi / 4):
             u[bad] = ub
             good[bad] = okb
     u[~good] = np.nan
-    if D0 is not None:
-        pos = np.stack([(np.unravel_index(idx, support.shape)[k] - ref[k]) * vs[k] for k in range(3)], axis=1)
+    if D0 is not None:  # D₀·(r − r_ref), positions from the grid
+        grid = Grid(support.shape, vs)
+        pos = grid.position(np.stack(np.unravel_index(idx, support.shape), axis=1)) - grid.position(np.array(ref))
         u = u + pos @ np.asarray(D0, float).T
     out = np.full((3, support.size), np.nan, dtype=np.float32)
     out[:, idx] = u.T
@@ -698,25 +700,23 @@ class _Resampler:
     slowly varying phase only.
     """
 
-    def __init__(self, so, vs_common, origin_common, shape_common):
+    def __init__(self, so, common):
         self.so = so
-        vs_o = so.voxel_size
+        g = so.grid
         sup = so.support
-        grad = phase_gradient(so.obj, vs_o, sup)
+        grad = phase_gradient(so.obj, g.voxel_size, sup)
         tr = trusted_voxels(so.obj, sup)
         self.ramp = phase_ramp(grad, tr if tr.any() else sup, np.abs(so.obj))
-        n_o = np.array(so.shape)
-        self.pos_o = [(np.arange(n) - n // 2) * vs_o[k] for k, n in enumerate(so.shape)]
-        pos = np.ix_(*self.pos_o)
+        pos = np.ix_(*g.axes)
         demod = so.obj * np.exp(-1j * sum(self.ramp[k] * pos[k] for k in range(3)))
         self.re = demod.real.astype(np.float64)
         self.im = demod.imag.astype(np.float64)
         self.sup = sup.astype(np.float64)
-        # common index m -> physical r = origin_c + (m − c)·vs_c -> object index
-        self.scale = vs_common / vs_o
-        self.offset = (origin_common - so.origin) / vs_o + n_o // 2 - (np.array(shape_common) // 2) * self.scale
-        self.vs_o = vs_o
-        self.n_o = n_o
+        # common index m -> position common.position(m) -> object index g.index(...):
+        # an affine map, m·scale + offset
+        self.scale = common.voxel_size / g.voxel_size
+        self.offset = g.index(common.corner)
+        self.grid = g
 
     def sample(self, coords_common):
         """coords_common: (3, *grid) common-grid indices. Returns (obj, support)."""
@@ -724,8 +724,7 @@ class _Resampler:
         re = ndi.map_coordinates(self.re, c, order=1, mode="constant", cval=0.0)
         im = ndi.map_coordinates(self.im, c, order=1, mode="constant", cval=0.0)
         sp = ndi.map_coordinates(self.sup, c, order=1, mode="constant", cval=0.0)
-        phys = (c - (self.n_o // 2).reshape(3, 1, 1, 1)) * self.vs_o.reshape(3, 1, 1, 1)
-        ramp = np.tensordot(self.ramp, phys, axes=1)
+        ramp = np.tensordot(self.ramp, self.grid.position(c, axis=0), axes=1)
         obj = (re + 1j * im) * np.exp(1j * ramp)
         return obj.astype(np.complex64), sp >= 0.5
 
@@ -794,15 +793,16 @@ def register(objects, *, voxel_size=None, reference=0, min_overlap=0.7, upsample
     vs = (np.min([o.voxel_size for o in objects], axis=0) if voxel_size is None
           else _voxel_size(voxel_size))
     origin = objects[reference].origin.copy()
-    lo = np.max([origin - (o.origin - (np.array(o.shape) // 2) * o.voxel_size) for o in objects], axis=0)
-    hi = np.max([(o.origin + (np.array(o.shape) - 1 - np.array(o.shape) // 2) * o.voxel_size) - origin
-                 for o in objects], axis=0)
+    # room from the common origin to the first and the last voxel of every object
+    lo = np.max([origin - o.grid.corner for o in objects], axis=0)
+    hi = np.max([o.grid.position(np.array(o.shape) - 1) - origin for o in objects], axis=0)
     m = np.ceil(np.maximum(lo / vs, hi / vs + 1) - 1e-9).astype(int)
     shape = tuple(int(2 * v) for v in m)
+    common = Grid(shape, vs, origin)
     base = np.indices(shape, dtype=float)
-    c = (np.array(shape) // 2).reshape(3, 1, 1, 1).astype(float)
+    c = common.centre_index.reshape(3, 1, 1, 1).astype(float)  # the twin inverts about the common origin
 
-    samplers = [_Resampler(o, vs, origin, shape) for o in objects]
+    samplers = [_Resampler(o, common) for o in objects]
     ref_obj, ref_sup = samplers[reference].sample(base)
     ref_amp = np.abs(ref_obj)
 
