@@ -6,6 +6,8 @@ Exit codes: 0 ok, 1 failed, 2 bad input (pipeline file, scan file, arguments).
 from __future__ import annotations
 
 import argparse
+import os
+import shlex
 import sys
 
 from pathlib import Path
@@ -35,10 +37,21 @@ def cmd_simulate(args):
     return 0
 
 
-def describe_scan(path):
-    """Text lines describing a scan file (used by ``inspect``)."""
+def describe_scan(path, config=None):
+    """Text lines describing a scan file (used by ``inspect``).
+
+    ``config``: a pipeline file whose ``[prepare]`` options the preparation
+    uses (default: the options' defaults); the lines say which."""
     from braggstrain.io.scans import read_scan
 
+    prep_opts, prep_from = {}, "default [prepare] options (give --config PIPELINE to use a pipeline file's)"
+    if config is not None:
+        from braggstrain.config import load_config
+        from braggstrain.pipeline import check_options
+
+        prep_opts = check_options(load_config(config))["prepare"]
+        shown = ", ".join(f"{k} = {list(v) if isinstance(v, tuple) else v!r}" for k, v in prep_opts.items())
+        prep_from = f"[prepare] of {config}" + (f": {shown}" if shown else " (empty: defaults)")
     scan = read_scan(path)
     fr = scan.frames
     lines = [f"scan file   {path}",
@@ -67,8 +80,8 @@ def describe_scan(path):
     except ImportError:  # pragma: no cover - the preparation stage is part of the package
         return lines
     try:
-        prep = prepare_scan(scan)
-        lines.append("after preparation:")
+        prep = prepare_scan(scan, **prep_opts)
+        lines.append(f"after preparation with {prep_from}:")
         lines.extend("  " + s for s in summarize_prepared(prep).splitlines())
     except BraggStrainError as e:
         lines.append(f"preparation failed: {e}")
@@ -143,7 +156,9 @@ def describe_reflection(cfg, i):
     lines.append(f"max counts  {float(np.max(fr)):.6g} (raw: hot pixels not yet removed)")
     try:
         prep = prepare_scan(scan, **_prepare_options(scan, opts))
-        lines.append("after preparation:")
+        shown = ", ".join(f"{k} = {list(v) if isinstance(v, tuple) else v!r}" for k, v in opts.items())
+        lines.append(f"after preparation with [prepare] of {cfg.get('_source')}"
+                     + (f": {shown}:" if shown else " (empty: defaults):"))
         lines.extend("  " + s for s in summarize_prepared(prep).splitlines())
     except BraggStrainError as e:
         lines.append(f"preparation failed: {e}")
@@ -180,14 +195,14 @@ def cmd_inspect(args):
             which = range(len(names))
         for i in which:
             for line in describe_reflection(cfg, i):
-                print(line)
+                print(line, flush=True)
         return 0
     if _is_scan_file(path):
-        lines = describe_scan(path)
+        lines = describe_scan(path, config=args.config)
     else:
         lines = describe_source(path)
     for line in lines:
-        print(line)
+        print(line, flush=True)
     return 0
 
 
@@ -228,8 +243,10 @@ def _summary(res):
         v = eps[i, i][sup]
         v = v[np.isfinite(v)]
         if v.size:
-            stats.append(f"ε_{names[i]} {np.mean(v):+.2e} ± {np.std(v):.1e}")
-    lines.append(f"strain inside the crystal ({int(sup.sum())} voxels): " + ", ".join(stats))
+            stats.append(f"ε_{names[i]} {np.mean(v):+.2e} (spread {np.std(v):.1e})")
+    lines.append(f"strain inside the crystal ({int(sup.sum())} voxels), mean and spread (standard deviation "
+                 "over the voxels, not an uncertainty; per-voxel one-σ errors are in results.h5 "
+                 "/tensor/strain_uncertainty): " + ", ".join(stats))
     lines.append(f"G set condition number {tf.condition_number:.2f}")
     ml = r.get("mean_lattice") or {}
     if ml.get("lattice_parameter") is not None:
@@ -237,8 +254,15 @@ def _summary(res):
     for d in r["dislocations"]:
         b = " ".join(f"{v:+.2f}" for v in np.atleast_1d(d.burgers)) if d.burgers is not None else "unknown"
         c = ", ".join(f"{v / 10:.0f}" for v in d.center)
-        lines.append(f"dislocation: b = [{b}], {d.character_deg:.0f}° character, length {d.length / 10:.0f} nm, "
-                     f"centre ({c}) nm, seen in {len(d.visible_in)} reflections")
+        xi = np.asarray(d.directions, float).mean(axis=0) if len(d.directions) else np.full(3, np.nan)
+        xi = xi / np.linalg.norm(xi) if np.all(np.isfinite(xi)) and np.linalg.norm(xi) > 0 else xi
+        lines.append(f"dislocation: b = [{b}] (lattice) for the line direction ξ = "
+                     f"[{' '.join(f'{v:+.2f}' for v in xi)}] (sample frame), {d.character_deg:.0f}° character, "
+                     f"length {d.length / 10:.0f} nm, centre ({c}) nm, seen in {len(d.visible_in)} reflections")
+    if r["dislocations"]:
+        lines.append("  (b is defined for the line direction ξ (right-handed circuit about ξ, h·b = −winding): "
+                     "(−b, −ξ) is the same dislocation, so a sign of b only means something with ξ; "
+                     "docs/defects.md)")
     if not r["dislocations"]:
         lines.append("no dislocations found")
     for k, v in res["paths"].items():
@@ -255,7 +279,7 @@ def cmd_run(args):
 
     cfg = load_config(args.config)
     res = run_pipeline(cfg, args.out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
-                       progress=not args.quiet, log=None if args.quiet else print)
+                       progress=not args.quiet, log=None if args.quiet else print, command=args.command_line)
     _print(_summary(res), args.quiet)
     _print(_timing_table(res["timings"], res["wall_s"]), args.quiet)
     return 0
@@ -274,7 +298,7 @@ def cmd_demo(args):
     cfg = load_config(sim["pipeline"])
     _print("running the pipeline on the simulated scans ...", args.quiet)
     res = run_pipeline(cfg, out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
-                       progress=not args.quiet, log=None if args.quiet else print)
+                       progress=not args.quiet, log=None if args.quiet else print, command=args.command_line)
     _print(_summary(res), args.quiet)
     try:
         from braggstrain.simulate.demo import compare_to_truth
@@ -311,8 +335,13 @@ def cmd_report(args):
     from braggstrain.io import results as outputs
     from braggstrain.report import html as report
 
+    from braggstrain.io.scans import remove_partial_files
+    from braggstrain.pipeline import check_output_folder
+
     results = outputs.read_results(args.results)
     out = Path(args.out) if args.out else Path(args.results).resolve().parent
+    check_output_folder(out)
+    remove_partial_files(out / "figures", recursive=False)
     figs = figures.make_figures(results, out / "figures")
     path = report.write_report(results, out, figures=figs)
     _print(f"report: {path} ({len(figs)} figures)", args.quiet)
@@ -342,7 +371,21 @@ def cmd_plan(args):
     return 0
 
 
+def _positive_int(text):
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a positive whole number of worker processes, got {text!r}")
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"expected a positive number of worker processes, got {n}")
+    return n
+
+
 def build_parser():
+    # the common options, accepted before and after the command
+    common = argparse.ArgumentParser(add_help=False)
+    common.add_argument("-q", "--quiet", action="store_true", default=argparse.SUPPRESS,
+                        help="no progress output")
     p = argparse.ArgumentParser(prog="braggstrain",
                                 description="Strain tensor, lattice rotation and dislocations of a nanocrystal "
                                             "from Bragg coherent diffraction imaging at several reflections.")
@@ -350,70 +393,100 @@ def build_parser():
     p.add_argument("-q", "--quiet", action="store_true", help="no progress output")
     sub = p.add_subparsers(dest="command", required=True)
 
-    s = sub.add_parser("simulate", help="simulate the scans a pipeline file describes ([simulate] table)")
+    def add(name, **kw):
+        return sub.add_parser(name, parents=[common], **kw)
+
+    s = add("simulate", help="simulate the scans a pipeline file describes ([simulate] table)")
     s.add_argument("config", help="pipeline file (TOML)")
     s.add_argument("--out", required=True, help="output folder for scan files, truth.h5 and pipeline.toml")
     s.set_defaults(func=cmd_simulate)
 
-    s = sub.add_parser("inspect", help="describe a scan, raw and after preparation: a scan file, a frames "
-                                       "file/folder/pattern, or a pipeline file and a reflection")
+    s = add("inspect", help="describe a scan, raw and after preparation: a scan file, a frames "
+                            "file/folder/pattern, or a pipeline file and a reflection")
     s.add_argument("file", help="braggstrain scan file, frames source (HDF5 'file.h5#/path', EDF, CBF, TIFF, "
                                 "folder, glob pattern) or pipeline file (TOML)")
     s.add_argument("--reflection", default=None, help="with a pipeline file: the reflection's name (default: all)")
+    s.add_argument("--config", default=None,
+                   help="with a scan file: the pipeline file whose [prepare] options the preparation uses "
+                        "(default: the options' defaults)")
     s.set_defaults(func=cmd_inspect)
 
     def add_exec(sp):
         sp.add_argument("--resume", action="store_true", help="reuse checkpoints whose inputs did not change")
         sp.add_argument("--scheduler", default=None,
                         help="run phase retrieval on Dask: 'local' starts a LocalCluster, else a scheduler address")
-        sp.add_argument("--workers", type=int, default=None, help="worker processes (default: all cores)")
+        sp.add_argument("--workers", type=_positive_int, default=None,
+                        help="worker processes, at least 1 (default: all cores)")
 
-    s = sub.add_parser("demo", help="simulate the built-in demo crystal and run the whole pipeline on it")
+    s = add("demo", help="simulate the built-in demo crystal and run the whole pipeline on it")
     s.add_argument("out", help="output folder")
     add_exec(s)
     s.set_defaults(func=cmd_demo)
 
-    s = sub.add_parser("run", help="run the pipeline a pipeline file describes")
+    s = add("run", help="run the pipeline a pipeline file describes")
     s.add_argument("config", help="pipeline file (TOML)")
     s.add_argument("--out", required=True, help="output folder")
     add_exec(s)
     s.set_defaults(func=cmd_run)
 
-    s = sub.add_parser("prepare", help="prepare every scan of a pipeline file and write it to HDF5")
+    s = add("prepare", help="prepare every scan of a pipeline file and write it to HDF5")
     s.add_argument("config", help="pipeline file (TOML)")
     s.add_argument("--out", required=True, help="output folder")
     s.set_defaults(func=cmd_prepare)
 
-    s = sub.add_parser("report", help="rebuild the figures and the HTML report from a results file")
+    s = add("report", help="rebuild the figures and the HTML report from a results file")
     s.add_argument("results", help="results.h5")
     s.add_argument("--out", default=None, help="output folder (default: beside the results file)")
     s.set_defaults(func=cmd_report)
 
-    s = sub.add_parser("export", help="export a results file for other programs")
+    s = add("export", help="export a results file for other programs")
     s.add_argument("results", help="results.h5")
     s.add_argument("--vtk", action="store_true", help="VTK ImageData (.vti) files for ParaView")
     s.add_argument("--out", default=None, help="output folder (default: vtk/ beside the results file)")
     s.set_defaults(func=cmd_export)
 
-    s = sub.add_parser("plan", help="plan which reflections to measure, at which angles")
+    s = add("plan", help="plan which reflections to measure, at which angles")
     s.add_argument("config", help="pipeline file (TOML) with [crystal], [instrument] and [plan]")
     s.add_argument("--out", default=None, help="folder for the figure and the pipeline fragment (default: ./plan)")
     s.set_defaults(func=cmd_plan)
     return p
 
 
+def _stdout_gone():
+    """stdout's reader went away (``| head``): say nothing more, as command-line
+    tools do; later writes and the final flush go to /dev/null."""
+    try:
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        os.close(devnull)
+    except (OSError, ValueError, AttributeError):  # pragma: no cover - stdout without a descriptor
+        pass
+    return 1
+
+
 def main(argv=None):
     parser = build_parser()
+    program = argv is None  # called as the program itself, not from Python
+    argv = sys.argv[1:] if argv is None else list(argv)
     args = parser.parse_args(argv)
     if not hasattr(args, "quiet"):
         args.quiet = False
+    args.command_line = shlex.join(["braggstrain", *argv])
     try:
         return int(args.func(args) or 0)
+    except BrokenPipeError:
+        return _stdout_gone()
     except InputError as e:
         print(f"braggstrain: error: {e}", file=sys.stderr)
         return 2
     except BraggStrainError as e:
         print(f"braggstrain: failed: {e}", file=sys.stderr)
+        if getattr(e, "unclean_exit", False) and program:
+            # HDF5 holds a file it could not flush (full disk) and may crash at
+            # exit: leave now, the message said everything (outputs are closed)
+            sys.stdout.flush()
+            sys.stderr.flush()
+            os._exit(1)
         return 1
     except KeyboardInterrupt:
         print("braggstrain: interrupted", file=sys.stderr)

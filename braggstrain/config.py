@@ -115,6 +115,9 @@ SCHEMA = _Table(
     ),
     instrument=_Table(
         energy_kev=_Spec(NUM, required=True, check=_positive, doc="photon energy, keV"),
+        override=_Spec(str, None, check=_choice("pipeline", "scans"),
+                       doc="which values win when this file and a scan file disagree (energy, detector "
+                           "distance, pixel size, circles); unset: a disagreement is refused"),
         beam=_Spec(str, "y+", check=_axis),
         sample_circles=_Array(_CIRCLE, min_items=1),
         detector_circles=_Array(_CIRCLE, min_items=0),
@@ -183,6 +186,12 @@ SCHEMA = _Table(
             tensor=_Spec(list, None, check=_matrix3),
             rotvec_deg=_Spec(list, None, check=_vec(3)),
         )),
+    ),
+    checks=_Table(
+        q_tolerance=_Spec(NUM, 0.01, check=_positive,
+                          doc="largest relative difference between |Q| at the measured peak and |G(hkl)|"),
+        direction_tolerance_deg=_Spec(NUM, 2.0, check=_positive,
+                                      doc="largest angle between Q at the peak and the declared G, degrees"),
     ),
     prepare=_Spec(dict, {}, doc="options of braggstrain.prepare.prepare_scan"),
     phasing=_Spec(dict, {}, doc="ensemble size, seed and plan of phase retrieval"),
@@ -267,7 +276,19 @@ def validate_config(raw, source="<pipeline>", require_reflections=True):
                     raise ConfigError(f"{source}: key 'reflection[{i}].angles.{k}': unknown circle"
                                       f"{_did_you_mean(k, names)}; expected one of {names}")
     cfg["_source"] = str(source)
+    cfg["_given"] = sorted(_given_keys(raw.get("instrument", {}), "instrument"))
     return cfg
+
+
+def _given_keys(table, where):
+    """Dotted keys written in the file (not filled in from defaults)."""
+    out = set()
+    if isinstance(table, dict):
+        for k, v in table.items():
+            out.add(f"{where}.{k}")
+            if isinstance(v, dict):
+                out |= _given_keys(v, f"{where}.{k}")
+    return out
 
 
 def load_config(path, require_reflections=True):

@@ -16,6 +16,7 @@ __all__ = [
     "GeometryError",
     "PhasingError",
     "TensorError",
+    "OutputError",
 ]
 
 
@@ -58,3 +59,8 @@ class PhasingError(BraggStrainError):
 
 class TensorError(InputError):
     """Reflections cannot determine the strain tensor (too few, coplanar, ...)."""
+
+
+class OutputError(BraggStrainError):
+    """An output cannot be written (the disk is full, the folder cannot hold
+    the run). Earlier files are left as they were."""

@@ -22,6 +22,10 @@ import difflib
 import inspect
 import os
 import platform
+import shlex
+import shutil
+import sys
+import tempfile
 import time
 from datetime import datetime, timezone
 from pathlib import Path
@@ -29,11 +33,14 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain.config import build_crystal, build_instrument, resolve_path
-from braggstrain.errors import BraggStrainError, ConfigError, InputError, TensorError
+from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, check_reflection_identity
+from braggstrain.errors import (BraggStrainError, ConfigError, InputError, OutputError, ReflectionError,
+                                ScanFileError, TensorError)
 from braggstrain.strain.objects import SampleObject
 from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 
-__all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES"]
+__all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES",
+           "estimate_output_bytes", "check_output_folder"]
 
 STAGES = ("prepare", "grid", "phase", "frame", "register", "tensor", "defects", "outputs")
 
@@ -260,13 +267,12 @@ def _executor(scheduler, workers):
     """Yield (executor, description) for the random starts."""
     n = int(workers) if workers else (os.cpu_count() or 1)
     if scheduler is None:
-        from concurrent.futures import ProcessPoolExecutor
-        import multiprocessing as mp
+        from braggstrain.phasing.ensemble import worker_pool
 
         if n <= 1:
             yield None, "in-process (1 worker)"
             return
-        ex = ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context("spawn"))
+        ex = worker_pool(n)
         try:
             yield ex, f"local process pool ({n} workers)"
         finally:
@@ -321,7 +327,9 @@ def _scan_for(cfg, i, r, prepare_opts=None):
         p = resolve_path(cfg, r["scan"], f"reflection[{i}].scan")
         if not p.exists():
             raise ConfigError(f"{src}: key 'reflection[{i}].scan': file {p} not found")
-        return read_scan(p), file_digest(p)
+        scan = read_scan(p)
+        scan.instrument, scan.extra["instrument_from"] = _agree_instrument(cfg, i, scan)
+        return scan, file_digest(p)
     if r["frames"] is None:
         raise ConfigError(f"{src}: key 'reflection[{i}]': expected 'scan' (a scan file) or 'frames' (a frame stack)")
     scans = reflection_scan(r, build_instrument(cfg), base_dir=cfg.get("_dir", "."), key=f"reflection[{i}]",
@@ -337,10 +345,194 @@ def _scan_for(cfg, i, r, prepare_opts=None):
     fit_rocking_step(scan.rocking_angles, source=scan.extra.get("sources", {}).get(rc, scan.path),
                      field=f"reflection[{i}].angles.{rc}")  # refused here, before any work
     digest = hash_inputs(scan.frames, scan.mask, scan.monitor, scan.angles, scan.instrument, scan.extra.get("roi"))
+    scan.extra.setdefault("instrument_from", "the pipeline file (and the files it names)")
     return scan, digest
 
 
-def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, progress=True, log=print):
+# Relative tolerance for "the same value" of a pipeline file and a scan file:
+# both hold the number written by a person or a control system, so any real
+# difference is far larger (common practice, no source).
+_SAME = 1e-6
+
+
+def _instrument_differences(cfg, inst):
+    """(what, pipeline value, scan value) for every instrument value the
+    pipeline file states explicitly and the scan file records differently."""
+    given = set(cfg.get("_given", ()))
+    ins = cfg["instrument"]
+    det = ins["detector"]
+    out = []
+
+    def differ(a, b):
+        a, b = np.atleast_1d(np.asarray(a, float)), np.atleast_1d(np.asarray(b, float))
+        return a.shape != b.shape or not np.allclose(a, b, rtol=_SAME, atol=0)
+    if "instrument.energy_kev" in given and differ(ins["energy_kev"], inst.energy_kev):
+        out.append(("energy", f"{ins['energy_kev']:g} keV", f"{inst.energy_kev:g} keV"))
+    if "instrument.detector.distance_m" in given and differ(det["distance_m"], inst.detector.distance):
+        out.append(("detector distance", f"{det['distance_m']:g} m", f"{inst.detector.distance:g} m"))
+    if "instrument.detector.pixel_size_um" in given and differ(np.asarray(det["pixel_size_um"]) * 1e-6,
+                                                                inst.detector.pixel_size):
+        out.append(("pixel size", "×".join(f"{v:g}" for v in det["pixel_size_um"]) + " µm",
+                    "×".join(f"{v * 1e6:g}" for v in inst.detector.pixel_size) + " µm"))
+    for role, circles in (("sample_circles", inst.sample_circles), ("detector_circles", inst.detector_circles)):
+        if f"instrument.{role}" in given:
+            mine = [f"{c['name']} {c['axis']}" for c in ins[role]]
+            theirs = [f"{c.name} {c.axis}" for c in circles]
+            if mine != theirs:
+                out.append((f"{role.replace('_', ' ')} (name axis, outermost first)",
+                            ", ".join(mine), ", ".join(theirs)))
+    return out
+
+
+def _agree_instrument(cfg, i, scan):
+    """The instrument a scan file is processed with, and where its values come from.
+
+    A value the pipeline file states and the scan file records differently
+    (energy, detector distance, pixel size, circles) is refused unless
+    ``instrument.override`` says which wins."""
+    src = cfg.get("_source", "<pipeline>")
+    diffs = _instrument_differences(cfg, scan.instrument)
+    if not diffs:
+        return scan.instrument, "the scan files, in agreement with the pipeline file"
+    what = "; ".join(f"{w}: pipeline file says {a}, scan file {b}" for w, a, b in diffs)
+    override = cfg["instrument"].get("override")
+    if override is None:
+        raise ConfigError(f"{src}: key 'reflection[{i}].scan': the scan file {scan.path} disagrees with the "
+                          f"pipeline file ({what}); expected the same values, or instrument.override = "
+                          f"\"pipeline\" or \"scans\" to say which wins")
+    if override == "scans":
+        return scan.instrument, f"the scan files (instrument.override = \"scans\"; {what})"
+    inst = build_instrument(cfg)
+    missing = [c.name for c in inst.circles if c.name not in scan.angles]
+    if missing:
+        raise ConfigError(f"{src}: key 'instrument.override': the pipeline file's circles {missing} have no "
+                          f"angles in the scan file {scan.path}; expected the scan file's circle names")
+    return inst, f"the pipeline file (instrument.override = \"pipeline\"; {what})"
+
+
+def _fmt_hkl(hkl):
+    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
+
+
+def _describe_instrument(inst):
+    d = inst.detector
+    return (f"energy {inst.energy_kev:g} keV, detector distance {d.distance:g} m, pixel size "
+            + "×".join(f"{v * 1e6:g}" for v in d.pixel_size) + " µm, circles "
+            + ", ".join(f"{c.name} {c.axis}" for c in inst.circles))
+
+
+def check_output_folder(out):
+    """Create the output folder and check that it (and its subfolders of
+    this project) can be written, before any work. Raises InputError naming
+    the folder."""
+    out = Path(out)
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as e:
+        raise InputError(f"{out}: output folder not writable ({e.strerror or e}); expected a folder you can "
+                         "write to (--out)") from None
+    for d in (out, out / "checkpoints", out / "figures", out / "vtk"):
+        if not d.is_dir():
+            continue
+        try:
+            fd, probe = tempfile.mkstemp(prefix=".braggstrain-probe.", dir=d)
+            os.close(fd)
+            os.unlink(probe)
+        except OSError as e:
+            raise InputError(f"{d}: output folder not writable ({e.strerror or e}); expected a folder you can "
+                             "write to (--out)") from None
+
+
+def _frames_shape(cfg, i, r):
+    """(frames, rows, columns) of reflection i's data, read from the file's header."""
+    import h5py
+
+    if r.get("scan") is not None:
+        with h5py.File(resolve_path(cfg, r["scan"], f"reflection[{i}].scan"), "r") as f:
+            return tuple(f["frames"].shape)
+    p = resolve_path(cfg, r["frames"], f"reflection[{i}].frames")
+    if p.is_dir():
+        from skimage import io
+
+        files = sorted(q for q in p.iterdir() if q.suffix.lower() in (".tif", ".tiff"))
+        return (len(files),) + tuple(io.imread(str(files[0])).shape)
+    with h5py.File(p, "r") as f:
+        return tuple(f[r["dataset"]].shape)
+
+
+def estimate_output_bytes(cfg, shapes=None, prepared=None):
+    """An estimate, on the safe side, of the bytes a run writes into its
+    output folder (before compression).
+
+    Per reflection, the prepared and phased arrays (14 bytes per voxel of
+    the array phase retrieval works on: float32 intensity, mask, complex64
+    object, support); on the common sample-frame grid, 32 bytes per voxel
+    and reflection (sample-frame, registered and result maps) and 450 bytes
+    per voxel for the tensor's checkpoint, results and VTK fields (every
+    component, uncertainty and derived map); plus 6 MB for the figures and
+    the report. Measured on the demo (``braggstrain demo``): 14.1 and 30
+    bytes per voxel, 440 bytes per voxel, 2.2 MB of figures and report.
+
+    Parameters
+    ----------
+    cfg : validated pipeline dict
+    shapes : list of (frames, rows, columns) of each reflection's data
+        (read from the files' headers when None)
+    prepared : list of PreparedScan, optional; with them the arrays' shapes
+        and oversampling are known exactly (the common grid then spans the
+        crystal, twice its extent N/σ per axis); without them, the crop (or
+        ``max_crop``) bounds the arrays and the common grid.
+    """
+    if prepared is not None:
+        n_prep = [float(np.prod(p.intensity.shape)) for p in prepared]
+        common = max(float(np.prod(np.ceil(2 * np.asarray(p.intensity.shape) / np.maximum(p.oversampling, 1))))
+                     for p in prepared)
+    else:
+        opts = check_options(cfg)
+        pr = opts["prepare"]
+        binning = np.broadcast_to(np.asarray(pr.get("bin", (1, 1, 1)), int), (3,))
+        max_crop = np.broadcast_to(np.asarray(pr.get("max_crop", (128, 256, 256)), int), (3,))
+        crop = pr.get("crop", "auto")
+        pad = pr.get("pad")
+        n_prep = []
+        for i, r in enumerate(cfg["reflection"]):
+            shape = np.asarray(shapes[i] if shapes is not None else _frames_shape(cfg, i, r), int)
+            if isinstance(crop, str):
+                size = shape if crop == "full" else np.minimum(shape, max_crop)
+            else:
+                size = np.minimum(shape, np.asarray(crop, int))
+            size = np.maximum(size // binning, 1)
+            if pad is not None:
+                size = np.maximum(size, np.asarray(pad, int))
+            n_prep.append(float(np.prod(size)))
+        common = max(n_prep)
+    n_refl = len(n_prep)
+    return int(14 * sum(n_prep) + common * (32 * n_refl + 450) + 6e6)
+
+
+def _existing_output_bytes(out):
+    """Bytes of earlier outputs in ``out`` that a run replaces."""
+    out = Path(out)
+    files = [out / "results.h5", out / "report.html", out / "dislocations.csv", out / "dislocations.json"]
+    for d in ("checkpoints", "figures", "vtk"):
+        if (out / d).is_dir():
+            files += [p for p in (out / d).iterdir()]
+    return sum(p.stat().st_size for p in files if p.is_file())
+
+
+def _check_space(out, need):
+    free = shutil.disk_usage(out).free
+    # replaced files free their space; a replacement needs both for a moment
+    need = max(need - _existing_output_bytes(out), need // 4)
+    if need > free:
+        raise OutputError(f"{out}: the run needs about {need / 1e6:.1f} MB (checkpoints, results, figures, VTK; "
+                          f"estimated from the scan sizes), only {free / 1e6:.1f} MB free there; free some space "
+                          f"or choose another --out")
+    return free
+
+
+def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, progress=True, log=print,
+                 command=None):
     """Run the whole pipeline of a validated pipeline dict into ``out_dir``.
 
     Parameters
@@ -353,6 +545,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     workers : worker processes (default: all cores)
     progress : tqdm bars for phasing
     log : callable for progress lines, or None
+    command : the command line recorded in the provenance (default: this
+        process's own)
 
     Returns
     -------
@@ -368,12 +562,13 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
     say = log or (lambda *a, **k: None)
     t_start = time.perf_counter()
+    if workers is not None and (isinstance(workers, bool) or not isinstance(workers, (int, np.integer))
+                                or workers < 1):
+        raise InputError(f"--workers: expected a positive number of worker processes, got {workers!r}")
     opts = check_options(cfg)
     crystal = build_crystal(cfg)
     src = cfg.get("_source", "<pipeline>")
     out = Path(out_dir)
-    out.mkdir(parents=True, exist_ok=True)
-    run = PipelineRun(out, resume, say)
     hkls = [tuple(r["hkl"]) for r in cfg["reflection"]]
     names = [r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m") for r in cfg["reflection"]]
     import re
@@ -396,10 +591,36 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     if not np.isfinite(cond) or cond > max_cond:
         raise ConfigError(f"{src}: key 'reflection': the reflections {hkls} are coplanar or ill-conditioned "
                           f"(condition number {cond:.3g} > {max_cond:g}); expected three or more non-coplanar")
-    # read every scan up front, so bad input fails before any work is done
+    # the output folder: writable, no stale partial files of an earlier killed run
+    check_output_folder(out)
+    from braggstrain.io.scans import remove_partial_files
+
+    stale = remove_partial_files(out)
+    if stale:
+        say(f"removed {len(stale)} partial file(s) left by an interrupted run in {out}")
+    run = PipelineRun(out, resume, say)
+
+    # read every scan and check everything about the data before any work
     scans = []
     for i, r in enumerate(cfg["reflection"]):
         scans.append(_scan_for(cfg, i, r, opts["prepare"]))
+    used = {}
+    for i, ((scan, _), h) in enumerate(zip(scans, hkls)):
+        where = f"{src}: key 'reflection[{i}].hkl'"
+        try:
+            crystal.reflection(h, energy_kev=scan.instrument.energy_kev)
+        except ReflectionError as e:
+            raise ConfigError(f"{where}: {e}") from None
+        if scan.hkl is not None and tuple(int(v) for v in scan.hkl) != tuple(h):
+            raise ConfigError(f"{where}: declared {_fmt_hkl(h)}, but the scan file {scan.path} records "
+                              f"/sample@hkl = {_fmt_hkl(scan.hkl)}; expected the same reflection")
+        if not np.any(scan.frames):
+            raise ScanFileError(scan.path, "frames", "every count is zero (no beam, a closed shutter or the wrong "
+                                                     "file?); expected a measured Bragg peak")
+        used.setdefault((_describe_instrument(scan.instrument), scan.extra.get("instrument_from", "")),
+                        []).append(names[i])
+    for (desc, where_from), who in used.items():
+        say(f"instrument: {desc} (from {where_from}" + (f"; for {', '.join(who)}" if len(used) > 1 else "") + ")")
     ph_opts = dict(opts["phasing"])
     runs = int(ph_opts.pop("runs", 8))
     keep = int(ph_opts.pop("keep", 4))
@@ -414,26 +635,46 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         fr_opts["voxel_size"] = float(voxel_nm) * 10.0
     if origin_nm is not None:
         fr_opts["origin"] = np.asarray(origin_nm, float) * 10.0
+    checks = cfg.get("checks") or {}
+    q_tol = float(checks.get("q_tolerance", Q_TOLERANCE))
+    dir_tol = float(checks.get("direction_tolerance_deg", DIRECTION_TOLERANCE_DEG))
+
+    # -- prepare every scan (all its checks on the data), then check what each peak is
+    prepared_all = []
+    for j, ((scan, digest), name, h) in enumerate(zip(scans, names, hkls)):
+        k_prep = hash_inputs("prepare", digest, opts["prepare"], scan.instrument.to_dict())
+        with run.timed("prepare"):
+            pp = run.path("prepare", name, k_prep)
+            prepared = None
+            if resume and pp.exists():
+                try:
+                    prepared = prp.read_prepared(pp)
+                    run.reused.append(f"prepare:{name}")
+                except BraggStrainError:
+                    prepared = None
+            if prepared is None:
+                prepared = prp.prepare_scan(scan, **_prepare_options(scan, opts["prepare"]))
+        prepared_all.append((prepared, k_prep, pp))
+    for j, ((prepared, _, _), h) in enumerate(zip(prepared_all, hkls)):
+        try:
+            check_reflection_identity(crystal, h, prepared.q_center_sample, where=f"reflection[{j}] '{names[j]}'",
+                                      q_tolerance=q_tol, direction_tolerance_deg=dir_tol,
+                                      energy_kev=prepared.instrument.energy_kev)
+        except ReflectionError as e:
+            raise ConfigError(f"{src}: key 'reflection[{j}].hkl': {e} (tolerances: checks.q_tolerance, "
+                              f"checks.direction_tolerance_deg)") from None
+    # the space the run needs, before anything is written
+    _check_space(out, estimate_output_bytes(cfg, prepared=[p for p, _, _ in prepared_all]))
+    for (prepared, _, pp), name in zip(prepared_all, names):
+        if not pp.exists():
+            run.ck.mkdir(parents=True, exist_ok=True)
+            prp.write_prepared(prepared, pp)
 
     per_refl = []
     with _executor(scheduler, workers) as (executor, where):
         say(f"phase retrieval runs on: {where}")
         for j, ((scan, digest), name, h) in enumerate(zip(scans, names, hkls)):
-            # -- prepare
-            k_prep = hash_inputs("prepare", digest, opts["prepare"])
-            with run.timed("prepare"):
-                pp = run.path("prepare", name, k_prep)
-                prepared = None
-                if resume and pp.exists():
-                    try:
-                        prepared = prp.read_prepared(pp)
-                        run.reused.append(f"prepare:{name}")
-                    except BraggStrainError:
-                        prepared = None
-                if prepared is None:
-                    prepared = prp.prepare_scan(scan, **_prepare_options(scan, opts["prepare"]))
-                    run.ck.mkdir(parents=True, exist_ok=True)
-                    prp.write_prepared(prepared, pp)
+            prepared, k_prep, _ = prepared_all[j]
             data = prepared
             k_data = k_prep
             # -- grid (orthogonal route only)
@@ -542,6 +783,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     # -- outputs
     results = _bundle(cfg, crystal, per_refl, registered, rt["report"], tfield, dislocations, mean_lattice,
                       run, base_seed, runs, keep, route)
+    results["provenance"]["command"] = command if command is not None else shlex.join(
+        [Path(sys.argv[0]).name or "python", *sys.argv[1:]])
     paths = {}
     with run.timed("outputs"):
         from braggstrain.report import figures as figm
@@ -549,19 +792,26 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         from braggstrain.report import html as repm
 
         ou = opts["output"]
-        wall = time.perf_counter() - t_start
+        t_out = time.perf_counter()
         results["provenance"]["timings"] = dict(run.timings)
-        results["provenance"]["wall_s"] = wall
+        results["provenance"]["wall_s"] = time.perf_counter() - t_start
         paths["results"] = outp.write_results(out / "results.h5", results)
+        figs = None
         if ou.get("figures", True) or ou.get("report", True):
             figs = figm.make_figures(results, out / "figures")
             paths["figures"] = figs
-            if ou.get("report", True):
-                paths["report"] = repm.write_report(results, out, figures=figs)
         if ou.get("vtk", True):
             paths["vtk"] = outp.export_vtk(results, out / "vtk")
         paths["dislocations"] = [dfx.write_dislocation_table(dislocations, out / "dislocations.csv"),
                                  dfx.write_dislocation_table(dislocations, out / "dislocations.json")]
+        # the outputs stage's own time, up to the report (which shows it)
+        timings = dict(run.timings)
+        timings["outputs"] = timings.get("outputs", 0.0) + time.perf_counter() - t_out
+        results["provenance"]["timings"] = timings
+        results["provenance"]["wall_s"] = time.perf_counter() - t_start
+        if ou.get("report", True):
+            paths["report"] = repm.write_report(results, out, figures=figs)
+        outp.update_provenance(paths["results"], {"timings": timings, "wall_s": results["provenance"]["wall_s"]})
     wall = time.perf_counter() - t_start
     return {"results": results, "paths": paths, "timings": dict(run.timings), "wall_s": wall,
             "phasing_s": run.phasing_seconds, "phasing_share": run.phasing_seconds / wall if wall else 0.0,
@@ -680,7 +930,10 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
         "crystal": {"material": crystal.name, "lattice_parameters": list(crystal.lattice_parameters),
                     "U": crystal.U},
         "provenance": {"pipeline_text": cfg.get("_text", ""), "pipeline_file": cfg.get("_source", ""),
-                       "versions": _versions(), "seeds": {"phasing": seed, "runs": runs, "keep": keep},
+                       "versions": _versions(),
+                       "seeds": {"phasing": seed, **{f"phasing {p['name']}": seed + 7919 * j
+                                                     for j, p in enumerate(per_refl)}},
+                       "ensemble": {"runs": runs, "keep": keep},
                        "timings": dict(run.timings), "reused": list(run.reused),
                        "created": datetime.now(timezone.utc).isoformat(timespec="seconds")},
     }

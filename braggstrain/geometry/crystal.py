@@ -17,7 +17,16 @@ import numpy as np
 
 from braggstrain.errors import InputError, ReflectionError
 
-__all__ = ["HC_KEV_ANGSTROM", "wavelength", "Crystal", "orientation_from_two_reflections"]
+__all__ = ["HC_KEV_ANGSTROM", "wavelength", "Crystal", "orientation_from_two_reflections",
+           "check_reflection_identity", "Q_TOLERANCE", "DIRECTION_TOLERANCE_DEG"]
+
+#: Default tolerances of :func:`check_reflection_identity` (common practice,
+#: no source): 1 % in |Q| is about ten times a typical nanocrystal's strain
+#: and a geometry calibration's error, and far below the smallest gap
+#: between two reflections' |G| of a cubic crystal at low indices (√3/2 vs 1,
+#: about 13 %); 2° in direction allows a rough orientation matrix.
+Q_TOLERANCE = 0.01
+DIRECTION_TOLERANCE_DEG = 2.0
 
 #: hc in keV·Å (CODATA 2018: h c = 1.239 841 984 × 10⁻⁶ eV·m).
 HC_KEV_ANGSTROM = 12.398419843320026
@@ -390,3 +399,70 @@ class Crystal:
     def __repr__(self):
         a = ", ".join(f"{v:.4f}" for v in self.lattice_parameters)
         return f"Crystal({self.name!r}, a=({a}) Å, {self.centring}-centred)"
+
+
+def check_reflection_identity(crystal, hkl, q_sample, *, where="reflection", q_tolerance=Q_TOLERANCE,
+                              direction_tolerance_deg=DIRECTION_TOLERANCE_DEG, energy_kev=None):
+    """Check that a measured peak is the reflection it is declared to be.
+
+    The scattering vector Q at the measured peak (from the geometry and the
+    angles, in the sample frame) must match G = U·B·h of the declared
+    reflection: |Q| within ``q_tolerance`` (relative) of |G|, and its
+    direction within ``direction_tolerance_deg`` of G's.
+
+    Parameters
+    ----------
+    crystal : Crystal (its orientation U is the declared one)
+    hkl : 3 ints, the declared reflection
+    q_sample : (3,) float, Q at the peak in the sample frame, Å⁻¹
+    where : str, how the message names the reflection (e.g. a pipeline key)
+    q_tolerance : float, relative (default 0.01)
+    direction_tolerance_deg : float, degrees (default 2)
+    energy_kev : float, optional; with it the reflections suggested are the
+        reachable ones only
+
+    Returns
+    -------
+    (relative |Q| difference, angle in degrees)
+
+    Raises
+    ------
+    ReflectionError
+        naming the reflection, the measured |Q| and d, how far off they are
+        and the crystal's reflections that would fit the peak.
+    """
+    q = np.asarray(q_sample, float).reshape(3)
+    h = _hkl(hkl)
+    g = crystal.g_sample(h)
+    qn, gn = float(np.linalg.norm(q)), float(np.linalg.norm(g))
+    if not (np.isfinite(qn) and qn > 0):
+        raise ReflectionError(f"{where}: the measured peak has no usable Q ({q.tolist()}); expected a Bragg peak")
+    dq = abs(qn - gn) / gn
+    ang = float(np.degrees(np.arccos(np.clip(q @ g / (qn * gn), -1.0, 1.0))))
+    if dq <= q_tolerance and ang <= direction_tolerance_deg:
+        return dq, ang
+    wrong = []
+    if dq > q_tolerance:
+        wrong.append(f"{100 * dq:.2f} % from |G{_fmt(h)}| = {gn:.4f} Å⁻¹ (d = {2 * np.pi / gn:.4f} Å, "
+                     f"tolerance {100 * q_tolerance:g} %)")
+    if ang > direction_tolerance_deg:
+        wrong.append(f"{ang:.1f}° from the declared direction of {_fmt(h)} in the sample frame "
+                     f"(tolerance {direction_tolerance_deg:g}°)")
+    fits, same_q = [], []
+    for c in crystal.allowed_reflections(qn * (1 + q_tolerance) * (1 + 1e-9), energy_kev=energy_kev):
+        gc = crystal.g_sample(c)
+        gcn = np.linalg.norm(gc)
+        if abs(qn - gcn) / gcn > q_tolerance:
+            continue
+        a = np.degrees(np.arccos(np.clip(q @ gc / (qn * gcn), -1.0, 1.0)))
+        (fits if a <= direction_tolerance_deg else same_q).append(_fmt(c))
+    if fits:
+        hint = f"reflections of {crystal.name} that would fit: {', '.join(fits)}"
+    elif same_q:
+        more = len(same_q) > 6
+        hint = (f"no reflection of {crystal.name} fits in the declared orientation; by |Q| alone: "
+                f"{', '.join(same_q[:6])}{', …' if more else ''} (check the orientation)")
+    else:
+        hint = f"no reflection of {crystal.name} has this |Q| (check the energy, distance and pixel size)"
+    raise ReflectionError(f"{where} {_fmt(h)}: the measured peak has |Q| = {qn:.4f} Å⁻¹ (d = {2 * np.pi / qn:.4f} Å), "
+                          + " and ".join(wrong) + f"; {hint}")

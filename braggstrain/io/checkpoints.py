@@ -15,7 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain.errors import BraggStrainError
-from braggstrain.io.scans import atomic_path
+from braggstrain.io.scans import atomic_path, nbytes_of
 
 __all__ = ["save_tree", "load_tree", "hash_inputs", "file_digest"]
 
@@ -93,7 +93,7 @@ def save_tree(path, tree, attrs=None):
     """Write a tree to ``path`` atomically; ``attrs`` go on the root."""
     import h5py
 
-    with atomic_path(path) as tmp:
+    with atomic_path(path, size_hint=nbytes_of(tree)) as tmp:
         with h5py.File(tmp, "w") as f:
             for k, v in (attrs or {}).items():
                 f.attrs[k] = v

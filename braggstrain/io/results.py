@@ -37,8 +37,8 @@ from typing import Any, TypedDict
 
 import numpy as np
 
-from braggstrain.errors import BraggStrainError, InputError
-from braggstrain.io.scans import atomic_path
+from braggstrain.errors import BraggStrainError, InputError, OutputError
+from braggstrain.io.scans import atomic_path, disk_full_message, is_disk_full, nbytes_of
 from braggstrain.strain.grid import Grid
 
 __all__ = [
@@ -614,7 +614,7 @@ def write_results(path, results):
     shape = grid.shape
     vs = grid.voxel_size
     tf = r["tensor"]
-    with atomic_path(path) as tmp:
+    with atomic_path(path, size_hint=nbytes_of(r)) as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["content"] = _CONTENT
             f.attrs["layout_version"] = LAYOUT_VERSION
@@ -843,7 +843,103 @@ def read_results(path):
         f = h5py.File(path, "r")
     except OSError as exc:
         raise InputError(f"{path}: cannot be opened as HDF5 ({exc}); expected a results file") from None
-    with f:
+    trail = _Trail(f)
+    try:
+        with f:
+            return _read_all(trail, path)
+    except InputError:
+        raise
+    except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError, AttributeError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise InputError(f"{path}: damaged: cannot read '{trail.last}' ({first}); expected a readable "
+                         f"results file (rerun the pipeline with --resume to write it again)") from None
+
+
+class _Trail:
+    """Wraps an open file so every group, dataset and attribute read is
+    remembered: a read that fails then names what it was reading."""
+
+    def __init__(self, node, trail=None):
+        self._node = node
+        self._trail = trail if trail is not None else self
+        if trail is None:
+            self.last = "/"
+
+    def _wrap(self, obj):
+        import h5py
+
+        if isinstance(obj, (h5py.Group, h5py.Dataset)):
+            return _Trail(obj, self._trail)
+        return obj
+
+    def __getitem__(self, key):
+        self._trail.last = (self._node.name.rstrip("/") + "/" + key) if isinstance(key, str) else self._node.name
+        if isinstance(key, str):
+            return self._wrap(self._node[key])
+        return self._node[key]
+
+    def __contains__(self, key):
+        self._trail.last = self._node.name.rstrip("/") + "/" + str(key)
+        return key in self._node
+
+    def __iter__(self):
+        return iter(self._node)
+
+    def __len__(self):
+        return len(self._node)
+
+    def items(self):
+        self._trail.last = self._node.name
+        return [(k, self._wrap(v)) for k, v in self._node.items()]
+
+    @property
+    def attrs(self):
+        self._trail.last = self._node.name + " (attributes)"
+        return self._node.attrs
+
+    def __getattr__(self, name):
+        return getattr(self._node, name)
+
+
+def update_provenance(path, values):
+    """Replace entries of a results file's ``/provenance`` (e.g. the final
+    ``timings``), atomically: a copy is edited and renamed onto ``path``."""
+    import h5py
+
+    path = Path(path)
+    with atomic_path(path, size_hint=path.stat().st_size) as tmp:
+        shutil.copyfile(path, tmp)
+        with h5py.File(tmp, "r+") as f:
+            p = f["provenance"]
+            other = _get(p["other"]) if "other" in p else {}
+            for key, value in values.items():
+                if key in ("versions", "seeds", "timings"):
+                    if key in p:
+                        del p[key]
+                    _put(p, key, value, f"results['provenance']['{key}']")
+                    if key == "timings":
+                        p["timings"].attrs["units"] = "s"
+                        p["timings"].attrs["units_summary"] = True
+                elif key in ("command", "created"):
+                    p.attrs[key] = value
+                else:
+                    other[key] = value
+            if other:
+                if "other" in p:
+                    del p["other"]
+                _put(p, "other", other, "results['provenance']")
+    return path
+
+
+def _raw(node):
+    return node._node if isinstance(node, _Trail) else node
+
+
+def _read_all(f, path):
+    from braggstrain.defects.lines import read_dislocations_h5
+    from braggstrain.strain.tensor import TensorField
+
+    if True:
         if _text(f.attrs.get("content")) != _CONTENT:
             raise InputError(f"{path}: attribute 'content' is {_text(f.attrs.get('content'))!r}; expected "
                              f"'{_CONTENT}' (a file written by braggstrain.outputs.write_results)")
@@ -889,21 +985,21 @@ def read_results(path):
         order = [str(s) for s in _plain(rg.attrs["order"])]
         out["reflections"] = [_read_reflection(_need(rg, name, path), path) for name in order]
         dg = _need(f, "dislocations", path)
-        out["dislocations"] = read_dislocations_h5(dg)
+        out["dislocations"] = read_dislocations_h5(_raw(dg))
         if "points_frame" not in dg.attrs:
             # written before the line points were put on the grid (issue 17): they were
             # computed with the origin taken as zero, i.e. relative to the voxel at n//2
             for d in out["dislocations"]:
                 d.points = d.points + grid["origin"]
         for key in ("registration", "mean_lattice"):
-            out[key] = _get(f[key]) if key in f else {}
+            out[key] = _get(_raw(f[key])) if key in f else {}
         p = _need(f, "provenance", path)
         prov = {"pipeline_text": _text(p["pipeline_text"][()]) if "pipeline_text" in p else "",
                 "command": _text(p.attrs.get("command")), "created": _text(p.attrs.get("created"))}
         for key in ("versions", "seeds", "timings"):
-            prov[key] = _get(p[key]) if key in p else {}
+            prov[key] = _get(_raw(p[key])) if key in p else {}
         if "other" in p:
-            prov.update(_get(p["other"]))
+            prov.update(_get(_raw(p["other"])))
         out["provenance"] = prov
     return out
 
@@ -923,7 +1019,7 @@ def _read_reflection(g, path):
          "phase": _need(g, "phase", path)[()],
          "displacement": g["displacement"][()] if "displacement" in g else None,
          "support": _need(g, "support", path)[()].astype(bool),
-         "run_metrics": _read_run_table(g["runs"]) if "runs" in g else [],
+         "run_metrics": _read_run_table(_raw(g["runs"])) if "runs" in g else [],
          "prtf": None,
          "history": {k: v[()] for k, v in g["history"].items()} if "history" in g else {}}
     if "prtf" in g:
@@ -1051,6 +1147,12 @@ def export_vtk(results_or_path, out_dir, *, stem="crystal"):
         for src, dst in staged:
             os.replace(src, dst)
             written.append(dst)
+    except (OSError, RuntimeError) as exc:
+        if is_disk_full(exc):
+            need = sum(int(np.asarray(v).nbytes) for v in data.values()) + sum(
+                int(np.asarray(c).nbytes) for v in data.values() if isinstance(v, tuple) for c in v)
+            raise OutputError(disk_full_message(out_dir / f"{stem}.vti", need)) from None
+        raise
     finally:
         shutil.rmtree(work, ignore_errors=True)
     return written

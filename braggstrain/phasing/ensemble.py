@@ -24,7 +24,35 @@ from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _opti
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
-__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS"]
+__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "worker_pool"]
+
+
+def _watch_parent(parent_pid, interval=0.5):
+    """In a pool worker: end this process as soon as its parent is gone.
+
+    A parent killed by SIGKILL cannot shut its pool down; its workers would
+    wait for tasks forever (and keep multiprocessing's resource tracker alive
+    through the pipe they inherited). A daemon thread polls the parent's pid
+    (portable: Linux and macOS) and exits hard when the worker has been
+    re-parented."""
+    import os
+    import threading
+    import time
+
+    def watch():
+        while True:
+            if os.getppid() != parent_pid:
+                os._exit(1)
+            time.sleep(interval)
+    threading.Thread(target=watch, name="braggstrain-parent-watch", daemon=True).start()
+
+
+def worker_pool(workers):
+    """A process pool (spawned workers) whose workers end when this process dies."""
+    import os
+
+    return ProcessPoolExecutor(max_workers=workers, mp_context=multiprocessing.get_context("spawn"),
+                               initializer=_watch_parent, initargs=(os.getpid(),))
 
 # metric name -> True when larger is better
 RANKING_METRICS = {
@@ -193,8 +221,7 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
     if executor is None:
         workers = min(runs, default_threads())
         if workers > 1:
-            own_pool = ProcessPoolExecutor(max_workers=workers,
-                                           mp_context=multiprocessing.get_context("spawn"))
+            own_pool = worker_pool(workers)
             executor = own_pool
         else:
             executor = _Serial()

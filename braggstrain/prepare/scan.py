@@ -1168,10 +1168,10 @@ def write_prepared(prepared, path):
     """
     import h5py
 
-    from braggstrain.io.scans import atomic_path
+    from braggstrain.io.scans import atomic_path, nbytes_of
 
     p = prepared
-    with atomic_path(path) as tmp:
+    with atomic_path(path, size_hint=nbytes_of([p.intensity, p.mask])) as tmp:
         with h5py.File(tmp, "w") as f:
             f.attrs["format"] = PREPARED_FORMAT
             f.attrs["format_version"] = PREPARED_VERSION

@@ -417,17 +417,53 @@ def plot_prtf(results, path=None):
 
 _SKIP_HISTORY = ("checkpoint", "stage")
 
+#: What each phasing metric is and its unit (axis labels of the history and
+#: runs figures, one definition).
+METRIC_LABELS = {
+    "amplitude_error": ("amplitude error", "Σ(|Ψ|−√I)² / ΣI (dimensionless)"),
+    "free_amplitude_error": ("free amplitude error", "the same over the held-out voxels (dimensionless)"),
+    "support_size": ("support size", "voxels"),
+    "nll": ("nll", "Poisson negative log-likelihood per voxel (nats)"),
+    "free_nll": ("free nll", "Poisson negative log-likelihood per held-out voxel (nats)"),
+    "background": ("background", "counts per voxel"),
+    "sharpness": ("sharpness", "N·Σ|ρ|⁴ / (Σ|ρ|²)², higher is more concentrated (dimensionless)"),
+}
+
+
+def metric_label(key, long=False):
+    """Axis label of a phasing metric: its name, and with ``long`` its meaning and unit."""
+    name, unit = METRIC_LABELS.get(key, (key.replace("_", " "), ""))
+    return f"{name}: {unit}" if long and unit else (unit or name)
+
+
+def _stage_starts(refl):
+    """Iterations where a new stage of the phasing plan starts (every reflection's)."""
+    starts = set()
+    for x in refl:
+        st = x.get("history", {}).get("stage")
+        if st is not None and len(st) > 1:
+            starts |= {int(b) + 1 for b in np.nonzero(np.diff(np.asarray(st, float)))[0]}
+    return sorted(starts)
+
 
 def plot_histories(results, path=None):
-    """One panel per recorded metric, one curve per reflection (best run)."""
+    """One panel per recorded metric, one curve per reflection (best run).
+
+    A metric that stayed zero everywhere (e.g. the background when none was
+    fitted) gets no panel; dashed lines mark where each stage of the
+    phasing plan starts, numbered at the top."""
     refl = results["reflections"]
     keys = []
     for x in refl:
-        for k in x.get("history", {}):
-            if k not in keys and k not in _SKIP_HISTORY:
+        for k, v in x.get("history", {}).items():
+            if k in keys or k in _SKIP_HISTORY:
+                continue
+            vals = np.asarray(v, float)
+            if np.any(np.isfinite(vals) & (vals != 0)):
                 keys.append(k)
     if not keys:
         return None
+    starts = _stage_starts(refl)
     n = len(keys)
     ncol = 2 if n > 1 else 1
     nrow = int(np.ceil(n / ncol))
@@ -447,23 +483,26 @@ def plot_histories(results, path=None):
                 it = np.asarray(chk, float)
             ax.plot(it, y, lw=1.2, color=c, label=f"{x['name']} {_hkl(x['hkl'])}",
                     marker="o" if len(y) < 30 else None, ms=3)
-            st = h.get("stage")
-            if st is not None and len(st) == len(y):
-                for b in np.nonzero(np.diff(np.asarray(st)))[0]:
-                    ax.axvline(b + 0.5, color=c, ls=":", lw=0.8, alpha=0.7)
             fin = y[np.isfinite(y)]
             positive &= bool(fin.size) and bool(np.all(fin > 0)) and fin.max() / fin.min() > 20
+        for b in starts:
+            ax.axvline(b, color="0.35", ls="--", lw=0.8)
+        edges = [0, *starts]
+        for k, b in enumerate(edges):
+            ax.text(b, 1.0, f" {k + 1}", transform=ax.get_xaxis_transform(), fontsize=7, color="0.3",
+                    va="bottom", ha="left")
         if positive:
             ax.set_yscale("log")
-        ax.set_title(key.replace("_", " "), fontsize=10)
+        ax.set_title(METRIC_LABELS.get(key, (key.replace("_", " "),))[0], fontsize=10, pad=10)
+        ax.set_ylabel(metric_label(key), fontsize=7)
         ax.set_xlabel("iteration", fontsize=9)
         ax.tick_params(labelsize=8)
         ax.grid(alpha=0.3)
         if m == 0:
             ax.legend(fontsize=7)
-    staged = any("stage" in x.get("history", {}) for x in refl)
-    fig.suptitle("Phasing history of the best run" + (" (dotted: plan-stage changes)" if staged else ""),
-                 fontsize=11)
+    fig.suptitle("Phasing history of the best run" + (" (dashed: a new stage of the phasing plan starts; "
+                                                      "stages numbered at the top)" if starts else ""),
+                 fontsize=10)
     if path is not None:
         _save(fig, path)
     return fig
@@ -522,9 +561,10 @@ def plot_runs(results, path=None):
     ax.set_yticklabels(labels, fontsize=8)
     ax.set_ylim(-0.6, len(refl) - 0.4)
     ax.invert_yaxis()
-    ax.set_xlabel(", ".join(sorted(key_used)))
+    ax.set_xlabel("\n".join(metric_label(k, long=True) for k in sorted(key_used)) + " (lower is better)",
+                  fontsize=9)
     ax.grid(axis="x", alpha=0.3)
-    ax.set_title("Random starts (lower is better)")
+    ax.set_title("Final metric of every random start")
     if path is not None:
         _save(fig, path)
     return fig

@@ -46,7 +46,9 @@ table { border-collapse: collapse; margin: 0.6em 0 1em 0; font-size: 0.88em; }
 th, td { border: 1px solid #ccc; padding: 0.25em 0.55em; text-align: right; vertical-align: top; }
 td { white-space: nowrap; }
 td.wrap { white-space: normal; min-width: 12em; }
-th { background: #eef1f5; }
+th { background: #eef1f5; white-space: normal; }
+table.compact { font-size: 0.8em; }
+table.compact th { min-width: 3.5em; }
 td.text, th.text { text-align: left; }
 caption { caption-side: top; text-align: left; font-weight: bold; padding-bottom: 0.3em; }
 div.scroll { overflow-x: auto; }
@@ -85,8 +87,8 @@ def _hkl(hkl):
     return "(" + " ".join(str(int(v)) for v in hkl) + ")"
 
 
-def _table(header, rows, caption=None, text_cols=(0,), wrap_cols=()):
-    out = ['<div class="scroll"><table>']
+def _table(header, rows, caption=None, text_cols=(0,), wrap_cols=(), css=None):
+    out = [f'<div class="scroll"><table{f" class={chr(34)}{css}{chr(34)}" if css else ""}>']
     if caption:
         out.append(f"<caption>{_e(caption)}</caption>")
     out.append("<tr>" + "".join(f'<th class="{"text" if i in text_cols else ""}">{_e(h)}</th>'
@@ -176,6 +178,8 @@ def _best_run(runs):
 # --------------------------------------------------------------------------
 
 def _reflection_section(r):
+    from braggstrain.report.figures import METRIC_LABELS
+
     refl = r["reflections"]
     metric_cols = []
     bests = []
@@ -187,25 +191,34 @@ def _reflection_section(r):
                 if (k not in metric_cols and k not in ("run", "seed", "kept", "status", "message")
                         and isinstance(v, (int, float, np.number)) and not isinstance(v, bool)):
                     metric_cols.append(k)
-    header = (["reflection", "hkl", "|G| (Å⁻¹)", "max counts", "oversampling x, y, z", "runs", "kept"]
-              + [k.replace("_", " ") for k in metric_cols]
-              + ["PRTF resolution (nm)", "shift (voxels)", "twin"])
+    # a metric that is zero for every reflection (e.g. no background fitted) says nothing
+    metric_cols = [k for k in metric_cols
+                   if any(b and np.isfinite(float(b.get(k, np.nan))) and float(b.get(k)) != 0 for b in bests)]
+    header = ["reflection", "hkl", "|G| (Å⁻¹)", "max counts", "oversampling (frame, row, column)", "runs", "kept",
+              "PRTF resolution (nm)", "shift (voxels)", "twin"]
     rows = []
-    for x, best in zip(refl, bests):
+    for x in refl:
         res = x["prtf"]["resolution"] if x["prtf"] is not None else np.nan
-        row = [_e(x["name"]), _e(_hkl(x["hkl"])), _num(np.linalg.norm(x["g_vector"])),
-               _num(x["max_counts"], "{:.3g}"),
-               ", ".join(_num(v, "{:.2f}") for v in x["oversampling"]), str(x["runs"]), str(x["kept"])]
-        row += [_num(best.get(k)) if best else "—" for k in metric_cols]
-        row += [_num(res / 10.0, "{:.1f}"), ", ".join(_num(v, "{:.2f}") for v in x["shift_vox"]),
-                "yes" if x["twin"] else "no"]
-        rows.append(row)
+        rows.append([_e(x["name"]), _e(_hkl(x["hkl"])), _num(np.linalg.norm(x["g_vector"])),
+                     _num(x["max_counts"], "{:.3g}"),
+                     ", ".join(_num(v, "{:.2f}") for v in x["oversampling"]), str(x["runs"]), str(x["kept"]),
+                     _num(res / 10.0, "{:.1f}"), ", ".join(_num(v, "{:.2f}") for v in x["shift_vox"]),
+                     "yes" if x["twin"] else "no"])
+    out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1), css="compact")]
+    if metric_cols:
+        units = {"elapsed": "s"}
+        mh = ["reflection"] + [METRIC_LABELS.get(k, (k.replace("_", " "),))[0]
+                               + (f" ({units[k]})" if k in units else "") for k in metric_cols]
+        mrows = [[_e(x["name"])] + [_num(b.get(k)) if b else "—" for k in metric_cols] for x, b in zip(refl, bests)]
+        meaning = "; ".join(f"{METRIC_LABELS[k][0]}: {METRIC_LABELS[k][1]}" for k in metric_cols if k in METRIC_LABELS)
+        out.append(_table(mh, mrows, caption="Final metrics of the best kept random start", text_cols=(0,),
+                          css="compact"))
+        out.append(f'<p class="meta">{_e(meaning)}.</p>')
     failed = sum(1 for x in refl for m in x["run_metrics"] if str(m.get("status", "ok")) != "ok")
-    note = (f"<p>{failed} random start(s) failed (support collapsed or exploded, or diverged) and were left "
-            f"out.</p>" if failed else "")
-    cap = ("One row per reflection; " + ", ".join(k.replace("_", " ") for k in metric_cols)
-           + " are the final metrics of the best kept random start.") if metric_cols else None
-    return "<h2>Reflections</h2>\n" + _table(header, rows, caption=cap, text_cols=(0, 1)) + note
+    if failed:
+        out.append(f"<p>{failed} random start(s) failed (support collapsed or exploded, or diverged) and were left "
+                   f"out.</p>")
+    return "\n".join(out)
 
 
 def _tensor_section(r):
@@ -373,12 +386,28 @@ def _provenance_section(r):
     timings = prov.get("timings") or {}
     if timings:
         total = sum(float(v) for v in timings.values() if isinstance(v, (int, float, np.number)))
-        rows = [[_e(k), _num(v, "{:.2f}")] for k, v in timings.items()]
+        from braggstrain.pipeline import STAGES
+
+        order = sorted(timings, key=lambda k: (STAGES.index(k) if k in STAGES else len(STAGES), k))
+        rows = [[_e(k), _num(timings[k], "{:.2f}")] for k in order]
         rows.append(["<b>total</b>", f"<b>{_num(total, '{:.2f}')}</b>"])
         out.append(_table(["stage", "wall time (s)"], rows, caption="Stage timings"))
-    seeds = prov.get("seeds") or {}
+        if "outputs" in timings:
+            out.append('<p class="meta">outputs: the results file, figures, VTK files and tables, up to this '
+                       'report.</p>')
+    seeds = dict(prov.get("seeds") or {})
+    ens = dict(prov.get("ensemble") or {})
+    for k in ("runs", "keep"):  # files written before runs and keep had a table of their own
+        if k in seeds:
+            ens.setdefault(k, seeds.pop(k))
     if seeds:
-        out.append(_table(["random stream", "seed"], _plain_rows(seeds), caption="Seeds", text_cols=(0,)))
+        out.append(_table(["random stream", "seed"],
+                          [[_e(k), _e(int(v)) if isinstance(v, (int, np.integer)) else _value(v)]
+                           for k, v in seeds.items()], caption="Seeds", text_cols=(0,)))
+    if ens:
+        words = {"runs": "random starts per reflection", "keep": "best starts kept and averaged"}
+        out.append(_table(["ensemble", "value"], [[_e(words.get(k, k)), _e(v)] for k, v in ens.items()],
+                          caption="Phasing ensemble", text_cols=(0,)))
     versions = prov.get("versions") or {}
     if versions:
         out.append(_table(["package", "version"], [[_e(k), _e(v)] for k, v in versions.items()],

@@ -143,10 +143,15 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
                            "peak_pixel": list(scan.peak_pixel), "hot_pixels": scan.hot_pixels.tolist(),
                            "rocking_step_deg": step}
         if log:
+            hot = np.asarray(scan.hot_pixels, int).reshape(-1, 2)
+            signal = scan.frames.copy()
+            signal[:, hot[:, 0], hot[:, 1]] = 0
+            hot_txt = (f"{len(hot)} hot pixels (up to {int(scan.frames[:, hot[:, 0], hot[:, 1]].max())} counts)"
+                       if len(hot) else "no hot pixels")
             log(f"  {name} {tuple(r['hkl'])}: {scan.frames.shape[0]} frames, "
                 f"{rock} step {step:.4f}°, 2θ-circles "
                 + ", ".join(f"{c.name}={ang[c.name]:.3f}°" for c in inst.detector_circles)
-                + f", max {int(scan.frames.max())} counts → {path}")
+                + f", peak {int(signal.max())} counts, {hot_txt} → {path}")
         if progress is not None:
             progress.update(1)
     vs = sim["truth_voxel_nm"] * 10.0
@@ -228,6 +233,32 @@ def _truth_on_grid(truth, grid, shift, invert):
     def samp(a):
         return ndimage.map_coordinates(a.astype(np.float64), idx, order=1, mode="constant", cval=0.0)
     return samp, r
+
+
+def same_dislocation(b_found, xi_found, b_true, xi_true, twin=False):
+    """True when a found (b, ξ) is the true dislocation.
+
+    A Burgers vector is defined for a line direction (the circuit runs
+    right-handed about ξ), so (b, ξ) and (−b, −ξ) are the same dislocation:
+    b is compared after turning ξ_found to point along ξ_true. For the twin
+    reconstruction (the point-inverted crystal, ρ'(r) = conj ρ(−r), so
+    u'(r) = −u(−r)), a circuit right-handed about ξ gives −b: the found ξ
+    is mapped to −ξ before the comparison.
+
+    Parameters
+    ----------
+    b_found, b_true : 3 floats, lattice coordinates
+    xi_found : (3,) or (M, 3) line direction(s) of the found line, result frame
+    xi_true : 3 floats, the true line direction
+    twin : bool, the result is the twin of the truth
+    """
+    xi = np.atleast_2d(np.asarray(xi_found, float))
+    along = float(np.sum(xi @ np.asarray(xi_true, float)))
+    if twin:
+        along = -along
+    if along == 0 or b_found is None:
+        return False
+    return bool(np.allclose(np.sign(along) * np.asarray(b_found, float), np.asarray(b_true, float), atol=1e-6))
 
 
 def compare_to_truth(results, truth_path, as_text=True):
@@ -324,13 +355,17 @@ def compare_to_truth(results, truth_path, as_text=True):
             dirs = np.asarray(d.directions, float)
             ang = np.degrees(np.arccos(np.clip(np.abs(dirs @ xi), 0, 1)))
             b = None if d.burgers is None else np.asarray(d.burgers, float)
-            b_ok = b is not None and (np.allclose(b, b_true, atol=1e-6) or np.allclose(b, -b_true, atol=1e-6))
+            b_ok = b is not None and same_dislocation(b, dirs, b_true, xi, twin=invert)
+            flipped = b is not None and b_ok and not np.allclose(b, b_true, atol=1e-6)
+            same_sense = float(np.sum(dirs @ xi)) > 0
             found.append({"median_distance_vox": float(np.median(dist) / vs.mean()),
                           "max_distance_vox": float(np.max(dist) / vs.mean()),
                           "median_distance_nm": float(np.median(dist) / 10.0),
                           "max_distance_nm": float(np.max(dist) / 10.0),
                           "median_angle_deg": float(np.median(ang)), "burgers": None if b is None else b.tolist(),
-                          "burgers_right": bool(b_ok), "length_A": float(d.length)})
+                          "burgers_right": bool(b_ok), "burgers_flipped_with_line": bool(flipped),
+                          "line_same_sense": bool(same_sense),
+                          "length_A": float(d.length)})
         found.sort(key=lambda f: f["median_distance_vox"])
         lines_out.append({"burgers_true": b_true.tolist(), "found": found})
     out = {"dice": float(dice), "twin": bool(invert), "strain_rms": rms, "strain_rms_truth": rms_truth,
@@ -346,10 +381,20 @@ def compare_to_truth(results, truth_path, as_text=True):
         bt = " ".join(f"{v:+.1f}" for v in ln["burgers_true"])
         if ln["found"]:
             f = ln["found"][0]
+            bf = "unknown" if f["burgers"] is None else " ".join(f"{v:+.1f}" for v in f["burgers"])
+            how = ""
+            if f["burgers_right"] and f["burgers_flipped_with_line"]:
+                why = ("its ξ runs along the truth's, but the twin's point inversion reverses ξ"
+                       if invert and f["line_same_sense"] else "its ξ runs opposite to the truth's")
+                how = f" (found b = [{bf}]: {why}, and (−b, −ξ) is the same dislocation)"
+            elif f["burgers_right"]:
+                how = f" (found b = [{bf}] with the same line direction)"
             txt.append(f"  dislocation b = [{bt}]: nearest found line {f['median_distance_vox']:.2f} voxels = "
                        f"{f['median_distance_nm']:.1f} nm (median; max {f['max_distance_vox']:.2f} voxels = "
                        f"{f['max_distance_nm']:.1f} nm) from the truth, direction within "
-                       f"{f['median_angle_deg']:.1f}°, Burgers vector {'right' if f['burgers_right'] else 'WRONG'}")
+                       f"{f['median_angle_deg']:.1f}°, Burgers vector "
+                       f"{'right' if f['burgers_right'] else 'WRONG'}{how}"
+                       + ("" if f["burgers_right"] else f" (found b = [{bf}])"))
         else:
             txt.append(f"  dislocation b = [{bt}]: NOT found")
     return "\n".join(txt)
