@@ -267,10 +267,11 @@ def test_plan_from_config_round_trip_through_toml():
     algorithm = "ER"
     iterations = 50
     sigma = "1.5->1.0"
+    average = true
     """
     plan = plan_from_config(tomllib.loads(text)["plan"])
     assert plan[0] == Stage("HIO", 300, 0.85, "shrinkwrap", 25, (3.0, 1.0), 0.12)
-    assert plan[1].sigma == (1.5, 1.0) and plan[1].feedback == 0.0
+    assert plan[1].sigma == (1.5, 1.0) and plan[1].feedback == 0.0 and plan[1].average
     assert plan_from_config(plan_to_config(plan)) == plan
     assert plan_from_config(plan_to_config(default_plan())) == default_plan()
 
@@ -283,6 +284,7 @@ def test_plan_from_config_round_trip_through_toml():
     ({"support_update": "shrinkwarp"}, ["support_update", "did you mean 'shrinkwrap'"]),
     ({"sigma": [3, 2, 1]}, ["sigma"]),
     ({"threshold": 1.2}, ["threshold"]),
+    ({"average": "yes"}, ["average", "true or false"]),
 ])
 def test_plan_errors_name_the_key(stage, words):
     with pytest.raises(ConfigError) as exc:
@@ -293,6 +295,8 @@ def test_plan_errors_name_the_key(stage, words):
 
 def test_options_from_config_rejects_unknown_keys():
     assert options_from_config({"runs": 4, "plan": [{"iterations": 5}]})["plan"][0].iterations == 5
+    # every key of the template's [phasing] table is known (fft_effort was not)
+    assert options_from_config({"fft_effort": "FFTW_ESTIMATE"}) == {"fft_effort": "FFTW_ESTIMATE"}
     with pytest.raises(ConfigError, match="did you mean 'coherence'"):
         options_from_config({"coherense": True})
     with pytest.raises(ConfigError, match="empty"):

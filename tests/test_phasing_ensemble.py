@@ -126,3 +126,70 @@ def test_separate_processes_reproduce_a_run(tmp_path):
                         str(tmp_path / f"obj{k}.npy")], check=True, env=env, timeout=300)
     objs = [np.load(tmp_path / f"obj{k}.npy") for k in range(len(caches))]
     assert all(np.array_equal(o, objs[0]) for o in objs[1:])
+
+
+def test_average_within_1_3_of_the_noise_floor():
+    # The noise floor: a run started from the true object (and its support)
+    # running the closing stages of the default plan on the same Poisson
+    # counts (1e5 peak counts) ends where the noise leaves it; the ensemble
+    # average from random starts must come within 1.3x of it (acceptance
+    # figure of the phasing issue; reference: the simulated truth).
+    # Measured (seed 21): floor 4.72 %, average 4.96 % (ratio 1.05).
+    from braggstrain.phasing import default_plan
+    from braggstrain.phasing.metrics import remove_phase_ramp
+
+    n = 48
+    counts, scale = noisy_intensity(n, 1e5)
+    truth = crystal(n) * np.float32(np.sqrt(scale))
+    res = ensemble(counts, runs=4, keep=3, seed=21)
+    start = remove_phase_ramp(truth, res.ramp)
+    floor_run = reconstruct(counts, start=start, plan=default_plan()[2:], seed=21)
+    floor = error_to_truth(floor_run.obj, truth, floor_run.ramp)
+    e_avg = error_to_truth(res.obj, truth, res.ramp)
+    print(f"noise floor {floor:.4f}, ensemble average {e_avg:.4f}, ratio {e_avg / floor:.3f}")
+    assert 0.01 < floor < 0.2  # the noise is really there
+    assert e_avg <= 1.3 * floor, (e_avg, floor)
+
+
+class _OneBadRun:
+    """Serial executor that cuts run 1 short (30 HIO iterations): a deliberately
+    bad start whose run finishes with status "ok" but far from the others."""
+
+    def map(self, fn, tasks):
+        out = []
+        for data, stages, opts, run, wisdom in tasks:
+            if run == 1:
+                stages = [Stage("HIO", 30, 0.9, "shrinkwrap", 10, (2.0, 1.0), 0.15)]
+            out.append(fn((data, stages, opts, run, wisdom)))
+        return out
+
+
+@pytest.mark.parametrize("noisy", [False, True])
+def test_a_failed_run_is_recognised_and_never_kept(noisy):
+    # keep = runs: without the outlier rule the bad run would be averaged in.
+    n = 32
+    inten = noisy_intensity(n, 1e5)[0] if noisy else clean_intensity(n)
+    res = ensemble(inten, runs=4, keep=4, seed=21,
+                   executor=_OneBadRun())
+    assert res.runs[1].status == "ok"  # the run itself did not notice
+    assert 1 in res.outliers and 1 not in res.kept, (res.outliers, res.kept)
+    assert sorted(res.kept) == [0, 2, 3]
+    assert "free_nll" in res.outliers[1]
+
+
+def test_outlier_rule_flags_a_collapsed_support():
+    from braggstrain.phasing.ensemble import _outliers
+    from braggstrain.phasing.engine import Metrics
+
+    def fake(run, size, nll):
+        m = Metrics(nll=nll, free_nll=nll, amplitude_error=0.0, free_amplitude_error=0.0,
+                    support_size=size, sharpness=1.0, background=0.0)
+        return RunSummaryLike(run, m)
+
+    class RunSummaryLike:
+        def __init__(self, run, metrics):
+            self.run, self.metrics = run, metrics
+
+    runs = [fake(0, 1000, 1.0), fake(1, 1010, 1.001), fake(2, 400, 1.002), fake(3, 990, 1.0015)]
+    out = _outliers(runs, "free_nll")
+    assert list(out) == [2] and "support of 400 voxels" in out[2]

@@ -403,19 +403,20 @@ def _fit_background(model, amp, current):
     return float(max(b, 0.0))
 
 
-def _run(data: _Data, stages, opts: _Options, run: int) -> Reconstruction:
-    """One run from the random start (data.seed, run); never raises on failure."""
+def _run(data: _Data, stages, opts: _Options, run: int, start=None) -> Reconstruction:
+    """One run from the random start (data.seed, run), or from ``start`` (flat, FFT
+    order) when given; never raises on failure."""
     t0 = time.perf_counter()
     rng = _run_rng(data.seed, run)
     old_threads = numba.get_num_threads()
     numba.set_num_threads(max(1, min(opts.threads, numba.config.NUMBA_NUM_THREADS)))
     try:
-        return _iterate(data, stages, opts, run, rng, t0)
+        return _iterate(data, stages, opts, run, rng, t0, start)
     finally:
         numba.set_num_threads(old_threads)
 
 
-def _iterate(data, stages, opts, run, rng, t0):
+def _iterate(data, stages, opts, run, rng, t0, start=None):
     from tqdm import tqdm
 
     shape = data.shape
@@ -430,17 +431,20 @@ def _iterate(data, stages, opts, run, rng, t0):
     support = data.support0.copy()
     initial_size = int(support.sum())
 
-    # Random start: measured moduli with random phases, back in real space,
-    # restricted to the support (common practice, no source).
-    bflat.real = _k.decode_amplitude(amp)
-    bflat.imag = 0
-    phases = rng.random(n_vox, dtype=np.float32)
-    phases *= np.float32(2.0 * np.pi)
-    bflat *= np.exp(1j * phases)
-    del phases
-    fft.backward()
     x = np.empty(n_vox, dtype=np.complex64)  # the iterate
-    np.multiply(bflat, inv_n, out=x)
+    if start is None:
+        # Random start: measured moduli with random phases, back in real space,
+        # restricted to the support (common practice, no source).
+        bflat.real = _k.decode_amplitude(amp)
+        bflat.imag = 0
+        phases = rng.random(n_vox, dtype=np.float32)
+        phases *= np.float32(2.0 * np.pi)
+        bflat *= np.exp(1j * phases)
+        del phases
+        fft.backward()
+        np.multiply(bflat, inv_n, out=x)
+    else:
+        x[:] = start
     x[~support] = 0
     bflat[:] = x
 
@@ -518,6 +522,9 @@ def _iterate(data, stages, opts, run, rng, t0):
             stage_coh = stage.coherence_update
             k_update = 0
             sup_size = int(support.sum())
+            # Averaging stage: the running mean of the estimate P_M x on the
+            # support replaces the iterate at the end of the stage.
+            mean = np.zeros(n_vox, np.complex64) if stage.average else None
             for it in range(stage.iterations):
                 fft.forward()
                 err, ferr = figures(it % every == 0, it_global)
@@ -525,6 +532,8 @@ def _iterate(data, stages, opts, run, rng, t0):
                 if n_free:
                     free_err[it_global] = ferr / free_sum_i
                 fft.backward()
+                if mean is not None:
+                    mean += bflat
                 _k.support_step(x, bflat, support, code, beta)
                 sup_hist[it_global] = sup_size
                 stage_hist[it_global] = si
@@ -554,6 +563,11 @@ def _iterate(data, stages, opts, run, rng, t0):
                                             f"err {amp_err[it_global - 1]:.3g} support {sup_size}")
             if status != STATUS_OK:
                 break
+            if mean is not None:
+                np.multiply(mean, np.float32(1.0 / stage.iterations), out=x)
+                x[~support] = 0
+                bflat[:] = x
+                del mean
     finally:
         bar.close()
 
@@ -612,7 +626,24 @@ def _stages(plan):
     return default_plan() if plan is None else plan_from_config(plan)
 
 
-def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, progress=False,
+def _start_in_fft_order(start, shape, ramp):
+    """A user-layout object (as :attr:`Reconstruction.obj`) in FFT order with the ramp put back."""
+    from braggstrain.phasing.metrics import remove_phase_ramp
+
+    arr = np.asarray(start)
+    if arr.shape != shape:
+        raise InputError(f"start: expected the shape of intensity {shape}, got {arr.shape}")
+    if not np.issubdtype(arr.dtype, np.number):
+        raise InputError(f"start: expected a complex object, got dtype {arr.dtype}")
+    if not np.all(np.isfinite(arr)):
+        raise InputError("start: it holds NaN or infinite values")
+    if not np.any(arr):
+        raise InputError("start: it is all zeros; expected an object to start from")
+    obj = remove_phase_ramp(arr.astype(np.complex64), -np.asarray(ramp, dtype=float))
+    return np.ascontiguousarray(scipy.fft.ifftshift(obj).reshape(-1))
+
+
+def reconstruct(intensity, mask=None, *, support=None, start=None, plan=None, seed=None, progress=False,
                 coherence=False, background=None, free_fraction=0.03, threads=None,
                 fft_backend="auto", fft_effort=DEFAULT_EFFORT, initial_threshold=0.04,
                 remove_ramp=True, center=True, raise_on_failure=True) -> Reconstruction:
@@ -629,7 +660,13 @@ def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, pro
         values (even NaN) are ignored.
     support : ndarray of bool, optional
         Initial support (crystal centred layout); default: the thresholded
-        autocorrelation of the data.  At most half the array.
+        autocorrelation of the data, or the non-zero voxels of ``start``
+        when that is given.  At most half the array.
+    start : complex ndarray, optional
+        Object to start from instead of a random start, in the layout of
+        :attr:`Reconstruction.obj` (centred, phase ramp removed): a previous
+        result to refine, or, in a test, the true object (the noise floor of
+        a plan: how far its stages take the truth on noisy data).
     plan : list of Stage or dict, optional
         Stages to run (see :mod:`braggstrain.phasing.schedule`); default
         :func:`default_plan`.
@@ -693,11 +730,15 @@ def reconstruct(intensity, mask=None, *, support=None, plan=None, seed=None, pro
     seed = _as_seed(seed)
     opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, progress,
                     fft_effort)
+    if start is not None and support is None:
+        support = np.asarray(start) != 0
     data = _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, opts.threads)
+    x0 = None if start is None else _start_in_fft_order(start, data.shape,
+                                                        data.ramp if opts.remove_ramp else np.zeros(3))
     if opts.coherence is not None and any(2 * opts.coherence.half_width + 1 > n for n in data.shape):
         raise InputError(f"coherence.half_width: {opts.coherence.half_width} is too wide for "
                          f"an array of shape {data.shape}")
-    rec = _run(data, stages, opts, 0)
+    rec = _run(data, stages, opts, 0, x0)
     if not rec.ok and raise_on_failure:
         raise PhasingError(f"phase retrieval stopped: {rec.message}")
     return rec

@@ -93,7 +93,12 @@ class EnsembleResult:
     ranking : list of int
         Run indices of the successful runs, best first.
     kept : list of int
-        The runs averaged (the first ``keep`` of ``ranking``).
+        The runs averaged: the first ``keep`` of ``ranking`` that are not
+        ``outliers``.
+    outliers : dict
+        Run index -> reason, for finished runs left out because they are far
+        from the others (see :func:`_outliers`): a stagnated run, or a support
+        that collapsed or swelled without tripping the run's own limits.
     alignment : list of dict
         Per kept run: ``shift`` (voxels), ``twin``, ``phase`` (rad) and
         ``overlap`` with the best run.
@@ -119,6 +124,7 @@ class EnsembleResult:
     metric: str
     seed: int
     ramp: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    outliers: dict = field(default_factory=dict)
 
 
 def _task(args):
@@ -142,6 +148,54 @@ def _collect(executor, results):
         else:
             results = [f.result() for f in results]
     return results
+
+
+#: A run is an outlier when its support size is off the median of the
+#: finished runs by more than this factor, or its ranking metric is worse than
+#: the best run's by more than OUTLIER_SPREAD times the typical spread of the
+#: runs (common practice, no source: an ensemble keeps the runs that agree).
+OUTLIER_SUPPORT_FACTOR = 1.5
+OUTLIER_SPREAD = 10.0
+
+
+def _outliers(ranked, metric):
+    """Finished runs that disagree with the others: {run: reason}.
+
+    * support size below median / 1.5 or above 1.5 x median (collapsed or
+      swollen, though within the per-run limits of
+      :func:`~braggstrain.phasing.support.support_health`);
+    * ranking metric worse than the best run's by more than 10 times the
+      median distance of the runs from the best (with at least three runs;
+      for the log-likelihoods this is the gap between a converged and a
+      stagnated run, for ``sharpness`` the sign is flipped).
+
+    The best run is never an outlier by the metric; it can be by its support,
+    in which case the next agreeing run leads the average.
+    """
+    out = {}
+    if not ranked:
+        return out
+    sizes = np.array([r.metrics.support_size for r in ranked], dtype=float)
+    med = float(np.median(sizes))
+    for r, sz in zip(ranked, sizes):
+        if sz < med / OUTLIER_SUPPORT_FACTOR or sz > med * OUTLIER_SUPPORT_FACTOR:
+            out[r.run] = (f"support of {int(sz)} voxels against a median of {med:.0f} over "
+                          f"{len(ranked)} runs")
+    vals = np.array([r.metrics.get(metric) for r in ranked], dtype=float)
+    if RANKING_METRICS[metric]:
+        vals = -vals
+    finite = np.isfinite(vals)
+    if finite.sum() >= 3:
+        best = vals[finite].min()
+        gaps = vals[finite] - best
+        typical = float(np.median(gaps))
+        scale = max(typical, 1e-6 * max(abs(best), 1e-12))
+        for r, v in zip(ranked, vals):
+            if np.isfinite(v) and v - best > OUTLIER_SPREAD * scale and r.run not in out:
+                out[r.run] = (f"{metric} {r.metrics.get(metric):.6g} is far from the best "
+                              f"run's ({'-' if RANKING_METRICS[metric] else ''}{best:.6g}); "
+                              f"typical distance {typical:.3g}")
+    return out
 
 
 def _align_support(sup, info):
@@ -249,7 +303,9 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
         return (np.isnan(v), -v if higher else v)
 
     ranked = sorted(good, key=score)
-    kept = ranked[:keep]
+    outliers = _outliers(ranked, metric)
+    usable = [r for r in ranked if r.run not in outliers] or ranked[:1]
+    kept = usable[:keep]
     ref = kept[0]
     aligned = [ref.obj]
     supports = [ref.support]
@@ -269,5 +325,6 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
                ramp=ref.ramp)
     return EnsembleResult(obj=avg, support=support, runs=summaries,
                           ranking=[r.run for r in ranked], kept=[r.run for r in kept],
+                          outliers=outliers,
                           alignment=infos, prtf=trf, best=ref, metric=metric, seed=seed,
                           ramp=ref.ramp)

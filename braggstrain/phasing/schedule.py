@@ -78,6 +78,12 @@ class Stage:
         When partial coherence is switched on, refine the coherence function
         (Richardson-Lucy) during this stage (from the iteration
         ``CoherenceSettings.start`` of the run on).
+    average : bool
+        End the stage with the mean, over its iterations, of the estimate
+        P_M x restricted to the support, instead of the last iterate.  HIO
+        and RAAR wander around a solution in the directions the data
+        constrain weakly (the phases of the faint high-q speckles of a
+        soft-edged crystal); the mean cancels most of that wandering.
     """
 
     algorithm: str = "HIO"
@@ -88,6 +94,7 @@ class Stage:
     sigma: tuple = (3.0, 1.0)
     threshold: float = 0.15
     coherence_update: bool = True
+    average: bool = False
 
     def __post_init__(self):
         # Validation lives in _check_stage so that errors name the stage number.
@@ -175,6 +182,8 @@ def _check_stage(stage, where):
     if not isinstance(stage.coherence_update, bool):
         raise ConfigError(f"{where}: key 'coherence_update': expected true or false, "
                           f"got {stage.coherence_update!r}")
+    if not isinstance(stage.average, bool):
+        raise ConfigError(f"{where}: key 'average': expected true or false, got {stage.average!r}")
 
 
 def default_plan() -> list[Stage]:
@@ -255,6 +264,7 @@ OPTION_KEYS = {
     "free_fraction": "fraction of measured voxels held out, in [0, 0.2]",
     "threads": "positive integer",
     "fft_backend": "'auto', 'pyfftw' or 'scipy'",
+    "fft_effort": "'FFTW_ESTIMATE' (reproducible) or 'FFTW_MEASURE', 'FFTW_PATIENT', 'FFTW_EXHAUSTIVE'",
     "initial_threshold": "fraction in (0, 1) of the autocorrelation maximum",
     "remove_ramp": "true/false",
     "center": "true/false",
