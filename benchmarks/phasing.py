@@ -5,10 +5,12 @@ in one run times
 
 * the engine: a fixed number of HIO iterations with shrink-wrap every 20
   (braggstrain.phasing.reconstruct, loop time only), best of ``--repeats``
-  runs;
+  runs, with the default estimated FFT plans (``fft_effort="FFTW_ESTIMATE"``,
+  reproducible) and with measured plans (``"FFTW_MEASURE"``);
 * one forward + inverse FFT pair on an N^3 complex64 array with the fastest
-  backend available (the limit: an iteration cannot beat its two FFTs), best
-  of ``--repeats`` timings taken between the engine runs;
+  backend and plans available (pyFFTW with measured plans: the limit, an
+  iteration cannot beat its two FFTs), best of ``--repeats`` timings taken
+  between the engine runs, and the same pair with estimated plans;
 * a plain numpy reference of the same algorithm written the obvious way
   (np.fft, whole-array expressions, scipy.ndimage.gaussian_filter for the
   shrink-wrap blur);
@@ -20,8 +22,11 @@ Usage::
 
     python benchmarks/phasing.py --size 128 [--iterations 100] [--threads 2]
 
-The last line printed is exactly
-``iteration/fft_pair=<x> speedup_vs_numpy=<y> peak_arrays=<z>``.
+The line before the last compares the two planner efforts,
+``estimate/measure=<engine ratio> fft_pair_estimate/measure=<pair ratio>``;
+the last line printed is exactly
+``iteration/fft_pair=<x> speedup_vs_numpy=<y> peak_arrays=<z>``, for the
+default (estimated) plans over the fastest (measured) FFT pair.
 This is a benchmark, not a test: the numbers depend on the machine and on
 what else runs on it.
 """
@@ -119,8 +124,9 @@ def main(argv=None):
     # warm up: kernels compiled/loaded, FFTW wisdom for this size gathered
     reconstruct(crystal_intensity(16), plan=[Stage("HIO", 2, 0.9, "shrinkwrap", 1)], seed=0,
                 threads=threads, raise_on_failure=False)
-    fft = FFTBackend(intensity.shape, threads=threads)
-    fft.real_buffer  # the shrink-wrap's real transforms
+    for effort in ("FFTW_ESTIMATE", "FFTW_MEASURE"):
+        fft = FFTBackend(intensity.shape, threads=threads, effort=effort)
+        fft.real_buffer  # the shrink-wrap's real transforms
     del fft
     gc.collect()
 
@@ -129,8 +135,10 @@ def main(argv=None):
     # usual estimator when other jobs share the machine.
     array_bytes = n ** 3 * np.dtype(np.complex64).itemsize
     iter_times, pair_times = [], []
+    measured_iter, estimated_pair = [], []
     growth = None
     fft = None
+    fft_est = None
     for rep in range(args.repeats):
         if rep == 0:
             use_rss = _reset_peak_rss()
@@ -154,36 +162,53 @@ def main(argv=None):
               f"backend {rec.fft_backend}, status {rec.status}", flush=True)
         del rec
         gc.collect()
+        rec = reconstruct(intensity, plan=plan, seed=0, threads=threads, raise_on_failure=False,
+                          fft_effort="FFTW_MEASURE")
+        measured_iter.append(rec.timings["iterations"] / rec.iterations)
+        print(f"engine run {rep} with measured plans: {1e3 * measured_iter[-1]:.2f} ms/iteration",
+              flush=True)
+        del rec
+        gc.collect()
 
-        # FFT pair on an N^3 complex64 array, fastest backend
+        # FFT pair on an N^3 complex64 array: fastest backend, measured plans
+        # (the denominator), and the default estimated plans for comparison
         if fft is None:
-            fft = FFTBackend(intensity.shape, threads=threads)
-            fft.buffer[...] = np.sqrt(intensity)
-            fft.forward()
-            fft.backward()
+            fft = FFTBackend(intensity.shape, threads=threads, effort="FFTW_MEASURE")
+            fft_est = FFTBackend(intensity.shape, threads=threads, effort="FFTW_ESTIMATE")
+            for f in (fft, fft_est):
+                f.buffer[...] = np.sqrt(intensity)
+                f.forward()
+                f.backward()
         reps = max(5, int(2.0 / max(t_iter, 1e-4)))
-        t0 = time.perf_counter()
-        for _ in range(reps):
-            fft.forward()
-            fft.backward()
-            fft.buffer *= np.float32(1.0 / fft.size)  # keeps the values bounded
-        t_pair_loop = (time.perf_counter() - t0) / reps
-        # time the scaling pass alone and take it out: the pair is the two FFTs
-        t0 = time.perf_counter()
-        for _ in range(reps):
-            fft.buffer *= np.float32(1.0)
-        t_scale = (time.perf_counter() - t0) / reps
-        pair_times.append(max(t_pair_loop - t_scale, 1e-9))
-        print(f"fft pair ({fft.name}) {rep}: {1e3 * pair_times[-1]:.2f} ms", flush=True)
-    del fft
+        for f, times in ((fft, pair_times), (fft_est, estimated_pair)):
+            t0 = time.perf_counter()
+            for _ in range(reps):
+                f.forward()
+                f.backward()
+                f.buffer *= np.float32(1.0 / f.size)  # keeps the values bounded
+            t_pair_loop = (time.perf_counter() - t0) / reps
+            # time the scaling pass alone and take it out: the pair is the two FFTs
+            t0 = time.perf_counter()
+            for _ in range(reps):
+                f.buffer *= np.float32(1.0)
+            t_scale = (time.perf_counter() - t0) / reps
+            times.append(max(t_pair_loop - t_scale, 1e-9))
+        print(f"fft pair ({fft.name}) {rep}: {1e3 * pair_times[-1]:.2f} ms measured plans, "
+              f"{1e3 * estimated_pair[-1]:.2f} ms estimated plans", flush=True)
+    del fft, fft_est
     gc.collect()
     t_iter = min(iter_times)
     t_pair = min(pair_times)
     print(f"best of {args.repeats}: {1e3 * t_iter:.2f} ms/iteration, fft pair {1e3 * t_pair:.2f} ms",
           flush=True)
 
+    t_meas = min(measured_iter)
+    print(f"best of {args.repeats} with measured plans: {1e3 * t_meas:.2f} ms/iteration, "
+          f"fft pair {1e3 * min(estimated_pair):.2f} ms with estimated plans", flush=True)
     t_np = numpy_reference(intensity, args.numpy_iterations)
     print(f"numpy reference: {1e3 * t_np:.2f} ms/iteration", flush=True)
+    print(f"estimate/measure={t_iter / t_meas:.3f} "
+          f"fft_pair_estimate/measure={min(estimated_pair) / t_pair:.3f}")
     print(f"iteration/fft_pair={t_iter / t_pair:.3f} speedup_vs_numpy={t_np / t_iter:.2f} "
           f"peak_arrays={growth / array_bytes:.2f}")
 

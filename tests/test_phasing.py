@@ -239,6 +239,33 @@ def test_kernel_sigma_of_a_gaussian():
     np.testing.assert_allclose(kernel_sigma(k), (1.0, 0.8, 1.3), rtol=0.01)
 
 
+def test_principal_widths_of_a_rotated_gaussian():
+    # A Gaussian exp(-q^T C^-1 q / 2) has covariance C (definition of the
+    # multivariate normal; Bishop, Pattern Recognition and Machine Learning,
+    # 2006, section 2.3): its principal widths and axes are the square roots
+    # of the eigenvalues and the eigenvectors of C, whatever the rotation.
+    from braggstrain.phasing.coherence import kernel_principal_widths
+    from braggstrain.simulate.forward import rotation_matrix
+
+    R = rotation_matrix(np.array([0.5, 0.3, -0.6]))
+    sig = np.array([1.2, 0.9, 0.7])
+    C = R @ np.diag(sig ** 2) @ R.T
+    d = np.arange(-7, 8)
+    g = np.stack(np.meshgrid(d, d, d, indexing="ij"), -1).astype(float)
+    k = np.exp(-0.5 * np.einsum("...i,ij,...j->...", g, np.linalg.inv(C), g))
+    widths, axes = kernel_principal_widths(k)
+    np.testing.assert_allclose(widths, sig, rtol=0.01)
+    for i in range(3):  # each axis is a column of R, up to its sign
+        assert abs(abs(axes[:, i] @ R[:, i]) - 1) < 1e-3
+    # a delta has zero width; an axis-aligned Gaussian gives kernel_sigma
+    delta = np.zeros((5, 5, 5))
+    delta[2, 2, 2] = 1
+    assert np.allclose(kernel_principal_widths(delta)[0], 0)
+    k2 = gaussian_kernel((1.0, 0.8, 1.3), 6)
+    np.testing.assert_allclose(np.sort(kernel_principal_widths(k2)[0]), np.sort(kernel_sigma(k2)),
+                               rtol=1e-6)
+
+
 def test_richardson_lucy_recovers_a_known_kernel():
     # Richardson (1972) / Lucy (1974): with the exact "image" the iteration
     # converges to the blur kernel; the data are blurred with

@@ -193,3 +193,22 @@ def test_outlier_rule_flags_a_collapsed_support():
     runs = [fake(0, 1000, 1.0), fake(1, 1010, 1.001), fake(2, 400, 1.002), fake(3, 990, 1.0015)]
     out = _outliers(runs, "free_nll")
     assert list(out) == [2] and "support of 400 voxels" in out[2]
+
+
+def test_ensemble_reports_one_coherence_kernel_with_its_spread():
+    # The kept runs' kernels are averaged into one estimate per reflection,
+    # with its principal widths and their spread over the runs (data blurred
+    # by a known Gaussian of 1 voxel with scipy.ndimage, reference library).
+    import scipy.ndimage
+
+    n = 32
+    blurred = scipy.ndimage.gaussian_filter(clean_intensity(n), 1.0, mode="wrap")
+    res = ensemble(blurred, runs=2, keep=2, seed=3, executor=SerialExecutor(),
+                   coherence={"start": 20}, plan=SHORT)
+    assert res.coherence_kernel.shape == (9, 9, 9)
+    assert res.coherence_kernel.sum() == pytest.approx(1.0)
+    assert res.coherence_widths.shape == (3,) and res.coherence_axes.shape == (3, 3)
+    assert np.all(np.diff(res.coherence_widths) <= 0) and res.coherence_widths_spread.shape == (3,)
+    assert np.all(res.coherence_widths > 0.3)
+    plain = ensemble(clean_intensity(n), runs=2, keep=1, seed=3, executor=SerialExecutor(), plan=SHORT)
+    assert plain.coherence_kernel is None and plain.coherence_widths is None

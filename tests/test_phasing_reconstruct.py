@@ -59,6 +59,8 @@ def test_partial_coherence_estimates_the_kernel_width():
     e_coh = (error_to_truth(coherent.obj, crystal(N), coherent.ramp) if coherent.ok else np.inf)
     assert e_part < e_coh, (e_part, e_coh)
     assert partial.coherence_kernel.shape == (9, 9, 9)
+    np.testing.assert_allclose(partial.coherence_widths, sigma, rtol=0.2)
+    assert partial.coherence_axes.shape == (3, 3) and coherent.coherence_widths is None
     assert partial.coherence_kernel.sum() == pytest.approx(1.0)
 
 

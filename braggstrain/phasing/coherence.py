@@ -22,7 +22,8 @@ import scipy.fft
 
 from braggstrain.errors import InputError
 
-__all__ = ["CoherenceSettings", "CoherenceModel", "kernel_sigma", "gaussian_kernel"]
+__all__ = ["CoherenceSettings", "CoherenceModel", "kernel_sigma", "kernel_principal_widths",
+           "gaussian_kernel"]
 
 
 @dataclass(frozen=True)
@@ -103,6 +104,52 @@ def kernel_sigma(kernel):
         mean = (marg * d).sum()
         out.append(float(np.sqrt(max((marg * (d - mean) ** 2).sum(), 0.0))))
     return np.asarray(out)
+
+
+def kernel_principal_widths(kernel):
+    """Widths of a kernel along its principal axes, from its covariance matrix.
+
+    The covariance C = sum k(q) (q - m)(q - m)^T of the normalised kernel
+    (m its mean) is diagonalised, C = V diag(w^2) V^T; for a Gaussian
+    exp(-q^T C^-1 q / 2) the covariance is C itself (the definition of the
+    multivariate normal, e.g. Bishop, Pattern Recognition and Machine
+    Learning, 2006, section 2.3), so w are its standard deviations along
+    the axes V whatever their orientation in the array.
+
+    Parameters
+    ----------
+    kernel : ndarray (k0, k1, k2)
+        Non-negative kernel, centred at index k//2 on each axis.
+
+    Returns
+    -------
+    widths : ndarray (3,)
+        Standard deviations along the principal axes, largest first, in
+        voxels of the grid the kernel lives on.
+    axes : ndarray (3, 3)
+        Unit vectors of the principal axes as columns (``axes[:, i]`` goes
+        with ``widths[i]``), components along array axes 0, 1, 2; the sign
+        of each is chosen so that its largest component is positive.
+    """
+    k = np.asarray(kernel, dtype=float)
+    if k.ndim != 3 or not np.all(np.isfinite(k)) or k.sum() <= 0 or np.any(k < 0):
+        raise InputError(f"kernel: expected a non-negative 3-D array with a positive sum, "
+                         f"got shape {k.shape}")
+    k = k / k.sum()
+    grids = np.meshgrid(*[np.arange(n) - n // 2 for n in k.shape], indexing="ij")
+    d = np.stack([g.ravel() for g in grids]).astype(float)  # (3, N)
+    w = k.ravel()
+    mean = d @ w
+    d = d - mean[:, None]
+    cov = (d * w) @ d.T
+    vals, vecs = np.linalg.eigh(cov)
+    order = np.argsort(vals)[::-1]
+    vals = np.clip(vals[order], 0.0, None)
+    vecs = vecs[:, order]
+    for i in range(3):
+        if vecs[np.argmax(np.abs(vecs[:, i])), i] < 0:
+            vecs[:, i] = -vecs[:, i]
+    return np.sqrt(vals), vecs
 
 
 class CoherenceModel:

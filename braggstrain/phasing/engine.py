@@ -19,11 +19,12 @@ from scipy.special import gammaln
 
 from braggstrain.errors import InputError, PhasingError
 from braggstrain.phasing import kernels as _k
-from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings
+from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings, kernel_principal_widths
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
 from braggstrain.phasing.metrics import centre_of_mass_shift, peak_offset, sharpness
 from braggstrain.phasing.schedule import default_plan, plan_from_config
-from braggstrain.phasing.support import autocorrelation, autocorrelation_support, estimate_oversampling, shrinkwrap, support_health
+from braggstrain.phasing.support import (autocorrelation, autocorrelation_support, dilate_periodic, estimate_oversampling,
+                                         shrinkwrap, support_health)
 
 __all__ = [
     "reconstruct",
@@ -145,7 +146,14 @@ class Reconstruction:
         Estimated coherence function (reciprocal space, unit sum) when
         partial coherence was on.
     coherence_sigma : float64 (3,) or None
-        Its standard deviation along each axis (voxels of the reciprocal grid).
+        Its standard deviation along each array axis (voxels of the
+        reciprocal grid).
+    coherence_widths : float64 (3,) or None
+        Its standard deviations along its principal axes, largest first
+        (voxels of the reciprocal grid; see
+        :func:`~braggstrain.phasing.coherence.kernel_principal_widths`).
+    coherence_axes : float64 (3, 3) or None
+        The principal axes, as columns, in array axes.
     fft_backend : str
     threads : int
     elapsed : float
@@ -174,6 +182,8 @@ class Reconstruction:
     elapsed: float
     plan: list = field(default_factory=list)
     timings: dict = field(default_factory=dict)
+    coherence_widths: np.ndarray | None = None
+    coherence_axes: np.ndarray | None = None
 
     @property
     def ok(self) -> bool:
@@ -521,6 +531,8 @@ def _iterate(data, stages, opts, run, rng, t0, start=None):
             s0, s1 = stage.sigma
             stage_coh = stage.coherence_update
             k_update = 0
+            if stage.dilate:
+                dilate_periodic(support, shape, stage.dilate)
             sup_size = int(support.sum())
             # Averaging stage: the running mean of the estimate P_M x on the
             # support replaces the iterate at the end of the stage.
@@ -549,6 +561,8 @@ def _iterate(data, stages, opts, run, rng, t0, start=None):
                     frac = k_update / max(n_updates - 1, 1)
                     sigma = s0 * (s1 / s0) ** min(frac, 1.0)
                     sup_size = shrinkwrap(x, support, fft, sigma, stage.threshold)
+                    if stage.dilate:
+                        sup_size = dilate_periodic(support, shape, stage.dilate)
                     k_update += 1
                     health = support_health(sup_size, initial_size, n_vox)
                     if health != STATUS_OK:
@@ -619,7 +633,9 @@ def _iterate(data, stages, opts, run, rng, t0, start=None):
         fft_backend=fft.name, threads=opts.threads, elapsed=time.perf_counter() - t0,
         plan=list(stages),
         timings={"setup": t_loop - t0, "iterations": t_finish - t_loop,
-                 "finish": time.perf_counter() - t_finish})
+                 "finish": time.perf_counter() - t_finish},
+        coherence_widths=None if coh is None else kernel_principal_widths(coh.kernel)[0],
+        coherence_axes=None if coh is None else kernel_principal_widths(coh.kernel)[1])
 
 
 def _stages(plan):

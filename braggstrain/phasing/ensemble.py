@@ -20,6 +20,7 @@ import numpy as np
 
 from braggstrain.errors import InputError, PhasingError
 from braggstrain.phasing import kernels as _k
+from braggstrain.phasing.coherence import kernel_principal_widths
 from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from braggstrain.phasing.metrics import PRTF, align, prtf, twin
@@ -111,6 +112,17 @@ class EnsembleResult:
     seed : int
     ramp : ndarray (3,)
         Phase ramp removed (see :attr:`Reconstruction.ramp`).
+    coherence_kernel : ndarray or None
+        With partial coherence on: the mean of the kept runs' coherence
+        kernels (reciprocal space, unit sum), the one estimate per reflection.
+    coherence_widths, coherence_axes : ndarray or None
+        Its standard deviations along its principal axes (voxels of the
+        reciprocal grid, largest first) and those axes (columns, array
+        axes); see :func:`~braggstrain.phasing.coherence.kernel_principal_widths`.
+    coherence_widths_spread : ndarray (3,) or None
+        Standard deviation of the principal widths over the kept runs: the
+        estimate's own spread, against which estimates from other
+        reflections measured with the same beam can be compared.
     """
 
     obj: np.ndarray
@@ -125,6 +137,10 @@ class EnsembleResult:
     seed: int
     ramp: np.ndarray = field(default_factory=lambda: np.zeros(3))
     outliers: dict = field(default_factory=dict)
+    coherence_kernel: np.ndarray | None = None
+    coherence_widths: np.ndarray | None = None
+    coherence_axes: np.ndarray | None = None
+    coherence_widths_spread: np.ndarray | None = None
 
 
 def _task(args):
@@ -323,7 +339,13 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
     mask_arr = None if mask is None else np.asarray(mask, bool)
     trf = prtf(aligned, np.where(np.isfinite(intensity_arr), intensity_arr, 0), mask_arr,
                ramp=ref.ramp)
-    return EnsembleResult(obj=avg, support=support, runs=summaries,
+    coh = {}
+    if all(r.coherence_kernel is not None for r in kept):
+        kernel = np.mean([r.coherence_kernel for r in kept], axis=0)
+        widths, axes = kernel_principal_widths(kernel)
+        coh = dict(coherence_kernel=kernel, coherence_widths=widths, coherence_axes=axes,
+                   coherence_widths_spread=np.std([r.coherence_widths for r in kept], axis=0))
+    return EnsembleResult(**coh, obj=avg, support=support, runs=summaries,
                           ranking=[r.run for r in ranked], kept=[r.run for r in kept],
                           outliers=outliers,
                           alignment=infos, prtf=trf, best=ref, metric=metric, seed=seed,

@@ -78,6 +78,11 @@ class Stage:
         When partial coherence is switched on, refine the coherence function
         (Richardson-Lucy) during this stage (from the iteration
         ``CoherenceSettings.start`` of the run on).
+    dilate : int
+        Voxels by which the support is grown (6-connected, periodic) at the
+        start of the stage and after each of its shrink-wrap updates: a
+        support that keeps the soft edge of a real crystal, whose density
+        falls over a voxel or two, instead of cutting it at ``threshold``.
     average : bool
         End the stage with the mean, over its iterations, of the estimate
         P_M x restricted to the support, instead of the last iterate.  HIO
@@ -94,6 +99,7 @@ class Stage:
     sigma: tuple = (3.0, 1.0)
     threshold: float = 0.15
     coherence_update: bool = True
+    dilate: int = 0
     average: bool = False
 
     def __post_init__(self):
@@ -182,6 +188,10 @@ def _check_stage(stage, where):
     if not isinstance(stage.coherence_update, bool):
         raise ConfigError(f"{where}: key 'coherence_update': expected true or false, "
                           f"got {stage.coherence_update!r}")
+    if not _is_int(stage.dilate) or not 0 <= stage.dilate <= 5:
+        raise ConfigError(f"{where}: key 'dilate': expected an integer number of voxels in 0..5, "
+                          f"got {stage.dilate!r}")
+    object.__setattr__(stage, "dilate", int(stage.dilate))
     if not isinstance(stage.average, bool):
         raise ConfigError(f"{where}: key 'average': expected true or false, got {stage.average!r}")
 

@@ -19,6 +19,7 @@ __all__ = [
     "gaussian_transfer",
     "estimate_oversampling",
     "support_health",
+    "dilate_periodic",
 ]
 
 
@@ -207,3 +208,20 @@ def estimate_oversampling(intensity_fft, measured=None, threshold=0.05):
             length = np.count_nonzero(prof >= 0.5)
             ratios.append(min(n / max(length, 1.0), 1.95))
     return np.asarray(ratios)
+
+
+def dilate_periodic(support, shape, voxels):
+    """Grow a flat support (FFT order) by ``voxels`` 6-connected steps, in place.
+
+    The array is periodic (a crystal at the origin of FFT order spans the
+    corners), so the dilation wraps around like ``scipy.ndimage`` with
+    ``mode="wrap"``.  Returns the new size in voxels.
+    """
+    s3 = support.reshape(shape)
+    for _ in range(int(voxels)):
+        grown = s3.copy()
+        for axis in range(3):
+            grown |= np.roll(s3, 1, axis=axis)
+            grown |= np.roll(s3, -1, axis=axis)
+        s3[...] = grown
+    return int(support.sum())
