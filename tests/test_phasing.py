@@ -322,8 +322,21 @@ def test_plan_errors_name_the_key(stage, words):
 
 def test_options_from_config_rejects_unknown_keys():
     assert options_from_config({"runs": 4, "plan": [{"iterations": 5}]})["plan"][0].iterations == 5
-    # every key of the template's [phasing] table is known (fft_effort was not)
-    assert options_from_config({"fft_effort": "FFTW_ESTIMATE"}) == {"fft_effort": "FFTW_ESTIMATE"}
+    # every key of the template's [phasing] table is known (fft_effort was not),
+    # and its commented plan is the default plan
+    import pathlib
+
+    text = (pathlib.Path(__file__).parents[1] / "pipelines" / "template.toml").read_text()
+    table = tomllib.loads(text)["phasing"]
+    assert options_from_config(table)["fft_effort"] == "FFTW_ESTIMATE"
+    start = text.index("# [[phasing.plan]]")
+    block = text[start:text.index("# ------", start)]
+    plan_text = "\n".join(line[2:] if line.startswith("# ") else line for line in block.splitlines())
+    plan = plan_from_config(tomllib.loads(plan_text)["phasing"]["plan"])
+    assert [s.to_dict() | {"sigma": None, "threshold": None} for s in plan if s.support_update == "none"] == \
+        [s.to_dict() | {"sigma": None, "threshold": None} for s in default_plan() if s.support_update == "none"]
+    assert [s for s in plan if s.support_update != "none"] == \
+        [s for s in default_plan() if s.support_update != "none"]
     with pytest.raises(ConfigError, match="did you mean 'coherence'"):
         options_from_config({"coherense": True})
     with pytest.raises(ConfigError, match="empty"):
