@@ -206,11 +206,12 @@ def _outliers(ranked, metric):
         gaps = vals[finite] - best
         typical = float(np.median(gaps))
         scale = max(typical, 1e-6 * max(abs(best), 1e-12))
+        best_value = ranked[int(np.flatnonzero(finite)[np.argmin(vals[finite])])].metrics.get(metric)
         for r, v in zip(ranked, vals):
             if np.isfinite(v) and v - best > OUTLIER_SPREAD * scale and r.run not in out:
                 out[r.run] = (f"{metric} {r.metrics.get(metric):.6g} is far from the best "
-                              f"run's ({'-' if RANKING_METRICS[metric] else ''}{best:.6g}); "
-                              f"typical distance {typical:.3g}")
+                              f"run's {best_value:.6g} (typical distance from the best "
+                              f"{typical:.3g})")
     return out
 
 
