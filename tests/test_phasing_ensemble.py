@@ -193,6 +193,14 @@ def test_outlier_rule_flags_a_collapsed_support():
     runs = [fake(0, 1000, 1.0), fake(1, 1010, 1.001), fake(2, 400, 1.002), fake(3, 990, 1.0015)]
     out = _outliers(runs, "free_nll")
     assert list(out) == [2] and "support of 400 voxels" in out[2]
+    # ... but a run that fits clearly better than the middle one is kept even
+    # with a support unlike the others' (measured: blurred data, where most
+    # runs shrank their support and the one that did not fitted best)
+    runs = [fake(0, 2400, 3.2), fake(1, 1500, 20.5), fake(2, 1600, 21.6), fake(3, 1550, 22.3)]
+    out = _outliers(runs, "free_nll")
+    assert 0 not in out
+    # and the majority that failed alike is left out by the likelihood ratio
+    assert sorted(out) == [1, 2, 3] and "more than 2 times" in out[1]
 
 
 def test_ensemble_reports_one_coherence_kernel_with_its_spread():
