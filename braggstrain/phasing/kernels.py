@@ -113,12 +113,22 @@ def modulus_step(psi, amp, scale):
             psi[i] = z * scale
         else:
             m = math.sqrt(z.real * z.real + z.imag * z.imag)
-            d = m - a
-            err += d * d
-            if m > 0:
+            if m >= 1e-18:
+                d = m - a
+                err += d * d
                 psi[i] = z * np.float32(a * scale / m)
             else:
-                psi[i] = np.complex64(a * scale)
+                # |psi|^2 is subnormal or zero in float32: the modulus in
+                # float64 (a rare branch, so every other voxel rounds as before)
+                zr = np.float64(z.real)
+                zi = np.float64(z.imag)
+                m64 = math.sqrt(zr * zr + zi * zi)
+                d64 = m64 - a
+                err += d64 * d64
+                if m64 > 0:
+                    psi[i] = np.complex64(complex(zr * (a * scale / m64), zi * (a * scale / m64)))
+                else:
+                    psi[i] = np.complex64(a * scale)
     return err, ferr
 
 
