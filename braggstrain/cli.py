@@ -248,6 +248,14 @@ def _summary(res):
                  "over the voxels, not an uncertainty; per-voxel one-σ errors are in results.h5 "
                  "/tensor/strain_uncertainty): " + ", ".join(stats))
     lines.append(f"G set condition number {tf.condition_number:.2f}")
+    sig = np.asarray(tf.strain_uncertainty, float)[:, :, np.asarray(tf.trusted, bool)]
+    basis = getattr(tf, "uncertainty_basis", "") or "not recorded"
+    if np.isfinite(sig).any():
+        med = [np.nanmedian(sig[i, i]) for i in range(3)]
+        lines.append("error bars (median σ, trusted voxels): " + ", ".join(
+            f"ε_{n} {m:.1e}" for n, m in zip(names, med)) + f"; {basis}")
+    else:
+        lines.append(f"error bars: none. {basis}")
     ml = r.get("mean_lattice") or {}
     if ml.get("lattice_parameter") is not None:
         lines.append(f"mean lattice parameter from the peak positions: {ml['lattice_parameter']:.5f} Å")

@@ -42,11 +42,18 @@ from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save
 __all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES",
            "estimate_output_bytes", "check_output_folder"]
 
-STAGES = ("prepare", "grid", "phase", "frame", "register", "tensor", "defects", "outputs")
+STAGES = ("prepare", "grid", "phase", "frame", "spread", "register", "tensor", "defects", "outputs")
 
 # Keys of the option tables that are the pipeline's own (not a stage function's).
 _FRAME_OWN = {"route", "voxel_nm", "origin_nm"}
-_TENSOR_OWN = {"min_overlap", "voxel_nm", "upsample", "twin_tolerance"}
+_TENSOR_OWN = {"min_overlap", "voxel_nm", "upsample", "twin_tolerance", "replicas", "replica_iterations"}
+#: Poisson replicas per reflection for the error bars, and iterations per replica (docs/strain.md)
+DEFAULT_REPLICAS = 8
+DEFAULT_REPLICA_ITERATIONS = 90
+#: Gaussian σ (voxels) of the blur whose bias is added to the error bars: the two-voxel central
+#: difference (box of 2 voxels, σ² = 1/3) and a point spread of about one voxel FWHM (σ ≈ 0.5), in
+#: quadrature (docs/strain.md)
+DEFAULT_RESOLUTION_BLUR = 0.75
 _DEFECTS_OWN = {"enabled"}
 # Part of the defects checkpoint's key: lines checkpointed before their points
 # were put on the common grid (origin included, issue 17) are not reused.
@@ -128,6 +135,12 @@ def check_options(cfg):
     allowed = _TENSOR_OWN | _kwargs_of(tensor.strain_tensor, {"objects", "g_vectors", "voxel_size", "support",
                                                               "weights", "labels", "warn"})
     _check_keys(te, allowed, "tensor", src)
+    for k, lo in (("replicas", 0), ("replica_iterations", 3)):
+        v = te.get(k)
+        if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < lo):
+            raise ConfigError(f"{src}: key 'tensor.{k}': value {v!r}; expected an integer ≥ {lo}")
+    if te.get("replicas") == 1:
+        raise ConfigError(f"{src}: key 'tensor.replicas': value 1; expected 0 (no resampling) or at least 2")
     out["tensor"] = te
     de = dict(cfg["defects"])
     allowed = _DEFECTS_OWN | _kwargs_of(defects.find_dislocations, {"objects", "hkls", "g_vectors", "voxel_size",
@@ -251,6 +264,7 @@ def _phase_to_tree(ens, voxel):
     f = np.asarray(pr.q, float)
     res_f = float(pr.resolution) if pr.resolution is not None else np.nan
     return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
+            "kept_objects": ens.kept_objects,
             "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
             "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed),
             "prtf": {"q": 2 * np.pi * f / voxel, "values": np.asarray(pr.values, float),
@@ -670,6 +684,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             run.ck.mkdir(parents=True, exist_ok=True)
             prp.write_prepared(prepared, pp)
 
+    te_all = opts["tensor"]
+    n_rep = int(te_all.get("replicas", DEFAULT_REPLICAS))
+    rep_iter = int(te_all.get("replica_iterations", DEFAULT_REPLICA_ITERATIONS))
     per_refl = []
     with _executor(scheduler, workers) as (executor, where):
         say(f"phase retrieval runs on: {where}")
@@ -690,6 +707,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             k_phase = hash_inputs("phase", k_data, {k: v for k, v in cfg["phasing"].items()}, runs, keep, seed_j)
             with run.timed("phase"):
                 tree = run.cached("phase", name, k_phase)
+                if tree is not None and "kept_objects" not in tree:
+                    tree = None  # a checkpoint from before the kept runs were stored
                 if tree is None:
                     say(f"  {name} {h}: phasing {intensity.shape} with {runs} random starts (keep {keep})")
                     t0 = time.perf_counter()
@@ -710,13 +729,26 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                     ft = _sample_to_tree(so)
                     run.save("frame", name, k_frame, ft)
             so = _tree_to_sample(ft)
+            # -- spread: the kept runs and Poisson replicas on the sample-frame grid of `so`
+            k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter)
+            with run.timed("spread"):
+                st = run.cached("spread", name, k_spread)
+                if st is None:
+                    if n_rep:
+                        say(f"  {name} {h}: phasing {n_rep} Poisson replicas from the converged object")
+                    st = _spread_samples(tree, data, intensity, mask, g_ref[j], so, fr_opts, n_rep, rep_iter,
+                                         seed_j, executor, frm)
+                    run.save("spread", name, k_spread, st)
             per_refl.append({"name": name, "hkl": h, "prepared": prepared, "phase": tree, "sample": so,
-                             "key": k_frame, "scan": str(scan.path)})
+                             "key": k_frame, "scan": str(scan.path), "spread": st, "spread_key": k_spread})
             say(f"  {name} {h}: σ = {np.round(prepared.oversampling, 2).tolist()}, kept {len(tree['kept'])} of "
                 f"{runs} runs, sample-frame voxel {np.round(so.voxel_size / 10, 2).tolist()} nm")
 
     # -- register
     te_opts = dict(opts["tensor"])
+    te_opts.setdefault("resolution_blur", DEFAULT_RESOLUTION_BLUR)
+    te_opts.pop("replicas", None)
+    te_opts.pop("replica_iterations", None)
     reg_kw = {k: te_opts.pop(k) for k in ("min_overlap", "upsample", "twin_tolerance") if k in te_opts}
     vox = te_opts.pop("voxel_nm", None)
     if vox is not None:
@@ -735,17 +767,20 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     labels = [p["name"] for p in per_refl]
 
     # -- tensor
-    k_ten = hash_inputs("tensor", k_reg, te_opts)
+    k_ten = hash_inputs("tensor", k_reg, te_opts, [p["spread_key"] for p in per_refl])
     with run.timed("tensor"):
         tt = run.cached("tensor", "all", k_ten)
         if tt is None:
             import warnings
 
+            common_support = np.logical_and.reduce([o.support for o in registered])
+            cov, source = _gradient_covariance(per_refl, rt["report"], common_support, common_vs,
+                                               int(te_opts.get("order", 2)), tns)
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 tf = tns.strain_tensor([o.obj for o in registered], G, common_vs,
-                                       support=np.logical_and.reduce([o.support for o in registered]),
-                                       labels=labels, **te_opts)
+                                       support=common_support, labels=labels, gradient_covariance=cov,
+                                       covariance_source=source, **te_opts)
             for w in caught:
                 say(f"  warning: {w.message}")
             tt = _plain(tf)
@@ -816,6 +851,67 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     return {"results": results, "paths": paths, "timings": dict(run.timings), "wall_s": wall,
             "phasing_s": run.phasing_seconds, "phasing_share": run.phasing_seconds / wall if wall else 0.0,
             "reused": run.reused}
+
+
+def _spread_samples(tree, data, intensity, mask, g_ref, so, fr_opts, n_rep, rep_iter, seed, executor, frm):
+    """The kept runs and (``n_rep`` ≥ 2) Poisson replicas of one reflection, each
+    taken to the sample frame on the grid of ``so`` (the averaged object's).
+
+    Returns a checkpoint tree: ``runs`` (K, *grid) and, with replicas,
+    ``baseline`` (*grid) and ``replicas`` (R, *grid), complex64.
+    """
+    from braggstrain.phasing.replicas import poisson_replicas
+
+    kw = dict(fr_opts)
+    kw.update(voxel_size=so.voxel_size, shape=so.obj.shape, origin=so.origin)
+
+    def to_frame(obj):
+        return frm.to_sample_frame(obj, data, support=tree["support"], g_vector=g_ref, ramp=tree["ramp"],
+                                   **kw).obj
+
+    out = {"runs": np.stack([to_frame(o) for o in tree["kept_objects"]])}
+    if n_rep >= 2:
+        rs = poisson_replicas(intensity, mask, tree["obj"], tree["support"], ramp=tree["ramp"], replicas=n_rep,
+                              iterations=rep_iter, seed=seed, executor=executor)
+        out["baseline"] = to_frame(rs.baseline)
+        out["replicas"] = np.stack([to_frame(o) for o in rs.replicas])
+    return out
+
+
+def _gradient_covariance(per_refl, reg_report, support, voxel_size, order, tns):
+    """Per-reflection phase-gradient covariance from the kept runs and replicas,
+    on the common grid: C_j = C_runs/K + C_replicas (docs/strain.md).
+
+    Returns (covariance (J, 3, 3, *grid) or None, a sentence saying what it holds).
+    """
+    from braggstrain.strain.fields import phase_gradient_covariance
+
+    covs, parts = [], set()
+    for j, p in enumerate(per_refl):
+        so = p["sample"]
+        st = p["spread"]
+
+        def common(arr):
+            o = SampleObject(arr, so.voxel_size, so.g_vector, so.support, so.origin, so.hkl, {})
+            return tns.apply_registration(o, reg_report, j).obj
+
+        C = np.zeros((3, 3) + support.shape)
+        have = False
+        runs = list(st["runs"])
+        if len(runs) >= 2:
+            C += phase_gradient_covariance([common(a) for a in runs], voxel_size, support, order=order) / len(runs)
+            parts.add(f"the spread of the {len(runs)} kept random starts (variance of their mean)")
+            have = True
+        if "replicas" in st:
+            reps = [common(a) for a in st["replicas"]]
+            C += phase_gradient_covariance(reps, voxel_size, support, center=common(st["baseline"]), order=order)
+            parts.add(f"the spread of {len(reps)} Poisson replicas of the counts, each phased from the "
+                      f"converged object")
+            have = True
+        if not have:
+            return None, ""
+        covs.append(C)
+    return np.stack(covs).astype(np.float32), " and ".join(sorted(parts)) + " (per reflection)"
 
 
 def _tree_to_tensor(t):

@@ -237,11 +237,80 @@ def test_uncertainty_matches_the_scatter(pt, smooth_case):
              for o in _objects(support, u, G3)]
     tf3 = T.strain_tensor(objs3, G3, H, displacement=False)
     assert np.all(np.isnan(tf3.strain_uncertainty[:, :, tf3.support]))
+    assert "not estimated" in tf3.uncertainty_basis and "three reflections" in tf3.uncertainty_basis
     tf3 = T.strain_tensor(objs3, G3, H, displacement=False, gradient_noise=sig / (np.sqrt(2) * H))
     m3 = tf3.trusted
     mse = np.mean((tf3.strain[0, 0][m3] - eps[0, 0][m3]) ** 2)
     pred = np.mean(tf3.strain_uncertainty[0, 0][m3].astype(float) ** 2)
     assert 0.9 < pred / mse < 1.1
+
+
+@pytest.mark.parametrize("hkls", [SET3, SET4 + [(2, 0, 0)]], ids=["three", "five"])
+def test_propagated_spread_matches_the_scatter(pt, smooth_case, hkls):
+    # Linear propagation of the gradient covariance through the solve (JCGM
+    # 100:2008, GUM eq. 13) against the scatter it predicts. Each reflection
+    # gets its own phase noise σ_j, so the reflections differ in weight; the
+    # covariance is estimated from 12 noisy copies of each reflection
+    # (phase_gradient_covariance), as the pipeline does with its kept runs and
+    # replicas. Off-diagonal strain and rotation need the covariance between
+    # D_ik and D_ki, which the old least-squares model set to zero.
+    from braggstrain.strain.fields import phase_gradient_covariance
+
+    coords, support, u, f = smooth_case
+    G = _gs(pt, hkls)
+    rng = np.random.default_rng(11)
+    sigmas = np.linspace(0.01, 0.03, len(G))
+    clean = _objects(support, u, G)
+
+    def noisy(o, s):
+        return (o * np.exp(1j * rng.normal(0, s, o.shape))).astype(np.complex64)
+
+    objs = [noisy(o, s) for o, s in zip(clean, sigmas)]
+    sup = np.logical_and.reduce([np.abs(o) > 0.5 for o in clean])
+    cov = np.stack([phase_gradient_covariance([noisy(o, s) for _ in range(12)], H, sup)
+                    for o, s in zip(clean, sigmas)])
+    tf = T.strain_tensor(objs, G, H, support=sup, weights=np.ones(len(G)), displacement=False, warn=False,
+                         gradient_covariance=cov, covariance_source="twelve noisy copies")
+    assert "twelve noisy copies" in tf.uncertainty_basis
+    eps, rot = fw.strain_from_gradient(f.gradient(coords))
+    m = tf.trusted
+    for i, k in [(0, 0), (1, 1), (2, 2), (0, 1), (1, 2), (0, 2)]:
+        mse = np.mean((tf.strain[i, k][m] - eps[i, k][m]) ** 2)
+        pred = np.mean(tf.strain_uncertainty[i, k][m].astype(float) ** 2)
+        assert 0.8 < pred / mse < 1.25, (i, k, pred / mse)
+        # a calibrated Gaussian σ holds 68.3 % within 1σ, 95.4 % within 2σ
+        z = np.abs(tf.strain[i, k][m] - eps[i, k][m]) / tf.strain_uncertainty[i, k][m]
+        assert 0.62 < np.mean(z <= 1) < 0.75 and 0.92 < np.mean(z <= 2) < 0.98, (i, k)
+    for c in range(3):
+        mse = np.mean((tf.rotation[c][m] - rot[c][m]) ** 2)
+        pred = np.mean(tf.rotation_uncertainty[c][m].astype(float) ** 2)
+        assert 0.8 < pred / mse < 1.25, (c, pred / mse)
+
+
+def test_gradient_covariance_of_wrong_shape_is_refused(pt, smooth_case):
+    coords, support, u, f = smooth_case
+    G = _gs(pt, SET3)
+    with pytest.raises(TensorError, match="gradient_covariance: expected shape"):
+        T.strain_tensor(_objects(support, u, G), G, H, displacement=False,
+                        gradient_covariance=np.zeros((3, 3, 3, 4, 4, 4)))
+
+
+def test_apply_registration_moves_a_companion_with_its_object(pt, smooth_case):
+    # A companion (e.g. a replica) equal to the object must land exactly where
+    # register put the object, shift and twin included.
+    coords, support, u, f = smooth_case
+    G = _gs(pt, SET3)
+    objs = _objects(support, u, G)
+    sos = [SampleObject(o, H, g, np.abs(o) > 0.5, np.zeros(3), h) for o, g, h in zip(objs, G, SET3)]
+    moved = SampleObject(np.roll(objs[1], (2, -1, 1), axis=(0, 1, 2)), H, G[1],
+                         np.roll(sos[1].support, (2, -1, 1), axis=(0, 1, 2)), np.zeros(3), SET3[1])
+    sos[1] = moved
+    sos[2] = SampleObject(T.twin(objs[2]), H, G[2], T.twin(objs[2]).__abs__() > 0.5, np.zeros(3), SET3[2])
+    reg, rep = T.register(sos, return_report=True)
+    for j in range(3):
+        again = T.apply_registration(sos[j], rep, j)
+        np.testing.assert_allclose(again.obj, reg[j].obj, atol=1e-6)
+        assert np.array_equal(again.support, reg[j].support)
 
 
 # --------------------------------------------------------------------------

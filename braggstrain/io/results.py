@@ -647,14 +647,18 @@ def write_results(path, results):
                      "strain tensor ε = (D + Dᵀ)/2; NaN outside the support and where the solve failed")
             t["strain"].attrs["components"] = list(STRAIN_COMPONENTS)
             _dataset(t, "strain_uncertainty", strain_components(tf.strain_uncertainty), "1 (dimensionless)",
-                     comp_axes, "one standard deviation of each strain component (least-squares covariance); "
-                     "NaN where it cannot be estimated")
+                     comp_axes, "one standard deviation of each strain component (what it includes: the "
+                     "attribute 'includes'); NaN where it cannot be estimated")
             t["strain_uncertainty"].attrs["components"] = list(STRAIN_COMPONENTS)
+            basis = getattr(tf, "uncertainty_basis", "") or "not recorded"
+            t["strain_uncertainty"].attrs["includes"] = basis
             vec_axes = "component (x, y, z), " + _GRID_AXES
             _dataset(t, "rotation", tf.rotation, "rad", vec_axes,
                      "lattice rotation: axial vector of (D − Dᵀ)/2, ω_x = (D_zy − D_yz)/2, ...")
             _dataset(t, "rotation_uncertainty", tf.rotation_uncertainty, "rad", vec_axes,
                      "one standard deviation of each rotation component")
+            t["rotation_uncertainty"].attrs["includes"] = basis
+            t.attrs["uncertainty_basis"] = basis
             if tf.displacement is not None:
                 _dataset(t, "displacement", tf.displacement, "Å", vec_axes,
                          "displacement vector u from the unwrapped phases, zero at the reference voxel; NaN "
@@ -978,6 +982,7 @@ def _read_all(f, path):
             outlier=_text(t.attrs.get("outlier")) or None,
             outlier_scores=({k: float(v) for k, v in t["outlier_scores"].attrs.items()
                              if k not in ("description", "units")} if "outlier_scores" in t else {}),
+            uncertainty_basis=_text(t.attrs.get("uncertainty_basis")) or "",
         )
         out["tensor"] = tf
 

@@ -123,6 +123,9 @@ class EnsembleResult:
         Standard deviation of the principal widths over the kept runs: the
         estimate's own spread, against which estimates from other
         reflections measured with the same beam can be compared.
+    kept_objects : complex64 (K, n0, n1, n2)
+        The kept runs themselves, aligned to the best one (their spread is
+        part of the error bars, see :mod:`braggstrain.strain.tensor`).
     """
 
     obj: np.ndarray
@@ -141,6 +144,7 @@ class EnsembleResult:
     coherence_widths: np.ndarray | None = None
     coherence_axes: np.ndarray | None = None
     coherence_widths_spread: np.ndarray | None = None
+    kept_objects: np.ndarray | None = None
 
 
 def _task(args):
@@ -372,4 +376,4 @@ def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, exec
                           ranking=[r.run for r in ranked], kept=[r.run for r in kept],
                           outliers=outliers,
                           alignment=infos, prtf=trf, best=ref, metric=metric, seed=seed,
-                          ramp=ref.ramp)
+                          ramp=ref.ramp, kept_objects=np.stack(aligned).astype(np.complex64))

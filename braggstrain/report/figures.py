@@ -46,6 +46,9 @@ FIGURES = {
     "rotation.png": "Central slices of the three lattice-rotation components ω_x, ω_y, ω_z, degrees.",
     "derived.png": "Central slices of the hydrostatic strain tr(ε)/3, the von Mises equivalent strain and "
                    "the tensor residual.",
+    "uncertainty.png": "Central slices of the one-σ uncertainty of the six strain components σ(ε_xx) … "
+                       "σ(ε_xy) and of the rotation σ(ω), degrees (what σ includes: the statement under "
+                       "“Error bars”).",
     "displacement.png": "Central slices of each reflection's displacement along its G vector, u_G.",
     "dislocations.png": "The crystal's isosurface with the dislocation lines, coloured by character.",
     "prtf.png": "Phase-retrieval transfer function of each reflection against |q|.",
@@ -357,6 +360,27 @@ def plot_derived(results, path=None):
                        title="Derived maps (residual shown strain-equivalent: rad/Å ÷ Å⁻¹)")
 
 
+def plot_uncertainty(results, path=None):
+    """Central slices of σ of the six strain components and of the rotation (degrees).
+
+    Returns None (no figure) when no voxel has a finite σ; the report then
+    says why (``TensorField.uncertainty_basis``).
+    """
+    from braggstrain.io.results import STRAIN_COMPONENTS, strain_components
+
+    tf = results["tensor"]
+    sup = tf.support & results["support"]
+    deg = 180.0 / np.pi
+    rows = [np.asarray(c, float) for c in strain_components(tf.strain_uncertainty)]
+    rows += [np.asarray(v, float) * deg for v in tf.rotation_uncertainty]
+    if not any(np.isfinite(v[sup]).any() for v in rows):
+        return None
+    return plot_slices(rows, sup, results["grid"]["voxel_size"], path,
+                       names=[f"σ(ε_{c})" for c in STRAIN_COMPONENTS] + [f"σ(ω_{c})" for c in "xyz"],
+                       units=[""] * 6 + ["°"] * 3, signed=False,
+                       title="One-σ uncertainty of strain (dimensionless) and rotation (degrees)")
+
+
 def plot_displacements(results, path=None):
     """Central slices of each reflection's displacement along G, Å."""
     rows, names = [], []
@@ -603,6 +627,7 @@ def make_figures(results, out_dir):
         "strain.png": plot_strain,
         "rotation.png": plot_rotation,
         "derived.png": plot_derived,
+        "uncertainty.png": plot_uncertainty,
         "displacement.png": plot_displacements,
         "prtf.png": plot_prtf,
         "history.png": plot_histories,

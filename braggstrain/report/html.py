@@ -254,9 +254,26 @@ def _tensor_section(r):
             + [_num(s[f"p{p}"], "{:.3e}") for p in _PERCENTILES] + [_num(s["sigma"], "{:.2e}")]
             for s in stats]
     out.append(_table(header, rows, caption="Statistics inside the crystal (sample frame; p = percentile; "
-                                            "σ = one-standard-deviation uncertainty from the least-squares "
-                                            "solve)", text_cols=(0, 1)))
+                                            "σ = one-standard-deviation uncertainty, see Error bars)",
+                      text_cols=(0, 1)))
+    out.append(_error_bars(tf))
     return "\n".join(out)
+
+
+def _error_bars(tf):
+    """The statement of what σ includes (or why there is none)."""
+    basis = getattr(tf, "uncertainty_basis", "") or "not recorded in this results file"
+    sig = np.asarray(tf.strain_uncertainty, float)[:, :, np.asarray(tf.support, bool)]
+    text = [f"<p>{_e(basis)}.</p>"]
+    if not np.isfinite(sig).any():
+        text.append("<p><b>No error bars:</b> every σ is undefined (NaN) for this run. Ask for Poisson "
+                    "replicas (<code>[tensor] replicas</code>, at least 2) or keep at least two random "
+                    "starts (<code>[phasing] keep</code>).</p>")
+    else:
+        text.append("<p>σ is one standard deviation per voxel and component. It does not include errors "
+                    "common to all reconstructions and replicas, such as a wrong instrument geometry or the "
+                    "blur of features smaller than the resolution (docs/strain.md).</p>")
+    return "<h3>Error bars</h3>\n" + "\n".join(text)
 
 
 def _plain_rows(d, skip=()):

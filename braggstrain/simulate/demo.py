@@ -261,6 +261,25 @@ def same_dislocation(b_found, xi_found, b_true, xi_true, twin=False):
     return bool(np.allclose(np.sign(along) * np.asarray(b_found, float), np.asarray(b_true, float), atol=1e-6))
 
 
+def _coverage(estimate, truth, sigma, mask):
+    """Fraction of ``mask`` voxels with |estimate − truth| ≤ σ and ≤ 2σ.
+
+    A calibrated Gaussian one-σ holds 68.3 % and two-σ 95.4 % (any
+    statistics text, e.g. Bevington & Robinson, Data Reduction and Error
+    Analysis, 3rd ed., 2003, §2.3). Voxels without a finite σ are left out
+    and counted in ``voxels`` only when they have one.
+    """
+    ok = mask & np.isfinite(sigma) & np.isfinite(estimate)
+    n = int(ok.sum())
+    if n == 0:
+        return {"within_1sigma": float("nan"), "within_2sigma": float("nan"), "median_sigma": float("nan"),
+                "voxels": 0}
+    d = np.abs(estimate[ok] - truth[ok])
+    s = sigma[ok]
+    return {"within_1sigma": float(np.mean(d <= s)), "within_2sigma": float(np.mean(d <= 2 * s)),
+            "median_sigma": float(np.median(s)), "voxels": n}
+
+
 def compare_to_truth(results, truth_path, as_text=True):
     """Compare a results bundle with the simulator's ground truth.
 
@@ -277,7 +296,9 @@ def compare_to_truth(results, truth_path, as_text=True):
     and the crystal are both placed with the results' grid, so a grid whose
     origin is not zero is checked too) and the angle between their
     directions, and whether the Burgers vector is right (up to the joint
-    sign of b and ξ).
+    sign of b and ξ), and the coverage of the error bars: per strain
+    component, the fraction of trusted voxels (``tensor.trusted``, away
+    from the cores) whose error is within one and two reported σ.
 
     Returns text (``as_text``) or a dict of the numbers.
     """
@@ -296,6 +317,8 @@ def compare_to_truth(results, truth_path, as_text=True):
     ct = truth["grid"].coordinates()
     com_t = np.array([np.sum(ct[i] * dens) / dens.sum() for i in range(3)])
     eps_r = np.asarray(tf.strain, float)
+    sig = np.asarray(tf.strain_uncertainty, float)
+    tf_trusted = np.asarray(tf.trusted, bool)
     comps = [(0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1)]
     labels = ["xx", "yy", "zz", "yz", "xz", "xy"]
 
@@ -312,7 +335,7 @@ def compare_to_truth(results, truth_path, as_text=True):
                 along = np.tensordot(xi, rel, axes=1)
                 core |= np.linalg.norm(rel - xi.reshape(3, 1, 1, 1) * along, axis=0) < 3 * vs.max()
         trusted = ndimage.binary_erosion(sup) & ~core
-        rms, rms_truth, mean_err = {}, {}, {}
+        rms, rms_truth, mean_err, cover = {}, {}, {}, {}
         for (i, k), lab in zip(comps, labels):
             t = samp(truth["strain"][i, k])
             e = eps_r[i, k]
@@ -320,8 +343,9 @@ def compare_to_truth(results, truth_path, as_text=True):
             rms[lab] = float(np.sqrt(np.mean((e[ok] - t[ok]) ** 2))) if ok.any() else float("nan")
             rms_truth[lab] = float(np.sqrt(np.mean(t[ok] ** 2))) if ok.any() else float("nan")
             mean_err[lab] = float(np.mean(e[ok] - t[ok])) if ok.any() else float("nan")
+            cover[lab] = _coverage(e, t, sig[i, k], ok & tf_trusted)
         total = float(np.sqrt(np.mean([v ** 2 for v in rms.values()])))
-        return total, rms, rms_truth, mean_err, trusted
+        return total, rms, rms_truth, mean_err, trusted, cover
 
     best = None
     for invert in (False, True):
@@ -335,10 +359,10 @@ def compare_to_truth(results, truth_path, as_text=True):
         samp, _ = _truth_on_grid(truth, grid, shift2, invert)
         d = samp(dens) > 0.5
         dice = 2 * np.sum(d & sup) / max(1, d.sum() + sup.sum())
-        total, rms, rms_truth, mean_err, trusted = score(invert, shift2, samp)
+        total, rms, rms_truth, mean_err, trusted, cover = score(invert, shift2, samp)
         if best is None or total < best[0]:
-            best = (total, invert, shift2, samp, dice, rms, rms_truth, mean_err, trusted)
-    total, invert, shift, samp, dice, rms, rms_truth, mean_err, trusted = best
+            best = (total, invert, shift2, samp, dice, rms, rms_truth, mean_err, trusted, cover)
+    total, invert, shift, samp, dice, rms, rms_truth, mean_err, trusted, cover = best
     lines_out = []
     for ln in truth["lines"]:
         if ln.get("kind") != "straight":
@@ -370,13 +394,24 @@ def compare_to_truth(results, truth_path, as_text=True):
         lines_out.append({"burgers_true": b_true.tolist(), "found": found})
     out = {"dice": float(dice), "twin": bool(invert), "strain_rms": rms, "strain_rms_truth": rms_truth,
            "strain_mean_error": mean_err, "strain_rms_all": total, "trusted_voxels": int(trusted.sum()),
-           "lines": lines_out}
+           "coverage": cover, "uncertainty_basis": getattr(tf, "uncertainty_basis", ""), "lines": lines_out,
+           "truth_strain": np.stack([np.stack([samp(truth["strain"][i, k]) for k in range(3)]) for i in range(3)]),
+           "compared": trusted}
     if not as_text:
         return out
     txt = [f"versus the simulator's truth ({int(trusted.sum())} trusted voxels, support overlap "
            f"{dice:.2f}{', twin solution' if invert else ''}):",
            "  strain RMS error  " + "  ".join(f"{k} {v:.1e}" for k, v in rms.items()),
            "  truth strain RMS  " + "  ".join(f"{k} {v:.1e}" for k, v in rms_truth.items())]
+    if all(c["voxels"] == 0 for c in cover.values()):
+        txt.append("  error bars: none to check; " + (out["uncertainty_basis"] or "σ not estimated"))
+    else:
+        txt += ["  median σ          " + "  ".join(f"{k} {c['median_sigma']:.1e}" for k, c in cover.items()),
+                "  within 1σ         " + "  ".join(f"{k} {c['within_1sigma']:7.2f}" for k, c in cover.items())
+                + "   (calibrated: 0.68)",
+                "  within 2σ         " + "  ".join(f"{k} {c['within_2sigma']:7.2f}" for k, c in cover.items())
+                + "   (calibrated: 0.95)",
+                f"  ({cover['xx']['voxels']} trusted voxels with σ, away from dislocation cores)"]
     for ln in lines_out:
         bt = " ".join(f"{v:+.1f}" for v in ln["burgers_true"])
         if ln["found"]:

@@ -31,6 +31,7 @@ __all__ = [
     "default_support",
     "trusted_voxels",
     "phase_gradient",
+    "phase_gradient_covariance",
     "phase_ramp",
     "reference_voxel",
     "unwrapped_phase",
@@ -219,6 +220,61 @@ def phase_gradient(obj, voxel_size, support=None, *, order=2, smooth=0.0):
             g[ok] = g2[ok] - (gp[ok] - 2 * g2[ok] + gm[ok]) / 6.0
         out[k] = g
     return out
+
+
+def phase_gradient_covariance(samples, voxel_size, support, *, center=None, order=2):
+    """Per-voxel covariance of the phase gradients of several reconstructions.
+
+    The samples are reconstructions of one reflection on one grid (e.g. the
+    kept random starts, or Poisson replicas). With the gradients g_s of each
+    (:func:`phase_gradient`, same ``support`` and ``order`` as the tensor
+    uses), the covariance is the sample covariance
+
+        C = Σ_s (g_s − ḡ)(g_s − ḡ)ᵀ / (S − 1)
+
+    about their mean ḡ, or, when ``center`` (the reconstruction they deviate
+    from) is given, C = Σ_s (g_s − g_c)(g_s − g_c)ᵀ / S (GUM, JCGM 100:2008,
+    §4.2, Type A evaluation). Gradient differences are taken wrap-free as
+    arg(e^{i(∂φ_s − ∂φ_c)}) per voxel, so a 2π jump of one sample's central
+    difference does not count as spread.
+
+    Parameters
+    ----------
+    samples : sequence of complex 3-D arrays (or SampleObject), S ≥ 2 (S ≥ 1 with ``center``)
+    voxel_size : float or 3 floats, Å
+    support : bool array
+        Voxels where gradients are taken (the tensor's common support).
+    center : complex 3-D array, optional
+    order : {2, 4}
+
+    Returns
+    -------
+    float32 ndarray, shape (3, 3, nx, ny, nz)
+        (rad/Å)²; NaN where a gradient is undefined.
+    """
+    samples = [_complex3d(s_, f"samples[{k}]") for k, s_ in enumerate(samples)]
+    need = 1 if center is not None else 2
+    if len(samples) < need:
+        raise InputError(f"samples: expected at least {need} reconstructions, got {len(samples)}")
+    shape = samples[0].shape
+    support = _support(support, shape)
+    vs = _voxel_size(voxel_size)
+    for k, a in enumerate(samples):
+        if a.shape != shape:
+            raise InputError(f"samples[{k}]: grid shape {a.shape} differs from samples[0] {shape}")
+    grads = np.stack([phase_gradient(a, vs, support, order=order) for a in samples]).astype(np.float64)
+    if center is not None:
+        ref = phase_gradient(_complex3d(center, "center"), vs, support, order=order).astype(np.float64)
+        dev = grads - ref[None]
+        ddof = 0
+    else:
+        dev = grads - np.mean(grads, axis=0, keepdims=True)
+        ddof = 1
+    # a 2π slip of the two-voxel difference moves ∂φ by π/h: fold differences into ±π/(2h)
+    lim = (np.pi / (2 * vs)).reshape(1, 3, 1, 1, 1)
+    dev = (dev + lim) % (2 * lim) - lim
+    cov = np.einsum("sa...,sb...->ab...", dev, dev) / (len(samples) - ddof)
+    return cov.astype(np.float32)
 
 
 def phase_ramp(gradient, mask, weights=None):

@@ -48,6 +48,7 @@ __all__ = [
     "twin",
     "RegistrationReport",
     "register",
+    "apply_registration",
     "MeanLattice",
     "mean_lattice_strain",
 ]
@@ -142,11 +143,15 @@ class TensorField:
     residual_per_reflection : (J, nx, ny, nz)
         √(Σ_k r_jk²/3) for each reflection, rad/Å.
     strain_uncertainty : (3, 3, nx, ny, nz)
-        One standard deviation of each strain component from the
-        least-squares covariance σ²(GᵀWG)⁻¹; NaN where it cannot be
-        estimated (three reflections and no ``gradient_noise``).
+        One standard deviation of each strain component: the spread of the
+        reconstructions (``gradient_covariance``) propagated through the
+        solve, combined with the least-squares covariance σ²(GᵀWG)⁻¹ (see
+        :func:`strain_tensor`, Notes); NaN where it cannot be estimated, and
+        ``uncertainty_basis`` then says why.
     rotation_uncertainty : (3, nx, ny, nz)
         The same for the rotation vector, radians.
+    uncertainty_basis : str
+        In words: what the uncertainties include, or why they are missing.
     displacement : (3, nx, ny, nz) or None
         u in Å from the unwrapped phases, zero at ``reference``; NaN outside
         the support and where unwrapping failed: parts of the support not
@@ -188,6 +193,7 @@ class TensorField:
     reference: tuple
     outlier: str | None = None
     outlier_scores: dict = field(default_factory=dict)
+    uncertainty_basis: str = ""
 
     @property
     def hydrostatic(self):
@@ -331,6 +337,8 @@ def _solve(P, w, G):
 
 def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *, labels=None,
                   order=2, amplitude_threshold=0.3, max_condition=30.0, gradient_noise=None,
+                  gradient_covariance=None, covariance_source="the given phase-gradient covariance",
+                  resolution_blur=None,
                   displacement=True, uniform_gradient=None, phase_tolerance=np.pi / 4,
                   outlier_ratio=0.25, warn=True):
     """Strain tensor, rotation and residual per voxel from J ≥ 3 reflections.
@@ -362,6 +370,22 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         Standard deviation of one phase-gradient component at unit weight,
         rad/Å. Given, it sets σ of the covariance; otherwise σ comes from the
         residual (needs J ≥ 4).
+    gradient_covariance : (J, 3, 3, nx, ny, nz) array, optional
+        Covariance of each reflection's phase gradient per voxel, (rad/Å)²,
+        from the spread of its reconstructions
+        (:func:`~braggstrain.strain.fields.phase_gradient_covariance`);
+        reflections are taken as independent. Propagated through the solve
+        (with three reflections: through G⁻¹) and combined with the
+        least-squares covariance, see Notes.
+    covariance_source : str
+        What ``gradient_covariance`` holds, in words, for
+        ``TensorField.uncertainty_basis``.
+    resolution_blur : float, optional
+        Gaussian σ, in voxels, of the blur through which the maps see the
+        true field (the reconstruction's point spread and the two-voxel
+        differences). Given (> 0), the first-order bias of that blur,
+        |f − S f| with S the Gaussian mean over the support, is added in
+        quadrature to every σ (see Notes). None or 0: not added.
     displacement : bool
         Compute the displacement map from unwrapped phases (costs one 3-D
         unwrapping per reflection).
@@ -396,6 +420,37 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
 
     Notes
     -----
+    Uncertainty. Per voxel D = −A P with A = (GᵀWG)⁻¹GᵀW (A = G⁻¹ for three
+    reflections), P the J×3 phase gradients. Two estimates of the variance of
+    each strain and rotation component are made:
+
+    * propagated spread: with C_j the 3×3 gradient covariance of reflection j,
+      Cov(D_ab, D_cd) = Σ_j A_aj A_cj (C_j)_bd (linear propagation, JCGM
+      100:2008, eq. 13), then ε_ik = (D_ik + D_ki)/2, ω = axial((D − Dᵀ)/2);
+    * least squares (J ≥ 4, or ``gradient_noise``): Cov(D[:, k]) = σ²M⁻¹,
+      M = GᵀWG, σ² from the residual.
+
+    With a spread and J ≥ 4, the residual sum of squares Q = Σ_jk w_j r_jk²
+    is compared with what the spread alone predicts,
+    E[Q] = Σ_k Σ_j w_j Σ_l (I − H)²_jl (C_l)_kk with H = G A; only the excess
+    τ² = max(0, ⟨Q⟩ − ⟨E[Q]⟩) / (3(J − 3)), both pooled over the voxels
+    around (Gaussian weights, σ = ``POOL_SIGMA`` voxels), is added as an
+    extra variance τ²M⁻¹ of the least-squares kind: the method-of-moments
+    estimate of an extra variance component (DerSimonian & Laird, Control.
+    Clin. Trials 7, 177, 1986, there between studies, here between
+    reflections). So noise seen by both is not counted twice, and a misfit
+    between reflections that the spread does not show still counts. A
+    given ``gradient_noise`` is added to the spread as independent noise.
+    Without a spread the least-squares variance alone is used (J ≥ 4), or
+    the uncertainty is NaN (J = 3) and ``uncertainty_basis`` says why.
+
+    Blur (``resolution_blur``): a map seen through a blur S has the bias
+    (S − 1)f ≈ −(1 − S)f to first order in the blur's width, estimated from
+    the map itself as b = f − S f and added as σ² + b² (an uncorrected
+    systematic effect added in quadrature, JCGM 100:2008, F.2.4.5, from
+    memory). It matters where strain varies over a few voxels (a substrate
+    interface, near a dislocation core).
+
     Outlier test (J ≥ 4, common practice, no source): the fit is repeated
     leaving out each reflection in turn, over the trusted voxels, and scored
     by the residual of the remaining reflections (divided by the mean |G|,
@@ -458,6 +513,58 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
             sigma2 = np.where(dof > 0, ss / np.maximum(dof, 1), np.nan)
     var_d = sigma2[:, None] * np.diagonal(Minv, axis1=1, axis2=2)  # Var(D_ik) = σ² Minv_ii for every k
     var_d[~ok] = np.nan
+    # least-squares variances of ε (xx yy zz yz xz xy order as _PAIRS) and ω
+    var_ls_e = {(i, k): (var_d[:, i] if i == k else 0.25 * (var_d[:, i] + var_d[:, k])) for i, k in _PAIRS}
+    var_ls_w = [0.25 * (var_d[:, q] + var_d[:, p]) for p, q in _ROT]
+    have_ls = gradient_noise is not None or J >= 4
+    spread = gradient_covariance is not None
+    if spread:
+        C = np.asarray(gradient_covariance, dtype=float)
+        if C.shape != (J, 3, 3) + shape:
+            raise TensorError(f"gradient_covariance: expected shape {(J, 3, 3) + shape} (one 3×3 covariance "
+                              f"per reflection and voxel), got {C.shape}")
+        Cs = C.reshape(J, 3, 3, -1)[..., idx]  # (J,3,3,N)
+        A = np.einsum("nab,nj,jb->naj", Minv, w, G)  # D = −A P
+        A[~ok] = np.nan
+
+        def cov_d(a, b, c, d):
+            return np.einsum("nj,nj,jn->n", A[:, a, :], A[:, c, :], Cs[:, b, d, :])
+
+        var_sp_e = {(i, k): 0.25 * (cov_d(i, k, i, k) + cov_d(k, i, k, i) + 2 * cov_d(i, k, k, i))
+                    for i, k in _PAIRS}
+        var_sp_w = [0.25 * (cov_d(p, q, p, q) + cov_d(q, p, q, p) - 2 * cov_d(p, q, q, p)) for p, q in _ROT]
+        if J >= 4 and gradient_noise is None:
+            # the residual beyond what the spread explains, as an extra variance τ²/w_j
+            IH = np.eye(J)[None] - np.einsum("ja,nak->njk", G, A)  # r = (I − H) e, column by column
+            diag_c = np.stack([Cs[:, k, k, :] for k in range(3)], axis=-1)  # (J, N, 3)
+            expected = np.einsum("nj,njl,lnk->n", w, IH ** 2, diag_c)
+            usable = ok & np.isfinite(ss) & np.isfinite(expected)
+            tau2 = np.clip(_pooled(ss, usable, idx, shape) - _pooled(expected, usable, idx, shape), 0, None)
+            var_x = tau2[:, None] / (3 * (J - 3)) * np.diagonal(Minv, axis1=1, axis2=2)
+            var_x[~ok] = np.nan
+        elif gradient_noise is not None:
+            var_x = var_d  # a stated noise level, independent of the spread
+        else:
+            var_x = np.zeros_like(var_d)
+        var_e = {(i, k): var_sp_e[i, k] + (var_x[:, i] if i == k else 0.25 * (var_x[:, i] + var_x[:, k]))
+                 for i, k in _PAIRS}
+        var_w = [v + 0.25 * (var_x[:, q] + var_x[:, p]) for v, (p, q) in zip(var_sp_w, _ROT)]
+    else:
+        var_e, var_w = var_ls_e, var_ls_w
+    if resolution_blur is not None:
+        if isinstance(resolution_blur, bool) or not np.isfinite(resolution_blur) or resolution_blur < 0:
+            raise TensorError(f"resolution_blur: expected a Gaussian σ ≥ 0 in voxels, got {resolution_blur!r}")
+        resolution_blur = float(resolution_blur) or None
+    if resolution_blur is not None:
+        Dfull = np.full((3, 3, int(np.prod(shape))), np.nan)
+        Dfull[:, :, idx] = np.moveaxis(D, 0, -1)
+        Dfull = Dfull.reshape((3, 3) + shape)
+        eps_g = 0.5 * (Dfull + np.swapaxes(Dfull, 0, 1))
+        rot_g = _axial(Dfull)
+        for i, k in _PAIRS:
+            var_e[i, k] = var_e[i, k] + _blur_bias(eps_g[i, k], support, resolution_blur)[idx] ** 2
+        var_w = [v + _blur_bias(rot_g[c], support, resolution_blur)[idx] ** 2 for c, v in enumerate(var_w)]
+    basis = _uncertainty_basis(J, spread, covariance_source, gradient_noise, resolution_blur)
 
     def to_grid(flat, lead):
         out = np.full(lead + (int(np.prod(shape)),), np.nan, dtype=np.float32)
@@ -467,14 +574,11 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
     Dg = to_grid(np.moveaxis(D, 0, -1), (3, 3))
     strain = 0.5 * (Dg + np.swapaxes(Dg, 0, 1))
     rotation = _axial(Dg).astype(np.float32)
-    # uncertainties: columns of D independent, Var(D_ik) = σ² (M⁻¹)_ii
     su = np.empty((3, 3, len(idx)))
-    for i in range(3):
-        for k in range(3):
-            su[i, k] = np.sqrt(var_d[:, i]) if i == k else 0.5 * np.sqrt(var_d[:, i] + var_d[:, k])
-    ru = np.stack([0.5 * np.sqrt(var_d[:, 1] + var_d[:, 2]),
-                   0.5 * np.sqrt(var_d[:, 0] + var_d[:, 2]),
-                   0.5 * np.sqrt(var_d[:, 0] + var_d[:, 1])])
+    with np.errstate(invalid="ignore"):
+        for i, k in _PAIRS:
+            su[i, k] = su[k, i] = np.sqrt(np.clip(var_e[i, k], 0, None))
+        ru = np.sqrt(np.clip(np.stack(var_w), 0, None))
     residual = to_grid(res, ())
     residual_j = to_grid(res_j.T, (J,))
     okg = to_grid(ok.astype(np.float32), ()) == 1
@@ -501,10 +605,72 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         labels=list(labels),
         voxel_size=vs,
         reference=ref,
+        uncertainty_basis=basis,
     )
     if J >= 4:
         _outlier_check(tf, P, w, G, idx, trusted, max_condition, outlier_ratio, warn)
     return tf
+
+
+# strain components (i, k), i ≤ k, and the (p, q) of each rotation ω = (D_pq − D_qp)/2
+_PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
+_ROT = ((2, 1), (0, 2), (1, 0))
+
+
+#: Gaussian σ (voxels) over which the residual sums of squares are pooled (common practice, no source)
+POOL_SIGMA = 1.5
+
+
+def _pooled(values, usable, idx, shape, sigma=POOL_SIGMA):
+    """Gaussian-weighted local mean of per-voxel ``values`` over the ``usable`` voxels."""
+    full = np.zeros(int(np.prod(shape)))
+    m = np.zeros(int(np.prod(shape)))
+    full[idx] = np.where(usable, values, 0.0)
+    m[idx] = usable
+    full = ndi.gaussian_filter(full.reshape(shape), sigma, mode="constant")
+    m = ndi.gaussian_filter(m.reshape(shape), sigma, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return (full / m).reshape(-1)[idx]
+
+
+def _blur_bias(field_, support, sigma):
+    """f − S_σ f, S_σ the Gaussian mean over the finite support voxels: the
+    first-order bias of a map seen through a blur of σ voxels."""
+    ok = support & np.isfinite(field_)
+    f0 = np.where(ok, field_, 0.0)
+    w = ndi.gaussian_filter(ok.astype(float), sigma, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        b = field_ - ndi.gaussian_filter(f0, sigma, mode="constant") / w
+    return np.where(ok, b, np.nan).reshape(-1)
+
+
+def _uncertainty_basis(J, spread, source, gradient_noise, resolution_blur=None):
+    """What the uncertainties of :func:`strain_tensor` include, in words."""
+    text = _basis_core(J, spread, source, gradient_noise)
+    if resolution_blur is not None and not text.startswith("σ not"):
+        text += (f"; plus the first-order bias of a {resolution_blur:g}-voxel blur (resolution and finite "
+                 f"differences), |ε − blurred ε|, added in quadrature")
+    return text
+
+
+def _basis_core(J, spread, source, gradient_noise):
+    ls = (f"the least-squares covariance with σ from the residual of {J} reflections ({J - 3} redundant)"
+          if gradient_noise is None else
+          f"the least-squares covariance with the given gradient noise {gradient_noise:.3g} rad/Å")
+    how = "through G⁻¹ (three reflections, exactly determined)" if J == 3 else "through the least-squares solve"
+    if spread and gradient_noise is not None:
+        return f"σ includes {source}, propagated {how}, and, added to it, {ls}"
+    if spread and J >= 4:
+        return (f"σ includes {source}, propagated {how}, plus the misfit between the {J} reflections that "
+                f"this spread does not explain (residual sum of squares beyond its expectation, pooled over "
+                f"{POOL_SIGMA:g} voxels)")
+    if spread:
+        return f"σ includes {source}, propagated {how}"
+    if J >= 4 or gradient_noise is not None:
+        return (f"σ includes only {ls}; the spread of the reconstructions is not included, so σ is "
+                f"likely too small")
+    return ("σ not estimated: three reflections leave no residual, and no spread of reconstructions was "
+            "given (it needs at least two kept random starts or Poisson replicas)")
 
 
 def _displacement(arrays, G, vs, support, weights, ref, D0=None, tol=np.pi / 4):
@@ -889,6 +1055,48 @@ def register(objects, *, voxel_size=None, reference=0, min_overlap=0.7, upsample
         twin_decided_by=[i["by"] for i in info],
         overlap=overlaps)
     return out, report
+
+
+def apply_registration(obj, report, index):
+    """Put another reconstruction of reflection ``index`` onto the common grid
+    exactly as :func:`register` put that reflection's object there.
+
+    For the companions of a registered object (its kept random starts, its
+    Poisson replicas), which must move with it and not be aligned anew.
+
+    Parameters
+    ----------
+    obj : SampleObject
+        On any sample-frame grid (usually the grid of the object registered).
+    report : RegistrationReport
+        From ``register(..., return_report=True)``.
+    index : int
+        Which reflection of the report (its shift and twin choice are used).
+
+    Returns
+    -------
+    SampleObject on the report's common grid.
+    """
+    if not isinstance(obj, SampleObject):
+        raise TensorError(f"obj: expected a braggstrain.objects.SampleObject, got {type(obj).__name__}")
+    rep = report if isinstance(report, dict) else report.__dict__
+    J = len(rep["twins"])
+    if not 0 <= int(index) < J:
+        raise TensorError(f"index: expected a reflection index in 0..{J - 1}, got {index!r}")
+    index = int(index)
+    vs = np.asarray(rep["voxel_size"], float)
+    origin = np.asarray(rep["origin"], float)
+    shape = tuple(int(v) for v in rep["shape"])
+    shift = np.asarray(rep["shifts_voxels"][index], float)
+    tw = bool(rep["twins"][index])
+    base = np.indices(shape, dtype=float)
+    c = (np.array(shape) // 2).reshape(3, 1, 1, 1).astype(float)
+    mv = base - shift.reshape(3, 1, 1, 1)
+    coords = (2 * c - mv) if tw else mv
+    o, sp = _Resampler(obj, vs, origin, shape).sample(coords)
+    if tw:
+        o = np.conj(o)
+    return SampleObject(o, vs.copy(), obj.g_vector.copy(), sp, origin.copy(), obj.hkl, dict(obj.meta))
 
 
 def _label(o, j):
