@@ -50,6 +50,8 @@ _TENSOR_OWN = {"min_overlap", "voxel_nm", "upsample", "twin_tolerance", "replica
 #: Poisson replicas per reflection for the error bars, and iterations per replica (docs/strain.md)
 DEFAULT_REPLICAS = 8
 DEFAULT_REPLICA_ITERATIONS = 90
+#: share of RAAR in a replica's iterations (then ER); see braggstrain.phasing.replicas
+REPLICA_RAAR_FRACTION = 1 / 3
 #: Gaussian σ (voxels) of the blur whose bias is added to the error bars: the two-voxel central
 #: difference (box of 2 voxels, σ² = 1/3) and a point spread of about one voxel FWHM (σ ≈ 0.5), in
 #: quadrature (docs/strain.md)
@@ -730,7 +732,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                     run.save("frame", name, k_frame, ft)
             so = _tree_to_sample(ft)
             # -- spread: the kept runs and Poisson replicas on the sample-frame grid of `so`
-            k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter)
+            k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter, REPLICA_RAAR_FRACTION)
             with run.timed("spread"):
                 st = run.cached("spread", name, k_spread)
                 if st is None:
@@ -872,7 +874,8 @@ def _spread_samples(tree, data, intensity, mask, g_ref, so, fr_opts, n_rep, rep_
     out = {"runs": np.stack([to_frame(o) for o in tree["kept_objects"]])}
     if n_rep >= 2:
         rs = poisson_replicas(intensity, mask, tree["obj"], tree["support"], ramp=tree["ramp"], replicas=n_rep,
-                              iterations=rep_iter, seed=seed, executor=executor)
+                              iterations=rep_iter, seed=seed, executor=executor,
+                              raar_fraction=REPLICA_RAAR_FRACTION)
         out["baseline"] = to_frame(rs.baseline)
         out["replicas"] = np.stack([to_frame(o) for o in rs.replicas])
     return out

@@ -40,7 +40,7 @@ class ReplicaSet:
     replicas : complex64 (R, n0, n1, n2)
         One object per replica, same layout.
     iterations : int
-        Iterations per replica (RAAR for two thirds, then ER).
+        Iterations per replica (RAAR, then ER).
     seed : int
     """
 
@@ -61,7 +61,7 @@ def _ramp_factor(shape, ramp, sign):
 
 def _phase_one(args):
     """One replica (index ≥ 0) or the baseline (index −1); module level so it pickles."""
-    intensity, mask, obj, support, ramp, iterations, seed, index, beta = args
+    intensity, mask, obj, support, ramp, iterations, seed, index, beta, raar_fraction = args
     shape = intensity.shape
     measured = ~mask
     if index >= 0:
@@ -77,7 +77,7 @@ def _phase_one(args):
     fft = FFTBackend(shape, threads=1)
     buf = fft.buffer
     n = np.float32(1.0 / buf.size)
-    n_raar = (2 * iterations) // 3
+    n_raar = int(round(raar_fraction * iterations))
     for it in range(iterations):
         buf[...] = x
         fft.forward()
@@ -95,7 +95,7 @@ def _phase_one(args):
 
 
 def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, iterations=90, seed=0,
-                     executor=None, beta=0.9):
+                     executor=None, beta=0.9, raar_fraction=1 / 3):
     """Phase Poisson replicas of ``intensity`` from the converged ``obj``.
 
     Parameters
@@ -116,7 +116,13 @@ def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, it
     replicas : int
         Number of replicas (≥ 2).
     iterations : int
-        Iterations per replica: two thirds RAAR (feedback ``beta``), then ER.
+        Iterations per replica: the fraction ``raar_fraction`` RAAR (feedback
+        ``beta``), then ER. With the default (the closing RAAR → ER of the
+        default plan) the replicas bootstrap the procedure that made the
+        object, whose wandering on noisy data grows faster than the linear
+        response at low counts; ``raar_fraction=0`` (ER alone, which from the
+        converged object settles into the nearest solution) gives the linear
+        response to the counts only.
     seed : int
         Replica r draws its counts from ``SeedSequence(seed, spawn_key=(2, r))``.
     executor : object with ``map``, optional
@@ -144,7 +150,10 @@ def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, it
         raise InputError(f"iterations: expected an integer ≥ 3, got {iterations!r}")
     r = np.zeros(3) if ramp is None else np.asarray(ramp, float).reshape(3)
     I = np.where(m | ~np.isfinite(I), 0, I)
-    tasks = [(I, m, o, s, r, int(iterations), int(seed), k, float(beta)) for k in range(-1, int(replicas))]
+    if not 0 <= raar_fraction <= 1:
+        raise InputError(f"raar_fraction: expected a fraction in [0, 1], got {raar_fraction!r}")
+    tasks = [(I, m, o, s, r, int(iterations), int(seed), k, float(beta), float(raar_fraction))
+             for k in range(-1, int(replicas))]
     mapper = map if executor is None else executor.map
     out = list(mapper(_phase_one, tasks))
     if out and hasattr(out[0], "result"):
