@@ -66,7 +66,7 @@ def main():
                 checked += 1
                 passed += ok
                 print(f"  {k:9s}   {cmp['strain_rms'][k]:9.2e}   {c['median_sigma']:8.2e}   "
-                      f"{c['within_1sigma']:9.2f}   {c['within_2sigma']:9.2f}   {'ok' if ok else 'OUT'}")
+                      f"{c['within_1sigma']:9.3f}   {c['within_2sigma']:9.3f}   {'ok' if ok else 'OUT'}")
     print(f"targets: within 1σ {ONE[0]:.2f}–{ONE[1]:.2f}, within 2σ {TWO[0]:.2f}–{TWO[1]:.2f}")
     print(f"coverage_ok={passed}/{checked}")
 
