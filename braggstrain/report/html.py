@@ -271,8 +271,8 @@ def _error_bars(tf):
                     "starts (<code>[phasing] keep</code>).</p>")
     else:
         text.append("<p>σ is one standard deviation per voxel and component. It does not include errors "
-                    "common to all reconstructions and replicas, such as a wrong instrument geometry or the "
-                    "blur of features smaller than the resolution (docs/strain.md).</p>")
+                    "common to all reconstructions and replicas, such as a wrong instrument geometry, or strain "
+                    "that changes faster than the blur-bias term covers (docs/strain.md).</p>")
     return "<h3>Error bars</h3>\n" + "\n".join(text)
 
 
