@@ -1105,11 +1105,12 @@ def apply_registration(obj, report, index):
     shape = tuple(int(v) for v in rep["shape"])
     shift = np.asarray(rep["shifts_voxels"][index], float)
     tw = bool(rep["twins"][index])
+    common = Grid(shape, vs, origin)
     base = np.indices(shape, dtype=float)
-    c = (np.array(shape) // 2).reshape(3, 1, 1, 1).astype(float)
+    c = common.centre_index.reshape(3, 1, 1, 1).astype(float)
     mv = base - shift.reshape(3, 1, 1, 1)
     coords = (2 * c - mv) if tw else mv
-    o, sp = _Resampler(obj, vs, origin, shape).sample(coords)
+    o, sp = _Resampler(obj, common).sample(coords)
     if tw:
         o = np.conj(o)
     return SampleObject(o, vs.copy(), obj.g_vector.copy(), sp, origin.copy(), obj.hkl, dict(obj.meta))
