@@ -57,7 +57,7 @@ def crystal_intensity(n):
     del r
     obj = forward.complex_object(density, u, (0.0, 0.0, np.pi))
     del u, density
-    return (np.abs(forward.far_field(obj)) ** 2).astype(np.float32)
+    return (np.abs(far_field(obj)) ** 2).astype(np.float32)
 
 
 def _rss_kib(field):

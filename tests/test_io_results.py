@@ -28,8 +28,8 @@ from braggstrain.defects.lines import find_dislocations
 from braggstrain.errors import InputError
 from braggstrain.report.figures import FIGURES, make_figures, plot_slices
 from braggstrain.strain.objects import SampleObject
-from braggstrain.io.results import (STRAIN_COMPONENTS, export_vtk, read_results, strain_components,
-                                 strain_from_components, write_results)
+from braggstrain.io.results import export_vtk, read_results, write_results
+from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components, strain_from_components
 from braggstrain.report.html import CAUTIONS, strain_statistics, write_report
 from braggstrain.strain.tensor import mean_lattice_strain, strain_tensor
 

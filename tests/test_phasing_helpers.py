@@ -4,13 +4,14 @@ The crystal is an invented one: a truncated octahedron (supersampled, so its
 facets have partial-voxel density) with a smooth, asymmetric displacement
 along z giving a phase that spans about 2.3 rad, seen at a reflection with
 d = 2 Å.  The intensity layout is the one `reconstruct` expects: the Bragg
-peak at index n//2 (braggstrain.simulate.forward.far_field).
+peak at index n//2 (braggstrain.phasing.metrics.far_field).
 """
 
 from functools import lru_cache
 
 import numpy as np
 
+from braggstrain.phasing.metrics import far_field
 from braggstrain.simulate import forward
 
 
@@ -34,7 +35,7 @@ def crystal(n=48):
 @lru_cache(maxsize=None)
 def clean_intensity(n=48):
     """Noise-free intensity |far field|^2 (float64) of :func:`crystal`."""
-    return np.abs(forward.far_field(crystal(n)).astype(np.complex128)) ** 2
+    return np.abs(far_field(crystal(n)).astype(np.complex128)) ** 2
 
 
 @lru_cache(maxsize=None)

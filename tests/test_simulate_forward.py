@@ -3,6 +3,7 @@
 import numpy as np
 import pytest
 
+from braggstrain.phasing.metrics import far_field
 from braggstrain.simulate import forward as fw
 from braggstrain.geometry.crystal import Crystal
 from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
@@ -16,7 +17,7 @@ def test_cube_far_field_is_sinc_cubed():
     # edge 14.5 voxels: |x| ≤ 7.25 keeps offsets −7…7, i.e. n = 15 voxels per edge
     s = fw.cube((N, N, N), 1.0, n - 0.5).astype(np.float32)
     assert s.sum() == n**3
-    A = np.abs(fw.far_field(s))
+    A = np.abs(far_field(s))
     k = np.arange(-2, 3)
     q = 2 * np.pi * k / N
     sinc = np.sinc(q * n / (2 * np.pi))  # numpy sinc(x) = sin(πx)/(πx)
@@ -39,7 +40,7 @@ def test_sphere_far_field_form_factor():
             for oz in off:
                 dens += sph.density(coords + np.array([ox, oy, oz])[:, None, None, None])
     dens /= 64
-    A = np.abs(fw.far_field(dens))
+    A = np.abs(far_field(dens))
     V = 4 / 3 * np.pi * R**3
     # the grid sum of the sampled density is its volume to the sub-sampling's accuracy
     assert A[N // 2, N // 2, N // 2] == pytest.approx(V, rel=3e-3)
@@ -55,7 +56,7 @@ def test_parseval():
     s = fw.octahedron((48, 48, 48), 1.0, 30.0)
     u = fw.StraightDislocation([1, 2, 0], [0, 0, 1], [2.0, 0, 1.0]).displacement(fw.grid_coordinates((48,) * 3, 1.0))
     obj = fw.complex_object(s, u, rng.normal(size=3))
-    A = fw.far_field(obj)
+    A = far_field(obj)
     assert np.sum(np.abs(A.astype(np.complex128)) ** 2) / obj.size == pytest.approx(np.sum(np.abs(obj) ** 2), rel=1e-5)
 
 

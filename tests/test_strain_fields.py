@@ -170,16 +170,31 @@ def test_strain_along_g_interface_gradient(pt, grid):
     assert np.abs(expect[m]).max() > 1e-3  # the field is not trivially small
 
 
-def test_trusted_voxels_erode_and_threshold(grid):
+def test_trusted_for_gradients_erodes_and_thresholds(grid):
     coords, support = grid
     amp = support.astype(float)
     low = support & (coords[0] > 10 * H)
     amp[low] = 0.1
     obj = amp.astype(np.complex64)
-    t = fields.trusted_voxels(obj, support, amplitude_threshold=0.3)
+    t = fields.trusted_for_gradients(obj, support, amplitude_threshold=0.3)
     assert not t[low].any()
     assert not (t & ~ndi.binary_erosion(support)).any()
     assert t[N // 2, N // 2, N // 2]
+    # an amplitude array gives the same; threshold 0 leaves the eroded support
+    np.testing.assert_array_equal(fields.trusted_for_gradients(amp, support, amplitude_threshold=0.3), t)
+    np.testing.assert_array_equal(fields.trusted_for_gradients(amp, support, amplitude_threshold=0.0),
+                                  ndi.binary_erosion(support))
+
+
+def test_trusted_for_windings_dilates_and_thresholds(grid):
+    coords, support = grid
+    amp = np.where(support, 1.0, 0.5)  # the surroundings are dim, not dark
+    amp[support & (coords[0] > 10 * H)] = 0.05
+    obj = amp.astype(np.complex64)
+    t = fields.trusted_for_windings(obj, support, amplitude_threshold=0.1, dilation=2)
+    assert not (t & ~ndi.binary_dilation(support, iterations=2)).any()
+    assert (t & ~support).any()  # reaches past the surface
+    assert not t[support & (coords[0] > 10 * H)].any()
 
 
 @pytest.mark.parametrize("bad, match", [

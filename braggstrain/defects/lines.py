@@ -47,15 +47,16 @@ import numpy as np
 from scipy import ndimage
 from scipy.spatial import cKDTree
 
+from braggstrain import _validate as _v
 from braggstrain.errors import InputError
 from braggstrain.strain.grid import Grid
+from braggstrain.strain.fields import trusted_for_windings
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
     "Dislocation",
     "BurgersWarning",
     "vortex_map",
-    "trusted_region",
     "orientation_from_reflections",
     "find_dislocations",
     "solve_burgers",
@@ -232,64 +233,6 @@ def _nan_to_none(x):
 # input checks
 # --------------------------------------------------------------------------
 
-def _as_complex3d(obj, name):
-    """The shared check of a complex 3-D object (braggstrain.fields), plus
-    the few voxels per axis that plaquettes and rings need."""
-    from braggstrain.strain.fields import _complex3d
-
-    arr = _complex3d(obj, name)
-    if min(arr.shape) < 4:
-        raise InputError(f"{name}: expected at least 4 voxels along each axis, got shape {arr.shape}")
-    return arr
-
-
-def _as_mask(support, shape, name):
-    s = np.asarray(support)
-    if s.shape != tuple(shape):
-        raise InputError(f"{name}: expected a mask of shape {tuple(shape)} (the objects' grid), got {s.shape}")
-    s = s.astype(bool) if s.dtype == bool else (s > 0.5)
-    if not s.any():
-        raise InputError(f"{name}: the support is empty; expected True inside the crystal")
-    return s
-
-
-def _dilate(mask, voxels):
-    voxels = int(voxels)
-    if voxels <= 0:
-        return mask.copy()
-    return ndimage.binary_dilation(mask, iterations=voxels)
-
-
-def trusted_region(obj, support, amplitude_threshold=0.1, dilation=2):
-    """Voxels where the phase of ``obj`` can be trusted.
-
-    Parameters
-    ----------
-    obj : complex ndarray (3-D) or SampleObject
-    support : bool ndarray, same shape
-        Voxels inside the crystal.
-    amplitude_threshold : float
-        Fraction of the median amplitude inside the support below which a
-        voxel is not trusted.
-    dilation : int
-        The support is dilated by this many voxels first, so that lines reach
-        the surface and low-amplitude cores are not cut away.
-
-    Returns
-    -------
-    trusted : bool ndarray
-    reference : float
-        The median amplitude inside the support.
-    """
-    obj = _as_complex3d(obj, "obj")
-    support = _as_mask(support, obj.shape, "support")
-    amp = np.abs(obj)
-    ref = float(np.median(amp[support]))
-    if not ref > 0:
-        raise InputError("obj: the amplitude inside the support is zero; expected a reconstructed crystal")
-    return _dilate(support, dilation) & (amp >= amplitude_threshold * ref), ref
-
-
 def _edge_phase(obj, axis):
     """arg(ρ(i + e_axis) ρ*(i)), shape one shorter along ``axis`` (radians)."""
     n = obj.shape[axis]
@@ -333,8 +276,8 @@ def vortex_map(obj, support, *, amplitude_threshold=0.1, dilation=2):
         Burgers vector b pierces a plaquette of normal +e_n with winding
         n = −G·b/2π · sign(ξ·e_n).
     """
-    obj = _as_complex3d(obj, "obj")
-    trusted, _ = trusted_region(obj, support, amplitude_threshold, dilation)
+    obj = _v.complex3d(obj, "obj", min_size=4)
+    trusted = trusted_for_windings(obj, support, amplitude_threshold, dilation)
     d = [_edge_phase(obj, ax) for ax in range(3)]
     out = np.zeros((3,) + obj.shape, dtype=np.int8)
     for n in range(3):
@@ -713,7 +656,7 @@ def _gather(objects, hkls, g_vectors, voxel_size, support, grid):
     if len(objects) == 0:
         raise InputError("objects: expected one complex object per reflection, got none")
     samples = [o for o in objects if isinstance(o, SampleObject)]
-    arrays = [_as_complex3d(o, f"objects[{j}]") for j, o in enumerate(objects)]
+    arrays = [_v.complex3d(o, f"objects[{j}]", min_size=4) for j, o in enumerate(objects)]
     shape = arrays[0].shape
     for j, a in enumerate(arrays):
         if a.shape != shape:
@@ -776,7 +719,7 @@ def _gather(objects, hkls, g_vectors, voxel_size, support, grid):
         support = np.zeros(shape, bool)
         for o in samples:
             support |= o.support
-    support = _as_mask(support, shape, "support")
+    support = _v.mask_of_shape(support, shape, "support", nonempty=True)
     hk = [tuple(int(v) for v in h) for h in np.rint(H)]
     return arrays, hk, G, grid, support
 
@@ -886,7 +829,7 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
     for a in arrays:
         w = vortex_map(a, support, amplitude_threshold=amplitude_threshold, dilation=support_dilation)
         cells |= _pierced_cells(w, cell_shape)
-        tr, _ = trusted_region(a, support, amplitude_threshold, support_dilation)
+        tr = trusted_for_windings(a, support, amplitude_threshold, support_dilation)
         fields.append((a.real.astype(np.float32), a.imag.astype(np.float32)))
         trust.append(tr.astype(np.float32))
     if not cells.any():

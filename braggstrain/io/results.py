@@ -40,26 +40,22 @@ import numpy as np
 from braggstrain.errors import BraggStrainError, InputError, OutputError
 from braggstrain.io.scans import atomic_path, disk_full_message, is_disk_full, nbytes_of
 from braggstrain.strain.grid import Grid
+from braggstrain.strain.components import (STRAIN_COMPONENTS, gradient_from, strain_components,
+                                           strain_from_components)
 
 __all__ = [
     "Results",
     "ReflectionResult",
     "LAYOUT_VERSION",
-    "STRAIN_COMPONENTS",
     "check_results",
     "write_results",
     "read_results",
     "export_vtk",
-    "strain_components",
-    "strain_from_components",
 ]
 
 #: Version of the results-file layout written by :func:`write_results`.
 LAYOUT_VERSION = 1
 
-#: Order of the six stored strain components (symmetric tensor).
-STRAIN_COMPONENTS = ("xx", "yy", "zz", "yz", "xz", "xy")
-_PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
 
 _CONTENT = "braggstrain results"
 _GRID_AXES = "x, y, z (sample frame; array index i along x, j along y, k along z; origin at index n//2)"
@@ -121,45 +117,6 @@ class Results(TypedDict, total=False):
     registration: dict
     mean_lattice: dict
     provenance: dict
-
-
-# --------------------------------------------------------------------------
-# strain components
-# --------------------------------------------------------------------------
-
-def strain_components(strain):
-    """The six independent components (xx, yy, zz, yz, xz, xy) of a
-    symmetric (3, 3, ...) field, stacked along a new first axis."""
-    e = np.asarray(strain)
-    if e.shape[:2] != (3, 3):
-        raise InputError(f"strain: expected a (3, 3, ...) tensor field, got shape {e.shape}")
-    return np.stack([e[i, k] for i, k in _PAIRS])
-
-
-def strain_from_components(components):
-    """Inverse of :func:`strain_components`: (6, ...) → symmetric (3, 3, ...)."""
-    c = np.asarray(components)
-    if c.shape[0] != 6:
-        raise InputError(f"components: expected 6 components (xx, yy, zz, yz, xz, xy) first, got shape {c.shape}")
-    e = np.empty((3, 3) + c.shape[1:], dtype=c.dtype)
-    for m, (i, k) in enumerate(_PAIRS):
-        e[i, k] = c[m]
-        e[k, i] = c[m]
-    return e
-
-
-def _gradient_from(strain, rotation):
-    """D = ε + W with W the antisymmetric tensor of the axial vector ω
-    (ω_x = (D_zy − D_yz)/2, ω_y = (D_xz − D_zx)/2, ω_z = (D_yx − D_xy)/2)."""
-    D = np.array(strain, copy=True)
-    wx, wy, wz = rotation
-    D[2, 1] += wx
-    D[1, 2] -= wx
-    D[0, 2] += wy
-    D[2, 0] -= wy
-    D[1, 0] += wz
-    D[0, 1] -= wz
-    return D
 
 
 # --------------------------------------------------------------------------
@@ -964,7 +921,7 @@ def _read_all(f, path):
         rotation = _need(t, "rotation", path)[()]
         labels = [str(s) for s in _plain(t.attrs["labels"])]
         tf = TensorField(
-            displacement_gradient=_gradient_from(strain, rotation).astype(np.float32),
+            displacement_gradient=gradient_from(strain, rotation).astype(np.float32),
             strain=strain,
             rotation=rotation,
             residual=_need(t, "residual", path)[()],

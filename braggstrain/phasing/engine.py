@@ -23,8 +23,9 @@ from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings, ker
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
 from braggstrain.phasing.metrics import centre_of_mass_shift, peak_offset, sharpness
 from braggstrain.phasing.schedule import default_plan, plan_from_config
-from braggstrain.phasing.support import (autocorrelation, autocorrelation_support, dilate_periodic, estimate_oversampling,
-                                         shrinkwrap, support_health)
+from braggstrain.phasing.support import (autocorrelation, autocorrelation_support, dilate_periodic, shrinkwrap,
+                                         support_health)
+from braggstrain.prepare.oversampling import estimate_oversampling
 
 __all__ = [
     "reconstruct",
@@ -293,12 +294,12 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
         raise InputError(f"initial_threshold: expected a fraction in (0, 1), got {initial_threshold}")
 
     ramp = peak_offset(data, masked)
+    ratios = estimate_oversampling(data, mask=masked)
     data_f = scipy.fft.ifftshift(data)
     meas_f = scipy.fft.ifftshift(measured)
     del data
 
     ac = autocorrelation(data_f, meas_f, threads=threads)
-    ratios = estimate_oversampling(data_f, meas_f)
     for axis, r in enumerate(ratios):
         if r < 2:
             warnings.warn(f"intensity: oversampling along axis {axis} is about {r:.2f} (< 2 needed "

@@ -65,14 +65,29 @@ def sharpness(obj):
     return s4 / s2 ** 2 * a2.size
 
 
-def twin(obj):
-    """The twin rho*(-r), inverted about the array centre (index n//2).
+def twin(obj, *, periodic=True):
+    """The twin conj ρ(−r) of an object whose origin is at index n//2.
 
-    Index i maps to (2 (n//2) - i) mod n, so the voxel at n//2 stays put.
+    Intensity cannot tell ρ(r) from ρ*(−r) (docs/design.md, sign
+    conventions). Index i maps to 2·(n//2) − i on each axis, so the voxel at
+    n//2 stays put. On an axis of even length index 0 has no image inside
+    the array:
+
+    * ``periodic=True`` (arrays of phase retrieval, periodic through the
+      FFT): the image is taken modulo n, so index 0 maps onto itself;
+    * ``periodic=False`` (sample-frame grids, which end at their edges):
+      index 0 is set to zero.
     """
-    out = np.conj(np.asarray(obj))[::-1, ::-1, ::-1]
-    shifts = tuple(1 if n % 2 == 0 else 0 for n in out.shape)
-    return np.roll(out, shifts, axis=(0, 1, 2))
+    a = np.asarray(obj)
+    shifts = tuple(1 if n % 2 == 0 else 0 for n in a.shape)
+    out = np.roll(np.conj(a)[::-1, ::-1, ::-1], shifts, axis=(0, 1, 2))
+    if not periodic:
+        for ax, n in enumerate(a.shape):
+            if n % 2 == 0:
+                sl = [slice(None)] * a.ndim
+                sl[ax] = 0
+                out[tuple(sl)] = 0
+    return out
 
 
 def _fourier_shift(obj, shift):
@@ -144,7 +159,12 @@ def complex_error(obj, reference, *, aligned=False, allow_twin=True):
 
 
 def far_field(obj):
-    """fftshift(fftn(ifftshift(obj))): far field with q = 0 at index n//2."""
+    """Far field of an object centred at index n//2, with q = 0 at index n//2.
+
+    The forward FFT of docs/design.md: fftshift(fftn(ifftshift(obj))), so
+    that intensity = |far_field(obj)|² for ρ = s·exp(−i G·u). The dtype
+    follows scipy.fft (complex64 in, complex64 out).
+    """
     return scipy.fft.fftshift(scipy.fft.fftn(scipy.fft.ifftshift(obj)))
 
 

@@ -1,4 +1,4 @@
-"""Support of the object: initial estimate, shrink-wrap, health checks, oversampling.
+"""Support of the object: initial estimate, shrink-wrap, health checks.
 
 All arrays here are in FFT order (origin at index 0) unless a function says
 otherwise; the engine converts at its edges.
@@ -17,7 +17,6 @@ __all__ = [
     "autocorrelation_support",
     "shrinkwrap",
     "gaussian_transfer",
-    "estimate_oversampling",
     "support_health",
     "dilate_periodic",
 ]
@@ -155,59 +154,6 @@ def support_health(size, initial_size, total, min_voxels=27, collapse_ratio=1 / 
     if size > max_fraction * total:
         return "support exploded"
     return "ok"
-
-
-def estimate_oversampling(intensity_fft, measured=None, threshold=0.05):
-    """Estimated oversampling ratio per axis, sigma_k = N_k / L_k (rough).
-
-    The intensity summed over the other two axes, P_k(q_k), transforms (1-D,
-    Parseval along those axes) into the sum over all lines of voxels along k
-    of their 1-D autocorrelations, each spanning twice the crystal's chord
-    along k; L_k is read from its extent at ``threshold`` of the maximum,
-    calibrated on a box (whose autocorrelation is a tent, spanning
-    2 L (1 - threshold) at that level).  METHODS.md: sigma = 2 pi / (L dq) =
-    N / L on an N-point grid; phase retrieval needs sigma >= 2 (common
-    practice).  Rounder or pointed crystals read high.
-
-    Masked voxels are left out of the sums (each slice's sum is scaled from
-    its measured voxels), and slices with no measured voxel are interpolated
-    from their neighbours.  The origin of the 1-D autocorrelation, which
-    also holds the flat background and the noise, takes the value of its
-    neighbours.  When the autocorrelation does not fall below ``threshold``
-    anywhere (it wraps around the periodic array: sigma < 2), the width at
-    half maximum is used instead (a box's tent is L wide there), capped just
-    below 2.
-
-    Returns
-    -------
-    ndarray (3,) of float
-    """
-    data = np.asarray(intensity_fft, dtype=np.float64)
-    meas = np.ones(data.shape, bool) if measured is None else np.asarray(measured, bool)
-    ratios = []
-    for axis, n in enumerate(data.shape):
-        other = tuple(a for a in range(data.ndim) if a != axis)
-        total = np.where(meas, data, 0.0).sum(axis=other)
-        count = meas.sum(axis=other)
-        per_slice = data.size // n
-        line = np.where(count > 0, total / np.maximum(count, 1) * per_slice, np.nan)
-        # interpolate empty slices around the periodic axis (peak at index 0)
-        centred = np.fft.fftshift(line)
-        good = np.isfinite(centred)
-        if not good.all():
-            idx = np.arange(n)
-            centred[~good] = np.interp(idx[~good], idx[good], centred[good])
-        ac = np.abs(np.fft.ifft(np.fft.ifftshift(centred)))
-        if n > 2:
-            ac[0] = max(ac[1], ac[-1])
-        prof = np.fft.fftshift(ac / ac.max())
-        if prof.min() < threshold:
-            length = np.count_nonzero(prof >= threshold) / (2.0 * (1.0 - threshold))
-            ratios.append(n / max(length, 1.0))
-        else:
-            length = np.count_nonzero(prof >= 0.5)
-            ratios.append(min(n / max(length, 1.0), 1.95))
-    return np.asarray(ratios)
 
 
 def dilate_periodic(support, shape, voxels):

@@ -43,18 +43,16 @@ import numpy as np
 from braggstrain.geometry.crystal import HC_KEV_ANGSTROM
 from braggstrain.errors import ConfigError, GeometryError, InputError, ReflectionError
 from braggstrain.geometry.instrument import AXES, axis_rotation
+from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS
+from braggstrain.strain.tensor import condition_number
 
 __all__ = [
     "bunge_matrix", "mounting_matrix", "orientation_from_euler", "MeasuredReflection",
     "orientation_from_measured", "CountModel", "PlanOptions", "ReflectionPlan", "SetScore",
     "PlanResult", "reach", "set_travel", "score_set", "choose_set", "plan",
     "stereographic", "plot_plan", "fragment_text", "format_plan_table", "plan_from_config",
-    "STRAIN_COMPONENTS",
 ]
 
-#: Order of the strain components reported (sample frame).
-STRAIN_COMPONENTS = ("xx", "yy", "zz", "yz", "xz", "xy")
-_PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
 
 _CONVERGED = 1e-9  # Å⁻¹, |Q − G| accepted as the Bragg condition (as solve_bragg)
 
@@ -890,16 +888,9 @@ def _inverse_parts(S):
 def _component_var(diag):
     """Variances of the six strain components from diag(C) (..., 3)."""
     out = []
-    for i, k in _PAIRS:
+    for i, k in STRAIN_PAIRS:
         out.append(diag[..., i] if i == k else (diag[..., i] + diag[..., k]) / 4)
     return np.stack(out, -1)
-
-
-def _condition(G):
-    s = np.linalg.svd(np.asarray(G, float), compute_uv=False)
-    if s.size < 3 or s[-1] <= 1e-12 * s[0]:
-        return float("inf")
-    return float(s[0] / s[-1])
 
 
 def score_set(g_vectors, weights):
@@ -942,7 +933,7 @@ def _set_score(refls, best_sigma):
     else:
         travel, order = set_travel([list(r.angles_deg.values()) for r in refls])
     rel = sig / best_sigma if best_sigma is not None else np.full(6, np.nan)
-    return SetScore([refls[i].hkl for i in order], score, _condition(G), sig, rel, lev[order], travel, unreach)
+    return SetScore([refls[i].hkl for i in order], score, condition_number(G), sig, rel, lev[order], travel, unreach)
 
 
 def _collinear_groups(refls):

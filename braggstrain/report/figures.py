@@ -20,6 +20,7 @@ from pathlib import Path
 
 import numpy as np
 
+from braggstrain import _validate as _v
 from braggstrain.errors import InputError
 from braggstrain.io.scans import atomic_path
 from braggstrain.strain.grid import Grid
@@ -87,13 +88,6 @@ def _save(fig, path, dpi=150):
     with atomic_path(path) as tmp:
         fig.savefig(tmp, format=fmt, dpi=dpi)
     return path
-
-
-def _voxel(voxel_size):
-    vs = np.broadcast_to(np.asarray(voxel_size, float), (3,)).copy()
-    if not np.all(np.isfinite(vs)) or np.any(vs <= 0):
-        raise InputError(f"voxel_size: expected three positive lengths in Å, got {voxel_size!r}")
-    return vs
 
 
 def central_index(support):
@@ -243,7 +237,7 @@ def plot_slices(fields, support, grid, path=None, *, names, units, signed=True, 
     support = np.asarray(support, bool)
     if support.ndim != 3 or not support.any():
         raise InputError(f"support: expected a non-empty 3-D mask, got shape {support.shape}")
-    grid = grid if isinstance(grid, (Grid, dict)) else _voxel(grid)
+    grid = grid if isinstance(grid, (Grid, dict)) else _v.voxel_size(grid)
     grid = Grid.of(grid, support.shape)
     vs = grid.voxel_size
     fields = [np.asarray(f, float) for f in fields]
@@ -332,7 +326,7 @@ def plot_amplitude(results, path=None):
 
 def plot_strain(results, path=None):
     """Central slices of the six strain components."""
-    from braggstrain.io.results import STRAIN_COMPONENTS, strain_components
+    from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components
 
     tf = results["tensor"]
     comps = strain_components(tf.strain)

@@ -124,7 +124,7 @@ def strain_statistics(tensor, mask=None):
         ``sigma`` (median one-σ uncertainty; NaN where not estimated).
         Strains are dimensionless, rotations in degrees.
     """
-    from braggstrain.io.results import STRAIN_COMPONENTS, strain_components
+    from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components
 
     m = np.asarray(tensor.support if mask is None else mask, bool)
     comps = strain_components(tensor.strain)

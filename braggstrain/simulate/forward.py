@@ -14,8 +14,9 @@ Three parts:
   ``gradient``): :class:`UniformStrain`, :class:`RigidRotation`,
   :class:`InterfaceGradient`, :class:`StraightDislocation`,
   :class:`DislocationLoop`, :class:`FieldSum`;
-* diffraction: :func:`complex_object`, :func:`far_field` and, for a whole
-  rocking scan on an instrument, :func:`simulate_scan`.
+* diffraction: :func:`complex_object` (whose far field is
+  :func:`braggstrain.phasing.metrics.far_field`) and, for a whole rocking
+  scan on an instrument, :func:`simulate_scan`.
 """
 
 from __future__ import annotations
@@ -43,8 +44,6 @@ __all__ = [
     "DislocationLoop",
     "FieldSum",
     "complex_object",
-    "far_field",
-    "strain_from_gradient",
     "rotation_matrix",
     "SimulatedScan",
     "detector_frame_grid",
@@ -520,20 +519,6 @@ class DislocationLoop(_Field):
         return b * om[None] / (4 * np.pi)
 
 
-def strain_from_gradient(gradient):
-    """Strain ε = (D + Dᵀ)/2 and rotation vector ω of D = ∂u_i/∂x_k.
-
-    Returns
-    -------
-    strain : (3, 3, ...) array
-    rotation : (3, ...) array, radians (ω_x = (D_zy − D_yz)/2, ...)
-    """
-    D = np.asarray(gradient)
-    eps = 0.5 * (D + np.swapaxes(D, 0, 1))
-    rot = 0.5 * np.stack([D[2, 1] - D[1, 2], D[0, 2] - D[2, 0], D[1, 0] - D[0, 1]])
-    return eps, rot
-
-
 # --------------------------------------------------------------------------
 # diffraction
 # --------------------------------------------------------------------------
@@ -558,13 +543,6 @@ def complex_object(support, displacement, g_vector):
     g = np.asarray(g_vector, float).reshape(3)
     phase = -np.tensordot(g, u, axes=1)
     return (s * np.exp(1j * phase)).astype(np.complex64)
-
-
-def far_field(obj):
-    """Far-field amplitude of an object centred at index n//2, with q = 0 at
-    index n//2 (forward FFT of DESIGN.md): fftshift(fftn(ifftshift(obj)))."""
-    obj = np.asarray(obj)
-    return np.fft.fftshift(np.fft.fftn(np.fft.ifftshift(obj))).astype(np.complex64)
 
 
 # --------------------------------------------------------------------------

@@ -24,12 +24,14 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import ndimage as ndi
 
+from braggstrain import _validate as _v
 from braggstrain.errors import InputError
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
     "default_support",
-    "trusted_voxels",
+    "trusted_for_gradients",
+    "trusted_for_windings",
     "phase_gradient",
     "phase_gradient_covariance",
     "phase_ramp",
@@ -47,43 +49,6 @@ __all__ = [
 # checks and small helpers
 # --------------------------------------------------------------------------
 
-def _complex3d(obj, name="obj"):
-    if isinstance(obj, SampleObject):
-        obj = obj.obj
-    arr = np.asarray(obj)
-    if arr.ndim != 3:
-        raise InputError(f"{name}: expected a 3-D complex array (axes x, y, z), got shape {arr.shape}")
-    if not np.iscomplexobj(arr):
-        raise InputError(f"{name}: expected a complex array ρ = s·exp(−i G·u), got dtype {arr.dtype}")
-    if not np.all(np.isfinite(arr)):
-        raise InputError(f"{name}: contains NaN or infinite values; expected finite complex values")
-    return arr.astype(np.complex64, copy=False)
-
-
-def _voxel_size(voxel_size, name="voxel_size"):
-    try:
-        vs = np.broadcast_to(np.asarray(voxel_size, dtype=float), (3,)).copy()
-    except (ValueError, TypeError):
-        raise InputError(f"{name}: expected one or three voxel edges in Å, got {voxel_size!r}") from None
-    if not np.all(np.isfinite(vs)) or np.any(vs <= 0):
-        raise InputError(f"{name}: expected positive voxel edges in Å, got {voxel_size!r}")
-    return vs
-
-
-def _g_vector(g_vector, name="g_vector"):
-    g = np.asarray(g_vector, dtype=float)
-    if g.shape != (3,) or not np.all(np.isfinite(g)) or np.linalg.norm(g) == 0:
-        raise InputError(f"{name}: expected a non-zero G vector of 3 finite components in Å⁻¹, got {g_vector!r}")
-    return g
-
-
-def _support(support, shape, name="support"):
-    s = np.asarray(support)
-    if s.shape != tuple(shape):
-        raise InputError(f"{name}: expected a boolean array of shape {tuple(shape)}, got shape {s.shape}")
-    return s.astype(bool, copy=False)
-
-
 def default_support(obj, threshold=0.2):
     """Voxels whose amplitude is at least ``threshold`` times the maximum.
 
@@ -97,7 +62,7 @@ def default_support(obj, threshold=0.2):
     -------
     bool ndarray
     """
-    amp = np.abs(_complex3d(obj))
+    amp = np.abs(_v.complex3d(obj))
     if not 0 < threshold < 1:
         raise InputError(f"threshold: expected a fraction in (0, 1), got {threshold!r}")
     top = float(amp.max())
@@ -126,30 +91,95 @@ def _shift(a, axis, step, fill):
     return out
 
 
-def trusted_voxels(obj, support=None, amplitude_threshold=0.3, erosion=1):
-    """Voxels whose phase gradient can be trusted.
+def _amplitude(obj, name="obj"):
+    """|ρ| of a complex object, or a real amplitude array as given."""
+    a = np.asarray(obj.obj if isinstance(obj, SampleObject) else obj)
+    if np.iscomplexobj(a):
+        return np.abs(_v.complex3d(a, name))
+    if a.ndim != 3 or not np.issubdtype(a.dtype, np.number) or not np.all(np.isfinite(a)):
+        raise InputError(f"{name}: expected a 3-D complex object or its finite amplitude, got shape {a.shape} "
+                         f"and dtype {a.dtype}")
+    return np.abs(a)
+
+
+def _bright(amp, support, fraction, name="amplitude_threshold"):
+    """Voxels whose amplitude is at least ``fraction`` times the median inside the support."""
+    if not 0 <= fraction < 1:
+        raise InputError(f"{name}: expected a fraction in [0, 1), got {fraction!r}")
+    med = float(np.median(amp[support]))
+    return amp >= fraction * med, med
+
+
+def trusted_for_gradients(obj, support=None, amplitude_threshold=0.3, erosion=1):
+    """Voxels whose phase gradient can be trusted: the support, eroded.
 
     The support eroded by ``erosion`` voxels (face-connected structuring
     element, so every remaining voxel has both neighbours along every axis
     inside the support) and with an amplitude of at least
     ``amplitude_threshold`` times the median amplitude inside the support.
+    This is the region of strain statistics and of the tensor's ``trusted``
+    mask; :func:`trusted_for_windings` is the wider region of the phase
+    windings around dislocation cores.
+
+    Parameters
+    ----------
+    obj : complex ndarray (or SampleObject, or a real amplitude array)
+    support : bool ndarray, optional
+        Default: :func:`default_support` of ``obj``.
+    amplitude_threshold : float in [0, 1)
+        0 keeps every voxel of the eroded support (common practice, no
+        source for 0.3).
+    erosion : int
+        Voxels eroded from the support.
 
     Returns
     -------
     bool ndarray
     """
-    obj = _complex3d(obj)
-    support = default_support(obj) if support is None else _support(support, obj.shape)
+    amp = _amplitude(obj)
+    support = default_support(amp.astype(np.complex64)) if support is None else _v.mask_of_shape(support, amp.shape)
     if not 0 <= amplitude_threshold < 1:
         raise InputError(f"amplitude_threshold: expected a fraction in [0, 1), got {amplitude_threshold!r}")
     if not support.any():
-        return np.zeros(obj.shape, bool)
-    amp = np.abs(obj)
+        return np.zeros(amp.shape, bool)
     mask = support
     if erosion > 0:
         mask = ndi.binary_erosion(support, iterations=int(erosion))
-    med = float(np.median(amp[support]))
-    return mask & (amp >= amplitude_threshold * med)
+    bright, _ = _bright(amp, support, amplitude_threshold)
+    return mask & bright
+
+
+def trusted_for_windings(obj, support, amplitude_threshold=0.1, dilation=2):
+    """Voxels whose phase can be trusted for windings: the support, dilated.
+
+    Around a dislocation core the amplitude dips and the core may sit at the
+    surface, so the region of phase windings (defects) is the support
+    *dilated* by ``dilation`` voxels with an amplitude of at least
+    ``amplitude_threshold`` times the median inside the support (a low
+    threshold: a plaquette lost at a core leaves a gap in the line). Compare
+    :func:`trusted_for_gradients`, the eroded region of phase gradients.
+
+    Parameters
+    ----------
+    obj : complex ndarray (3-D) or SampleObject
+    support : bool ndarray, same shape
+        Voxels inside the crystal (not empty).
+    amplitude_threshold : float in [0, 1)
+    dilation : int
+        Voxels added around the support.
+
+    Returns
+    -------
+    bool ndarray
+    """
+    obj = _v.complex3d(obj, "obj", min_size=4)
+    support = _v.mask_of_shape(support, obj.shape, "support", nonempty=True)
+    amp = np.abs(obj)
+    bright, med = _bright(amp, support, amplitude_threshold)
+    if not med > 0:
+        raise InputError("obj: the amplitude inside the support is zero; expected a reconstructed crystal")
+    region = ndi.binary_dilation(support, iterations=int(dilation)) if int(dilation) > 0 else support.copy()
+    return region & bright
 
 
 # --------------------------------------------------------------------------
@@ -186,9 +216,9 @@ def phase_gradient(obj, voxel_size, support=None, *, order=2, smooth=0.0):
     float32 ndarray, shape (3, nx, ny, nz)
         ∂φ/∂x, ∂φ/∂y, ∂φ/∂z in rad/Å.
     """
-    obj = _complex3d(obj)
-    vs = _voxel_size(voxel_size)
-    support = default_support(obj) if support is None else _support(support, obj.shape)
+    obj = _v.complex3d(obj)
+    vs = _v.voxel_size(voxel_size)
+    support = default_support(obj) if support is None else _v.mask_of_shape(support, obj.shape)
     if order not in (2, 4):
         raise InputError(f"order: expected 2 or 4, got {order!r}")
     if smooth < 0 or (smooth > 0 and order != 2):
@@ -252,19 +282,19 @@ def phase_gradient_covariance(samples, voxel_size, support, *, center=None, orde
     float32 ndarray, shape (3, 3, nx, ny, nz)
         (rad/Å)²; NaN where a gradient is undefined.
     """
-    samples = [_complex3d(s_, f"samples[{k}]") for k, s_ in enumerate(samples)]
+    samples = [_v.complex3d(s_, f"samples[{k}]") for k, s_ in enumerate(samples)]
     need = 1 if center is not None else 2
     if len(samples) < need:
         raise InputError(f"samples: expected at least {need} reconstructions, got {len(samples)}")
     shape = samples[0].shape
-    support = _support(support, shape)
-    vs = _voxel_size(voxel_size)
+    support = _v.mask_of_shape(support, shape)
+    vs = _v.voxel_size(voxel_size)
     for k, a in enumerate(samples):
         if a.shape != shape:
             raise InputError(f"samples[{k}]: grid shape {a.shape} differs from samples[0] {shape}")
     grads = np.stack([phase_gradient(a, vs, support, order=order) for a in samples]).astype(np.float64)
     if center is not None:
-        ref = phase_gradient(_complex3d(center, "center"), vs, support, order=order).astype(np.float64)
+        ref = phase_gradient(_v.complex3d(center, "center"), vs, support, order=order).astype(np.float64)
         dev = grads - ref[None]
         ddof = 0
     else:
@@ -303,8 +333,8 @@ def reference_voxel(obj, support):
     -------
     tuple of 3 int
     """
-    obj = _complex3d(obj)
-    support = _support(support, obj.shape)
+    obj = _v.complex3d(obj)
+    support = _v.mask_of_shape(support, obj.shape)
     if not support.any():
         raise InputError("support: empty; expected at least one crystal voxel")
     amp = np.where(support, np.abs(obj), 0).astype(float)
@@ -341,8 +371,8 @@ def unwrapped_phase(obj, support=None, reference=None):
     """
     from skimage.restoration import unwrap_phase
 
-    obj = _complex3d(obj)
-    support = default_support(obj) if support is None else _support(support, obj.shape)
+    obj = _v.complex3d(obj)
+    support = default_support(obj) if support is None else _v.mask_of_shape(support, obj.shape)
     if reference is None:
         reference = reference_voxel(obj, support)
     reference = tuple(int(v) for v in reference)
@@ -382,14 +412,14 @@ def displacement_along_g(obj, g_vector, voxel_size, support=None, *, remove_ramp
     float32 ndarray
         u_G in Å; NaN outside the support and where unwrapping failed.
     """
-    obj = _complex3d(obj)
-    g = _g_vector(g_vector)
-    vs = _voxel_size(voxel_size)
-    support = default_support(obj) if support is None else _support(support, obj.shape)
+    obj = _v.complex3d(obj)
+    g = _v.g_vector(g_vector)
+    vs = _v.voxel_size(voxel_size)
+    support = default_support(obj) if support is None else _v.mask_of_shape(support, obj.shape)
     phase, reference = unwrapped_phase(obj, support, reference)
     if remove_ramp:
         grad = phase_gradient(obj, vs, support)
-        trusted = trusted_voxels(obj, support, amplitude_threshold)
+        trusted = trusted_for_gradients(obj, support, amplitude_threshold)
         if not trusted.any():
             trusted = support
         ramp = phase_ramp(grad, trusted, np.abs(obj))
@@ -412,7 +442,7 @@ def across_directions(g_vector):
     -------
     (2, 3) float ndarray
     """
-    g = _g_vector(g_vector)
+    g = _v.g_vector(g_vector)
     gh = g / np.linalg.norm(g)
     ref = np.array([0.0, 0.0, 1.0]) if abs(gh[2]) < 0.9 else np.array([1.0, 0.0, 0.0])
     t1 = np.cross(ref, gh)
@@ -439,7 +469,7 @@ def strain_along_g(gradient, g_vector):
     strain : float32 ndarray, shape grid
     across : float32 ndarray, shape (2, *grid)
     """
-    g = _g_vector(g_vector)
+    g = _v.g_vector(g_vector)
     grad = np.asarray(gradient, dtype=float)
     if grad.shape[0] != 3:
         raise InputError(f"gradient: expected shape (3, ...), got {grad.shape}")
@@ -504,12 +534,12 @@ def reflection_field(obj, g_vector=None, voxel_size=None, support=None, *, remov
         obj = obj.obj
     if g_vector is None or voxel_size is None:
         raise InputError("reflection_field: g_vector and voxel_size are required for a plain array")
-    obj = _complex3d(obj)
-    g = _g_vector(g_vector)
-    vs = _voxel_size(voxel_size)
-    support = default_support(obj) if support is None else _support(support, obj.shape)
+    obj = _v.complex3d(obj)
+    g = _v.g_vector(g_vector)
+    vs = _v.voxel_size(voxel_size)
+    support = default_support(obj) if support is None else _v.mask_of_shape(support, obj.shape)
     grad = phase_gradient(obj, vs, support, order=order, smooth=smooth)
-    trusted = trusted_voxels(obj, support, amplitude_threshold) & np.all(np.isfinite(grad), axis=0)
+    trusted = trusted_for_gradients(obj, support, amplitude_threshold) & np.all(np.isfinite(grad), axis=0)
     ramp = phase_ramp(grad, trusted if trusted.any() else support, np.abs(obj))
     phase, ref = unwrapped_phase(obj, support)
     if remove_ramp:

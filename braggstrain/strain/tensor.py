@@ -32,8 +32,10 @@ import numpy as np
 from scipy import ndimage as ndi
 
 from braggstrain.errors import TensorError
-from braggstrain.strain.fields import (_complex3d, _voxel_size, default_support, phase_gradient, phase_ramp,
-                     reference_voxel, trusted_voxels, unwrapped_phase)
+from braggstrain import _validate as _v
+from braggstrain.strain.fields import (default_support, phase_gradient, phase_ramp,
+                     reference_voxel, trusted_for_gradients, unwrapped_phase)
+from braggstrain.strain.components import STRAIN_PAIRS, split_gradient
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.objects import SampleObject
 
@@ -45,7 +47,6 @@ __all__ = [
     "hydrostatic_strain",
     "von_mises_strain",
     "principal_strains",
-    "twin",
     "RegistrationReport",
     "register",
     "apply_registration",
@@ -111,11 +112,6 @@ def principal_strains(strain):
     values = np.moveaxis(vals, 0, -1).reshape((3,) + grid)
     directions = np.moveaxis(vecs, 0, -1).reshape((3, 3) + grid)
     return values, directions
-
-
-def _axial(D):
-    """Axial vector of the antisymmetric part of D (3, 3, ...)."""
-    return 0.5 * np.stack([D[2, 1] - D[1, 2], D[0, 2] - D[2, 0], D[1, 0] - D[0, 1]])
 
 
 # --------------------------------------------------------------------------
@@ -216,11 +212,15 @@ def condition_number(g_vectors):
     """2-norm condition number σ_max/σ_min of the J×3 matrix of G vectors.
 
     It bounds how much relative error in the phase gradients can grow in D;
-    infinite for coplanar sets.
+    infinite for fewer than three vectors and for coplanar sets (σ_min at
+    most 10⁻¹² σ_max, i.e. zero up to round-off). The one definition for the
+    tensor, the pipeline's up-front check and the measurement planner.
     """
     G = np.asarray(g_vectors, dtype=float)
     s = np.linalg.svd(G, compute_uv=False)
-    return float(s[0] / s[-1]) if s[-1] > 0 else float("inf")
+    if s.size < 3 or not s[-1] > 1e-12 * s[0]:
+        return float("inf")
+    return float(s[0] / s[-1])
 
 
 def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
@@ -238,7 +238,7 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
         else:
             sups.append(None)
             hkls.append(None)
-        arrays.append(_complex3d(o, f"objects[{j}]"))
+        arrays.append(_v.complex3d(o, f"objects[{j}]"))
     if J:
         shape0 = arrays[0].shape
         for j, a in enumerate(arrays):
@@ -264,7 +264,7 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
         raise TensorError(
             f"objects: {J} reflection(s) {', '.join(labels)}; the strain tensor needs at least three "
             f"non-coplanar reflections")
-    vs = _voxel_size(voxel_size)
+    vs = _v.voxel_size(voxel_size)
     for j, o in enumerate(objects):
         if isinstance(o, SampleObject) and not np.allclose(o.voxel_size, vs, rtol=1e-6):
             raise TensorError(
@@ -479,9 +479,7 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
             bad = [labels[j] for j in range(J) if meds[j] <= 0]
             raise TensorError(f"objects: reflection(s) {', '.join(bad)} have zero median amplitude inside the support")
         weights = amps / meds.reshape(J, 1, 1, 1)
-    trusted = ndi.binary_erosion(support)
-    for j in range(J):
-        trusted &= trusted_voxels(arrays[j], support, amplitude_threshold, erosion=0)
+    trusted = np.logical_and.reduce([trusted_for_gradients(a, support, amplitude_threshold) for a in arrays])
 
     grads = np.stack([phase_gradient(a, vs, support, order=order) for a in arrays])  # (J,3,...)
     idx = np.flatnonzero(support)
@@ -515,8 +513,8 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
             sigma2 = np.where(dof > 0, ss / np.maximum(dof, 1), np.nan)
     var_d = sigma2[:, None] * np.diagonal(Minv, axis1=1, axis2=2)  # Var(D_ik) = σ² Minv_ii for every k
     var_d[~ok] = np.nan
-    # least-squares variances of ε (xx yy zz yz xz xy order as _PAIRS) and ω
-    var_ls_e = {(i, k): (var_d[:, i] if i == k else 0.25 * (var_d[:, i] + var_d[:, k])) for i, k in _PAIRS}
+    # least-squares variances of ε (xx yy zz yz xz xy order as STRAIN_PAIRS) and ω
+    var_ls_e = {(i, k): (var_d[:, i] if i == k else 0.25 * (var_d[:, i] + var_d[:, k])) for i, k in STRAIN_PAIRS}
     var_ls_w = [0.25 * (var_d[:, q] + var_d[:, p]) for p, q in _ROT]
     have_ls = gradient_noise is not None or J >= 4
     spread = gradient_covariance is not None
@@ -533,7 +531,7 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
             return np.einsum("nj,nj,jn->n", A[:, a, :], A[:, c, :], Cs[:, b, d, :])
 
         var_sp_e = {(i, k): 0.25 * (cov_d(i, k, i, k) + cov_d(k, i, k, i) + 2 * cov_d(i, k, k, i))
-                    for i, k in _PAIRS}
+                    for i, k in STRAIN_PAIRS}
         var_sp_w = [0.25 * (cov_d(p, q, p, q) + cov_d(q, p, q, p) - 2 * cov_d(p, q, q, p)) for p, q in _ROT]
         if J >= 4 and gradient_noise is None:
             # the residual beyond what the spread explains, as an extra variance τ²/w_j
@@ -549,7 +547,7 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         else:
             var_x = np.zeros_like(var_d)
         var_e = {(i, k): var_sp_e[i, k] + (var_x[:, i] if i == k else 0.25 * (var_x[:, i] + var_x[:, k]))
-                 for i, k in _PAIRS}
+                 for i, k in STRAIN_PAIRS}
         var_w = [v + 0.25 * (var_x[:, q] + var_x[:, p]) for v, (p, q) in zip(var_sp_w, _ROT)]
     else:
         var_e, var_w = var_ls_e, var_ls_w
@@ -562,14 +560,14 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         Dfull[:, :, idx] = np.moveaxis(D, 0, -1)
         Dfull = Dfull.reshape((3, 3) + shape)
         eps_g = 0.5 * (Dfull + np.swapaxes(Dfull, 0, 1))
-        rot_g = _axial(Dfull)
+        rot_g = split_gradient(Dfull)[1]
         kappa = _noise_through_blur_bias(resolution_blur)
 
         def with_bias(var, f):
             b2 = _blur_bias(f, support, resolution_blur)[idx] ** 2
             return var + np.clip(b2 - kappa * var, 0, None)
 
-        for i, k in _PAIRS:
+        for i, k in STRAIN_PAIRS:
             var_e[i, k] = with_bias(var_e[i, k], eps_g[i, k])
         var_w = [with_bias(v, rot_g[c]) for c, v in enumerate(var_w)]
     basis = _uncertainty_basis(J, spread, covariance_source, gradient_noise, resolution_blur)
@@ -580,11 +578,11 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         return out.reshape(lead + shape)
 
     Dg = to_grid(np.moveaxis(D, 0, -1), (3, 3))
-    strain = 0.5 * (Dg + np.swapaxes(Dg, 0, 1))
-    rotation = _axial(Dg).astype(np.float32)
+    strain, rotation = split_gradient(Dg)
+    rotation = rotation.astype(np.float32)
     su = np.empty((3, 3, len(idx)))
     with np.errstate(invalid="ignore"):
-        for i, k in _PAIRS:
+        for i, k in STRAIN_PAIRS:
             su[i, k] = su[k, i] = np.sqrt(np.clip(var_e[i, k], 0, None))
         ru = np.sqrt(np.clip(np.stack(var_w), 0, None))
     residual = to_grid(res, ())
@@ -620,8 +618,7 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
     return tf
 
 
-# strain components (i, k), i ≤ k, and the (p, q) of each rotation ω = (D_pq − D_qp)/2
-_PAIRS = ((0, 0), (1, 1), (2, 2), (1, 2), (0, 2), (0, 1))
+# the (p, q) of each rotation ω = (D_pq − D_qp)/2 (strain components: STRAIN_PAIRS)
 _ROT = ((2, 1), (0, 2), (1, 0))
 
 
@@ -805,23 +802,6 @@ def _outlier_check(tf, P, w, G, idx, trusted, max_condition, ratio, warn):
 # registration
 # --------------------------------------------------------------------------
 
-def twin(obj):
-    """The twin conj ρ(−r) of an object whose origin is at index n//2.
-
-    Index i maps to 2·(n//2) − i on each axis (for even n index 0 has no
-    image and is set to zero).
-    """
-    a = np.asarray(obj)
-    out = np.conj(a[::-1, ::-1, ::-1]).copy()
-    for ax, n in enumerate(a.shape):
-        if n % 2 == 0:
-            out = np.roll(out, 1, axis=ax)
-            sl = [slice(None)] * 3
-            sl[ax] = 0
-            out[tuple(sl)] = 0
-    return out
-
-
 @dataclass
 class RegistrationReport:
     """What :func:`register` did to each object (lists in input order).
@@ -887,7 +867,7 @@ class _Resampler:
         g = so.grid
         sup = so.support
         grad = phase_gradient(so.obj, g.voxel_size, sup)
-        tr = trusted_voxels(so.obj, sup)
+        tr = trusted_for_gradients(so.obj, sup)
         self.ramp = phase_ramp(grad, tr if tr.any() else sup, np.abs(so.obj))
         pos = np.ix_(*g.axes)
         demod = so.obj * np.exp(-1j * sum(self.ramp[k] * pos[k] for k in range(3)))
@@ -973,7 +953,7 @@ def register(objects, *, voxel_size=None, reference=0, min_overlap=0.7, upsample
     if not 0 < min_overlap <= 1:
         raise TensorError(f"min_overlap: expected a Dice coefficient in (0, 1], got {min_overlap!r}")
     vs = (np.min([o.voxel_size for o in objects], axis=0) if voxel_size is None
-          else _voxel_size(voxel_size))
+          else _v.voxel_size(voxel_size))
     origin = objects[reference].origin.copy()
     # room from the common origin to the first and the last voxel of every object
     lo = np.max([origin - o.grid.corner for o in objects], axis=0)
@@ -1254,6 +1234,5 @@ def mean_lattice_strain(g_measured, g_reference, lattice_parameter=None, *, max_
             raise TensorError(f"lattice_parameter: expected a positive length in Å, got {lattice_parameter!r}")
         a = a_ref * float(np.linalg.det(F)) ** (1.0 / 3.0)
         a_j = a_ref * np.linalg.norm(Gr, axis=1) / np.linalg.norm(Gm, axis=1)
-    eps = 0.5 * (D0 + D0.T)
-    rot = _axial(D0)
+    eps, rot = split_gradient(D0)
     return MeanLattice(D0, eps, rot, a, a_j, res, cond)
