@@ -21,7 +21,7 @@ from braggstrain.errors import InputError, PhasingError
 from braggstrain.phasing import kernels as _k
 from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings, kernel_principal_widths
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, _EFFORTS, _check_threads
-from braggstrain.phasing.metrics import centre_of_mass_shift, peak_offset, sharpness
+from braggstrain.phasing.metrics import centre_of_mass_shift, constrained_sums, nll_per_voxel, peak_offset, sharpness
 from braggstrain.phasing.schedule import default_plan, plan_from_config
 from braggstrain.phasing.support import (autocorrelation, autocorrelation_support, dilate_periodic, shrinkwrap,
                                          support_health)
@@ -345,7 +345,7 @@ def _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, t
     amp[~meas_flat] = -1.0
     free_amp = amp[free_idx].copy()
     amp[free_idx] = _k.encode_free(free_amp)
-    n_con, sum_i, lgam = _constrained_sums(amp)
+    n_con, sum_i, lgam = constrained_sums(amp)
     i_free = free_amp.astype(np.float64) ** 2
     return _Data(
         shape=shape,
@@ -369,21 +369,6 @@ def _near_origin_indices(shape, radius2):
     g = np.stack(np.meshgrid(d, d, d, indexing="ij"), axis=-1).reshape(-1, 3)
     g = g[(g ** 2).sum(axis=1) <= radius2]
     return np.ravel_multi_index(tuple((g % np.asarray(shape)).T), shape)
-
-
-def _constrained_sums(amp, chunk=1 << 20):
-    """Count, sum I and sum ln Gamma(I + 1) over constrained voxels, in chunks (little memory)."""
-    n = 0
-    total = 0.0
-    lg = 0.0
-    for start in range(0, amp.size, chunk):
-        a = amp[start:start + chunk]
-        a = a[a >= 0].astype(np.float64)
-        i = a * a
-        n += a.size
-        total += float(i.sum())
-        lg += float(gammaln(i + 1.0).sum())
-    return n, total, lg
 
 
 def _fit_background(model, amp, current):
@@ -480,9 +465,8 @@ def _iterate(data, stages, opts, run, rng, t0, start=None):
 
     def poisson(sums):
         s_con, s_free = sums
-        nll = (s_con + data.lgamma) / data.n_constrained
-        fnll = (s_free + data.free_lgamma) / n_free if n_free else nan
-        return nll, fnll
+        return (nll_per_voxel(s_con, data.lgamma, data.n_constrained),
+                nll_per_voxel(s_free, data.free_lgamma, n_free))
 
     def figures(checkpoint, it_now):
         """Forward-transformed iterate in bflat -> (err, free_err) after the modulus step."""

@@ -14,9 +14,12 @@ import scipy.ndimage
 from scipy.special import gammaln
 
 from braggstrain.errors import InputError
+from braggstrain.phasing import kernels as _k
 
 __all__ = [
     "poisson_nll",
+    "nll_per_voxel",
+    "constrained_sums",
     "sharpness",
     "twin",
     "align",
@@ -31,19 +34,49 @@ __all__ = [
 
 
 def poisson_nll(intensity, model, mask=None):
-    """Poisson negative log-likelihood per measured voxel.
+    """Poisson negative log-likelihood per measured voxel, as the runs compute it.
 
     mean over measured voxels of I_c - I ln I_c + ln Gamma(I + 1), I the
     counts and I_c the model (Thibault & Guizar-Sicairos, New J. Phys. 14,
     063004 (2012)); lower is better.  ``mask`` is True where not measured.
+    Computed by the same code as the ``nll`` of every run: the kernel
+    :func:`braggstrain.phasing.kernels.poisson_sum_model` on float32 model
+    and amplitudes, plus :func:`constrained_sums`, combined by
+    :func:`nll_per_voxel`.
     """
     i = np.asarray(intensity, dtype=np.float64)
-    m = np.maximum(np.asarray(model, dtype=np.float64), 1e-30)
-    keep = np.ones(i.shape, bool) if mask is None else ~np.asarray(mask, bool)
-    i, m = i[keep], m[keep]
-    if i.size == 0:
-        return float("nan")
-    return float(np.mean(m - i * np.log(m) + gammaln(i + 1.0)))
+    amp = np.sqrt(np.maximum(i, 0)).astype(np.float32).reshape(-1)
+    if mask is not None:
+        amp[np.asarray(mask, bool).reshape(-1)] = -1.0
+    m = np.ascontiguousarray(model, dtype=np.float32).reshape(-1)
+    if m.size != amp.size:
+        raise InputError(f"model: expected the shape of intensity {i.shape}, got {np.shape(model)}")
+    n, _, lgam = constrained_sums(amp)
+    s, _ = _k.poisson_sum_model(m, amp, np.float32(0.0))
+    return nll_per_voxel(s, lgam, n)
+
+
+def nll_per_voxel(model_sum, lgamma_sum, count):
+    """(Σ (I_c − I ln I_c) + Σ ln Γ(I + 1)) / count: the Poisson negative
+    log-likelihood per voxel from the kernels' model sum and the constant
+    ln Γ sum (NaN for no voxel)."""
+    return float((model_sum + lgamma_sum) / count) if count else float("nan")
+
+
+def constrained_sums(amp, chunk=1 << 20):
+    """Count, Σ I and Σ ln Γ(I + 1) over the constrained voxels (``amp >= 0``) of
+    a folded amplitude (see :mod:`braggstrain.phasing.kernels`), in chunks."""
+    n = 0
+    total = 0.0
+    lg = 0.0
+    for start in range(0, amp.size, chunk):
+        a = amp[start:start + chunk]
+        a = a[a >= 0].astype(np.float64)
+        i = a * a
+        n += a.size
+        total += float(i.sum())
+        lg += float(gammaln(i + 1.0).sum())
+    return n, total, lg
 
 
 def sharpness(obj):
