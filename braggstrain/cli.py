@@ -330,7 +330,7 @@ def cmd_prepare(args):
     for i, r in enumerate(cfg["reflection"]):
         scan, _ = _scan_for(cfg, i, r, opts["prepare"])
         prep = prepare_scan(scan, **_prepare_options(scan, opts["prepare"]))
-        name = r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m")
+        name = r["name"]  # checked and defaulted by the schema
         path = write_prepared(prep, out / f"{name}_prepared.h5")
         _print(f"{name} {tuple(r['hkl'])} → {path}", args.quiet)
         for line in summarize_prepared(prep).splitlines():

@@ -13,12 +13,11 @@ so every command reads a pipeline file the same way.
 from __future__ import annotations
 
 import copy
-import difflib
 from pathlib import Path
 
 import numpy as np
 
-from braggstrain.errors import BraggStrainError, ConfigError
+from braggstrain.errors import BraggStrainError, ConfigError, did_you_mean
 
 try:  # Python ≥ 3.11
     import tomllib
@@ -26,7 +25,7 @@ except ModuleNotFoundError:  # pragma: no cover
     import tomli as tomllib  # type: ignore
 
 __all__ = ["load_config", "validate_config", "SCHEMA", "build_crystal", "build_instrument",
-           "build_specimen", "resolve_path"]
+           "build_specimen", "resolve_path", "default_reflection_name"]
 
 
 class _Spec:
@@ -83,6 +82,25 @@ def _matrix3(v):
     if not (isinstance(v, list) and len(v) == 3 and all(isinstance(r, list) and len(r) == 3 for r in v)):
         return "a 3×3 matrix (list of three lists of three numbers)"
     return None
+
+
+_NAME_CHARS = set("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_-")
+
+
+def _reflection_name(v):
+    if not v:
+        return "a non-empty name (leave the key out for the default refl_<hkl>)"
+    if not set(v) <= _NAME_CHARS or len(v) > 64:
+        return ("a name of at most 64 letters, digits, '_' and '-' (it names files inside the output "
+                "folder)")
+    return None
+
+
+def default_reflection_name(hkl):
+    """The name of a reflection whose ``[[reflection]]`` table gives none:
+    ``refl_`` and the Miller indices, a minus sign written ``m`` (so (1 −1 0)
+    is ``refl_1m10``)."""
+    return "refl_" + "".join(str(int(v)).replace("-", "m") for v in hkl)
 
 
 def _axis(v):
@@ -146,7 +164,8 @@ SCHEMA = _Table(
         roi=_Spec(list, None, check=_vec(2, int), doc="[first_row, first_column] of the stored frames"),
         repeat_max_shift=_Spec(NUM, 5.0, check=_positive, doc="voxels a repeated scan's peak may move"),
         mask=_Spec(str, None, doc="optional mask file (HDF5 dataset 'mask' or .npy), True = not measured"),
-        name=_Spec(str, None),
+        name=_Spec(str, None, check=_reflection_name,
+                   doc="letters, digits, _ and -; names the reflection's files (default refl_<hkl>)"),
     ), min_items=1),
     simulate=_Table(
         seed=_Spec(int, 0),
@@ -203,11 +222,6 @@ SCHEMA = _Table(
 )
 
 
-def _did_you_mean(key, options):
-    close = difflib.get_close_matches(key, list(options), n=1)
-    return f" (did you mean '{close[0]}'?)" if close else ""
-
-
 def _validate(value, schema, where, src):
     if isinstance(schema, _Table):
         if not isinstance(value, dict):
@@ -216,7 +230,7 @@ def _validate(value, schema, where, src):
         for k in value:
             if k not in schema:
                 raise ConfigError(f"{src}: unknown key '{(where + '.') if where else ''}{k}'"
-                                  f"{_did_you_mean(k, schema)}; expected one of {sorted(schema)}")
+                                  f"{did_you_mean(k, schema)}; expected one of {sorted(schema)}")
         for k, spec in schema.items():
             sub = f"{where}.{k}" if where else k
             if k in value:
@@ -268,13 +282,18 @@ def validate_config(raw, source="<pipeline>", require_reflections=True):
         raise ConfigError(f"{source}: key 'crystal': expected 'material' (a name) or 'lattice.a' (Å)")
     names = [x["name"] for x in cfg["instrument"]["sample_circles"] + cfg["instrument"]["detector_circles"]]
     for i, r in enumerate(cfg["reflection"]):
-        if r["scan"] is None and r["frames"] is None and source != "<simulate>":
-            pass  # checked where scans are needed (simulate writes them)
+        if r["name"] is None:
+            r["name"] = default_reflection_name(r["hkl"])
         if r["angles"] is not None:
             for k in r["angles"]:
                 if k not in names:
                     raise ConfigError(f"{source}: key 'reflection[{i}].angles.{k}': unknown circle"
-                                      f"{_did_you_mean(k, names)}; expected one of {names}")
+                                      f"{did_you_mean(k, names)}; expected one of {names}")
+    names = [r["name"] for r in cfg["reflection"]]
+    for i, n in enumerate(names):
+        if names.index(n) != i:
+            raise ConfigError(f"{source}: key 'reflection[{i}].name': value {n!r} is also the name of "
+                              f"reflection[{names.index(n)}]; expected unique names")
     cfg["_source"] = str(source)
     cfg["_given"] = sorted(_given_keys(raw.get("instrument", {}), "instrument"))
     return cfg

@@ -7,7 +7,10 @@ code.
 
 from __future__ import annotations
 
+import difflib
+
 __all__ = [
+    "did_you_mean",
     "BraggStrainError",
     "InputError",
     "ScanFileError",
@@ -64,3 +67,16 @@ class TensorError(InputError):
 class OutputError(BraggStrainError):
     """An output cannot be written (the disk is full, the folder cannot hold
     the run). Earlier files are left as they were."""
+def did_you_mean(word, options, n=1):
+    """A hint for a misspelt name: " (did you mean 'x'?)", or "" when nothing is close.
+
+    Up to ``n`` of ``options`` closest to ``word`` (difflib's similarity
+    ratio of at least 0.5); the one did-you-mean of every message about an
+    unknown key, circle, algorithm or material.
+    """
+    close = difflib.get_close_matches(str(word), [str(o) for o in options], n=n, cutoff=0.5)
+    if not close:
+        return ""
+    names = [f"'{c}'" for c in close]
+    text = names[0] if len(names) == 1 else ", ".join(names[:-1]) + " or " + names[-1]
+    return f" (did you mean {text}?)"

@@ -18,7 +18,6 @@ The stages are the plain functions of their modules; this module only
 from __future__ import annotations
 
 import contextlib
-import difflib
 import inspect
 import os
 import platform
@@ -33,9 +32,10 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain.config import build_crystal, build_instrument, resolve_path
-from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, check_reflection_identity
+from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, check_reflection_identity, format_hkl
 from braggstrain.errors import (BraggStrainError, ConfigError, InputError, OutputError, ReflectionError,
-                                ScanFileError, TensorError)
+                                ScanFileError, TensorError, did_you_mean)
+from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_RUNS
 from braggstrain.strain.objects import SampleObject
 from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 
@@ -72,9 +72,8 @@ def _kwargs_of(fn, skip):
 def _check_keys(table, allowed, where, src):
     for k in table:
         if k not in allowed:
-            close = difflib.get_close_matches(k, sorted(allowed), n=1)
-            hint = f" (did you mean '{close[0]}'?)" if close else ""
-            raise ConfigError(f"{src}: unknown key '{where}.{k}'{hint}; expected one of {sorted(allowed)}")
+            raise ConfigError(f"{src}: unknown key '{where}.{k}'{did_you_mean(k, allowed)}; "
+                              f"expected one of {sorted(allowed)}")
 
 
 def prepare_options(cfg):
@@ -115,8 +114,10 @@ def check_options(cfg):
         v = ph.get(k)
         if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < lo):
             raise ConfigError(f"{src}: key 'phasing.{k}': value {v!r}; expected an integer ≥ {lo}")
-    if ph.get("keep", 1) > ph.get("runs", 8):
-        raise ConfigError(f"{src}: key 'phasing.keep': value {ph['keep']}; expected at most runs = {ph.get('runs', 8)}")
+    runs, keep = ph.get("runs", DEFAULT_RUNS), ph.get("keep", DEFAULT_KEEP)
+    if keep > runs:
+        raise ConfigError(f"{src}: key 'phasing.keep': value {keep}{'' if 'keep' in ph else ' (the default)'}; "
+                          f"expected at most runs = {runs}")
     fr = dict(cfg["frame"])
     route = fr.get("route", frame.DEFAULT_ROUTE)
     if route not in frame.ROUTES:
@@ -426,10 +427,6 @@ def _agree_instrument(cfg, i, scan):
     return inst, f"the pipeline file (instrument.override = \"pipeline\"; {what})"
 
 
-def _fmt_hkl(hkl):
-    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
-
-
 def _describe_instrument(inst):
     d = inst.detector
     return (f"energy {inst.energy_kev:g} keV, detector distance {d.distance:g} m, pixel size "
@@ -586,15 +583,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     src = cfg.get("_source", "<pipeline>")
     out = Path(out_dir)
     hkls = [tuple(r["hkl"]) for r in cfg["reflection"]]
-    names = [r["name"] or "refl_{}{}{}".format(*r["hkl"]).replace("-", "m") for r in cfg["reflection"]]
-    import re
-
-    for i, n in enumerate(names):
-        if not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9_.+-]{0,63}", n) or ".." in n:
-            raise ConfigError(f"{src}: key 'reflection[{i}].name': value {n!r}; expected letters, digits and "
-                              "_ . + - only (it names files inside the output folder)")
-    if len(set(names)) != len(names):
-        raise ConfigError(f"{src}: key 'reflection': names must be unique, got {names}")
+    names = [r["name"] for r in cfg["reflection"]]  # checked and defaulted by the schema
     g_ref = []
     for i, h in enumerate(hkls):
         try:
@@ -603,7 +592,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             raise ConfigError(f"{src}: key 'reflection[{i}].hkl': {e}") from None
     g_ref = np.array(g_ref)
     cond = tns.condition_number(g_ref)
-    max_cond = float(opts["tensor"].get("max_condition", 30.0))
+    max_cond = float(opts["tensor"].get("max_condition", tns.MAX_CONDITION))
     if not np.isfinite(cond) or cond > max_cond:
         raise ConfigError(f"{src}: key 'reflection': the reflections {hkls} are coplanar or ill-conditioned "
                           f"(condition number {cond:.3g} > {max_cond:g}); expected three or more non-coplanar")
@@ -628,8 +617,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         except ReflectionError as e:
             raise ConfigError(f"{where}: {e}") from None
         if scan.hkl is not None and tuple(int(v) for v in scan.hkl) != tuple(h):
-            raise ConfigError(f"{where}: declared {_fmt_hkl(h)}, but the scan file {scan.path} records "
-                              f"/sample@hkl = {_fmt_hkl(scan.hkl)}; expected the same reflection")
+            raise ConfigError(f"{where}: declared {format_hkl(h)}, but the scan file {scan.path} records "
+                              f"/sample@hkl = {format_hkl(scan.hkl)}; expected the same reflection")
         if not np.any(scan.frames):
             raise ScanFileError(scan.path, "frames", "every count is zero (no beam, a closed shutter or the wrong "
                                                      "file?); expected a measured Bragg peak")
@@ -638,8 +627,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     for (desc, where_from), who in used.items():
         say(f"instrument: {desc} (from {where_from}" + (f"; for {', '.join(who)}" if len(used) > 1 else "") + ")")
     ph_opts = dict(opts["phasing"])
-    runs = int(ph_opts.pop("runs", 8))
-    keep = int(ph_opts.pop("keep", 4))
+    runs = int(ph_opts.pop("runs", DEFAULT_RUNS))
+    keep = int(ph_opts.pop("keep", DEFAULT_KEEP))
     base_seed = int(ph_opts.pop("seed", 0))
     fr_opts = dict(opts["frame"])
     route = fr_opts.pop("route", frm.DEFAULT_ROUTE)

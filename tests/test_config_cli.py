@@ -100,3 +100,32 @@ def test_demo_dataset_oversampling_is_at_least_two(tmp_path):
     opts = check_options(dict(cfg, reflection=cfg["reflection"] * 3))
     prep = prepare_scan(tmp_path / cfg["reflection"][0]["scan"], **opts["prepare"])
     assert np.all(prep.oversampling >= 2.0), prep.oversampling
+
+
+@pytest.mark.parametrize("name", ["", "../x", "a/b", "r.1", "r 1", "x" * 65])
+def test_reflection_names_are_checked_by_the_schema(tmp_path, name):
+    p = tmp_path / "bad.toml"
+    p.write_text(small_toml().replace('name = "r0"', f'name = "{name}"'))
+    with pytest.raises(ConfigError, match=r"reflection\[0\]\.name"):
+        load_config(p)
+
+
+def test_reflection_names_default_and_must_be_unique(tmp_path):
+    p = tmp_path / "p.toml"
+    p.write_text(small_toml(hkls=((1, 1, 1), (2, 0, 0), (1, -1, 1))).replace('name = "r2"\n', ""))
+    assert [r["name"] for r in load_config(p)["reflection"]] == ["r0", "r1", "refl_1m11"]
+    p.write_text(small_toml().replace('name = "r1"', 'name = "r0"'))
+    with pytest.raises(ConfigError, match=r"reflection\[1\]\.name.*unique"):
+        load_config(p)
+
+
+def test_prepare_refuses_a_name_that_leaves_the_output_folder(tmp_path, small_config, capsys):
+    # `prepare` builds file names from reflection names: a name such as
+    # ../x would write outside --out; the schema refuses it for every command.
+    sim = tmp_path / "sim"
+    assert main(["-q", "simulate", str(small_config), "--out", str(sim)]) == 0
+    p = sim / "pipeline.toml"
+    p.write_text(p.read_text().replace('name = "r0"', 'name = "../x"'))
+    assert main(["-q", "prepare", str(p), "--out", str(sim / "prep")]) == 2
+    assert "reflection[0].name" in capsys.readouterr().err
+    assert not list(tmp_path.rglob("*_prepared.h5"))

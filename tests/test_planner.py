@@ -16,7 +16,7 @@ from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
 from braggstrain.planner import plan as P
-from braggstrain.geometry.crystal import Crystal
+from braggstrain.geometry.crystal import Crystal, format_hkl
 from braggstrain.errors import ConfigError
 from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
 
@@ -423,7 +423,7 @@ def test_plan_from_config_writes_figure_and_fragment(tmp_path):
         assert r["angles_deg"]["eta"] >= -5.0 + 0.5 - 1e-9  # rocking margin
     table = P.format_plan_table(res)
     for h in res.chosen.hkls:
-        assert P._fmt_hkl(h) in table
+        assert format_hkl(h) in table
     assert "condition number" in table and "your set" in table and "unreachable" in table
     assert "Bunge" in table
     assert sorted(os.listdir(tmp_path / "out")) == ["plan.png", "plan_reflections.toml"]  # no temp files left

@@ -48,6 +48,7 @@ from scipy import ndimage
 from scipy.spatial import cKDTree
 
 from braggstrain import _validate as _v
+from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.fields import trusted_for_windings
@@ -1010,10 +1011,6 @@ _CSV_COLUMNS = [
 ]
 
 
-def _hkl_text(h):
-    return "(" + " ".join(str(int(v)) for v in h) + ")"
-
-
 def write_dislocation_table(lines, path, format=None):
     """Write the lines as a table, atomically (temporary file, then rename).
 
@@ -1066,11 +1063,11 @@ def write_dislocation_table(lines, path, format=None):
             r["id"], r["closed"], f"{r['length_A']:.1f}", r["n_points"], r["burgers_label"],
             *[num(v) for v in bl], *[num(v, "{:.4f}") for v in bs], num(r["burgers_length_A"], "{:.4f}"),
             num(r["character_deg"], "{:.1f}"), r["character"],
-            " or ".join(_hkl_text(p) for p in r["slip_planes"]),
+            " or ".join(format_hkl(p) for p in r["slip_planes"]),
             f"{r['confidence']:.3f}", num(r["residual"], "{:.3f}"),
             "; ".join(f"({k}): {'?' if v is None else v}" for k, v in r["windings"].items()),
-            " ".join(_hkl_text(h) for h in r["visible_in"]),
-            " ".join(_hkl_text(h) for h in r["invisible_in"]),
+            " ".join(format_hkl(h) for h in r["visible_in"]),
+            " ".join(format_hkl(h) for h in r["invisible_in"]),
             "" if r["ends_at_surface"] is None else " ".join(str(e) for e in r["ends_at_surface"]),
             " | ".join(r["notes"]),
             "; ".join(" ".join(f"{v:.1f}" for v in p) for p in r["points_A"]),

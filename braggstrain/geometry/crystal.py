@@ -15,9 +15,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from braggstrain.errors import InputError, ReflectionError
+from braggstrain.errors import InputError, ReflectionError, did_you_mean
 
-__all__ = ["HC_KEV_ANGSTROM", "wavelength", "Crystal", "orientation_from_two_reflections",
+__all__ = ["HC_KEV_ANGSTROM", "wavelength", "format_hkl", "Crystal", "orientation_from_two_reflections",
            "check_reflection_identity", "Q_TOLERANCE", "DIRECTION_TOLERANCE_DEG"]
 
 #: Default tolerances of :func:`check_reflection_identity` (common practice,
@@ -90,7 +90,9 @@ def _hkl(hkl):
     return h
 
 
-def _fmt(hkl):
+def format_hkl(hkl):
+    """Miller indices as text, e.g. "(1 -1 0)": the one way reflections are
+    named in messages, tables, figures and the report."""
     return "(" + " ".join(str(int(round(v))) for v in np.asarray(hkl).reshape(-1)) + ")"
 
 
@@ -169,10 +171,8 @@ class Crystal:
                 known = sorted([n for n in dir(xu.materials)
                                 if isinstance(getattr(xu.materials, n, None), xu.materials.Crystal)]
                                + list(_EXTRA_ELEMENTS))
-                import difflib
-                close = difflib.get_close_matches(material, known, n=3)
-                hint = f" (did you mean {', '.join(close)}?)" if close else ""
-                raise InputError(f"material '{material}': not a crystal known to xrayutilities{hint}")
+                raise InputError(f"material '{material}': not a crystal known to xrayutilities"
+                                 f"{did_you_mean(material, known, n=3)}")
         elif isinstance(material, xu.materials.Crystal):
             mat = material
         else:
@@ -270,7 +270,7 @@ class Crystal:
         s = lam / (2 * d)
         if s > 1:
             raise ReflectionError(
-                f"reflection {_fmt(hkl)} of {self.name}: unreachable at {float(energy_kev):g} keV "
+                f"reflection {format_hkl(hkl)} of {self.name}: unreachable at {float(energy_kev):g} keV "
                 f"(λ = {lam:.4f} Å > 2d = {2 * d:.4f} Å)")
         return float(np.arcsin(s))
 
@@ -312,7 +312,7 @@ class Crystal:
         h = _hkl(hkl)
         if not self.is_allowed(h):
             raise ReflectionError(
-                f"reflection {_fmt(h)} of {self.name}: forbidden (structure factor is zero for the "
+                f"reflection {format_hkl(h)} of {self.name}: forbidden (structure factor is zero for the "
                 f"{self.centring}-centred lattice{'' if self._explicit else ' and its atoms'}); "
                 f"expected an allowed reflection")
         if energy_kev is not None:
@@ -443,10 +443,10 @@ def check_reflection_identity(crystal, hkl, q_sample, *, where="reflection", q_t
         return dq, ang
     wrong = []
     if dq > q_tolerance:
-        wrong.append(f"{100 * dq:.2f} % from |G{_fmt(h)}| = {gn:.4f} Å⁻¹ (d = {2 * np.pi / gn:.4f} Å, "
+        wrong.append(f"{100 * dq:.2f} % from |G{format_hkl(h)}| = {gn:.4f} Å⁻¹ (d = {2 * np.pi / gn:.4f} Å, "
                      f"tolerance {100 * q_tolerance:g} %)")
     if ang > direction_tolerance_deg:
-        wrong.append(f"{ang:.1f}° from the declared direction of {_fmt(h)} in the sample frame "
+        wrong.append(f"{ang:.1f}° from the declared direction of {format_hkl(h)} in the sample frame "
                      f"(tolerance {direction_tolerance_deg:g}°)")
     fits, same_q = [], []
     for c in crystal.allowed_reflections(qn * (1 + q_tolerance) * (1 + 1e-9), energy_kev=energy_kev):
@@ -455,7 +455,7 @@ def check_reflection_identity(crystal, hkl, q_sample, *, where="reflection", q_t
         if abs(qn - gcn) / gcn > q_tolerance:
             continue
         a = np.degrees(np.arccos(np.clip(q @ gc / (qn * gcn), -1.0, 1.0)))
-        (fits if a <= direction_tolerance_deg else same_q).append(_fmt(c))
+        (fits if a <= direction_tolerance_deg else same_q).append(format_hkl(c))
     if fits:
         hint = f"reflections of {crystal.name} that would fit: {', '.join(fits)}"
     elif same_q:
@@ -464,5 +464,5 @@ def check_reflection_identity(crystal, hkl, q_sample, *, where="reflection", q_t
                 f"{', '.join(same_q[:6])}{', …' if more else ''} (check the orientation)")
     else:
         hint = f"no reflection of {crystal.name} has this |Q| (check the energy, distance and pixel size)"
-    raise ReflectionError(f"{where} {_fmt(h)}: the measured peak has |Q| = {qn:.4f} Å⁻¹ (d = {2 * np.pi / qn:.4f} Å), "
+    raise ReflectionError(f"{where} {format_hkl(h)}: the measured peak has |Q| = {qn:.4f} Å⁻¹ (d = {2 * np.pi / qn:.4f} Å), "
                           + " and ".join(wrong) + f"; {hint}")

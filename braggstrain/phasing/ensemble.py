@@ -25,7 +25,13 @@ from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _opti
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
-__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "worker_pool"]
+__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "worker_pool", "DEFAULT_RUNS",
+           "DEFAULT_KEEP"]
+
+#: Random starts and runs averaged when nothing else is asked (the pipeline's
+#: ``[phasing] runs`` and ``keep`` default to these too).
+DEFAULT_RUNS = 8
+DEFAULT_KEEP = 4
 
 
 def _watch_parent(parent_pid, interval=0.5):
@@ -246,7 +252,7 @@ def _align_support(sup, info):
     return np.roll(s, tuple(int(round(v)) for v in info["shift"]), axis=(0, 1, 2))
 
 
-def ensemble(intensity, mask=None, *, runs=8, keep=4, plan=None, seed=None, executor=None,
+def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan=None, seed=None, executor=None,
              progress=False, metric="free_nll", threads=1, coherence=False, background=None,
              free_fraction=0.03, fft_backend="auto", fft_effort=DEFAULT_EFFORT,
              initial_threshold=0.04, remove_ramp=True, center=True) -> EnsembleResult:

@@ -19,11 +19,10 @@ and :func:`plan_from_config` turns the list of such tables into
 
 from __future__ import annotations
 
-import difflib
 import numbers
 from dataclasses import asdict, dataclass, fields
 
-from braggstrain.errors import ConfigError
+from braggstrain.errors import ConfigError, did_you_mean
 
 __all__ = [
     "Stage",
@@ -39,11 +38,6 @@ __all__ = [
 ALGORITHMS = ("ER", "HIO", "RAAR")
 SUPPORT_RULES = ("shrinkwrap", "none")
 _DEFAULT_BETA = {"ER": 0.0, "HIO": 0.9, "RAAR": 0.8}
-
-
-def _did_you_mean(key, allowed):
-    close = difflib.get_close_matches(str(key), list(allowed), n=1, cutoff=0.5)
-    return f" (did you mean '{close[0]}'?)" if close else ""
 
 
 @dataclass(frozen=True)
@@ -158,7 +152,7 @@ def _check_stage(stage, where):
     alg = stage.algorithm
     if not isinstance(alg, str) or alg.upper() not in ALGORITHMS:
         raise ConfigError(f"{where}: key 'algorithm': expected one of {', '.join(ALGORITHMS)}, "
-                          f"got {alg!r}{_did_you_mean(str(alg).upper(), ALGORITHMS)}")
+                          f"got {alg!r}{did_you_mean(str(alg).upper(), ALGORITHMS)}")
     object.__setattr__(stage, "algorithm", alg.upper())
     if not _is_int(stage.iterations) or stage.iterations < 1:
         raise ConfigError(f"{where}: key 'iterations': expected a positive integer, "
@@ -174,7 +168,7 @@ def _check_stage(stage, where):
     if not isinstance(rule, str) or rule.lower() not in SUPPORT_RULES:
         raise ConfigError(f"{where}: key 'support_update': expected one of "
                           f"{', '.join(SUPPORT_RULES)}, got {rule!r}"
-                          f"{_did_you_mean(str(rule).lower(), SUPPORT_RULES)}")
+                          f"{did_you_mean(str(rule).lower(), SUPPORT_RULES)}")
     object.__setattr__(stage, "support_update", rule.lower())
     if not _is_int(stage.update_every) or stage.update_every < 1:
         raise ConfigError(f"{where}: key 'update_every': expected a positive integer, "
@@ -250,7 +244,7 @@ def plan_from_config(stages) -> list[Stage]:
             raise ConfigError(f"{where}: expected a table of stage keys, got {type(st).__name__}")
         for key in st:
             if key not in STAGE_KEYS:
-                raise ConfigError(f"{where}: unknown key '{key}'{_did_you_mean(key, STAGE_KEYS)}; "
+                raise ConfigError(f"{where}: unknown key '{key}'{did_you_mean(key, STAGE_KEYS)}; "
                                   f"known keys: {', '.join(STAGE_KEYS)}")
         try:
             out.append(Stage(**st))
@@ -298,7 +292,7 @@ def options_from_config(table: dict) -> dict:
     out = {}
     for key, value in table.items():
         if key not in OPTION_KEYS:
-            raise ConfigError(f"phasing: unknown key '{key}'{_did_you_mean(key, OPTION_KEYS)}; "
+            raise ConfigError(f"phasing: unknown key '{key}'{did_you_mean(key, OPTION_KEYS)}; "
                               f"known keys: {', '.join(OPTION_KEYS)}")
         out[key] = plan_from_config(value) if key == "plan" else value
     return out

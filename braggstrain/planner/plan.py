@@ -40,7 +40,7 @@ from typing import Mapping
 
 import numpy as np
 
-from braggstrain.geometry.crystal import HC_KEV_ANGSTROM
+from braggstrain.geometry.crystal import HC_KEV_ANGSTROM, format_hkl
 from braggstrain.errors import ConfigError, GeometryError, InputError, ReflectionError
 from braggstrain.geometry.instrument import AXES, axis_rotation
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS
@@ -55,10 +55,6 @@ __all__ = [
 
 
 _CONVERGED = 1e-9  # Å⁻¹, |Q − G| accepted as the Bragg condition (as solve_bragg)
-
-
-def _fmt_hkl(hkl):
-    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
 
 
 # ---------------------------------------------------------------------------
@@ -216,7 +212,7 @@ def orientation_from_measured(crystal, instrument, measured, key="plan.orientati
         # 2 %: far beyond any strain of a crystal, far below the step between
         # neighbouring reflections (common practice, no source).
         if abs(qn / gn - 1) > 0.02:
-            raise ConfigError(f"{k}: measured |Q| = {qn:.4f} Å⁻¹ differs from |G{_fmt_hkl(refl.hkl)}| = {gn:.4f} Å⁻¹ "
+            raise ConfigError(f"{k}: measured |Q| = {qn:.4f} Å⁻¹ differs from |G{format_hkl(refl.hkl)}| = {gn:.4f} Å⁻¹ "
                               f"by {100 * abs(qn / gn - 1):.1f} %; expected the same within 2 % "
                               f"(check hkl, energy and angles)")
         dirs.append(d)
@@ -1133,10 +1129,10 @@ def plan(crystal, instrument, options=PlanOptions(), orientation_residual_deg=No
             need = HC_KEV_ANGSTROM * g0 / (4 * np.pi)
             if g0 > 2 * k:
                 raise InputError(f"instrument.energy_kev = {instrument.energy_kev:g}: reaches no allowed reflection of "
-                                 f"{crystal.name}; the shortest, {_fmt_hkl(shortest[0])} with |G| = {g0:.3f} Å⁻¹, "
+                                 f"{crystal.name}; the shortest, {format_hkl(shortest[0])} with |G| = {g0:.3f} Å⁻¹, "
                                  f"needs ≥ {need:.2f} keV")
             raise InputError(f"plan.g_max = {g_max:g} Å⁻¹: below the shortest allowed reflection of {crystal.name}, "
-                             f"{_fmt_hkl(shortest[0])} with |G| = {g0:.3f} Å⁻¹")
+                             f"{format_hkl(shortest[0])} with |G| = {g0:.3f} Å⁻¹")
         raise InputError(f"crystal {crystal.name}: no allowed reflection found")
     user_hkls = []
     if options.score_set is not None:
@@ -1308,11 +1304,11 @@ def _fmt_num(v, spec):
 
 
 def _set_block(title, s):
-    lines = [f"{title}: " + "  ".join(_fmt_hkl(h) for h in s.hkls)]
+    lines = [f"{title}: " + "  ".join(format_hkl(h) for h in s.hkls)]
     lines.append(f"  score trace((GᵀWG)⁻¹) = {_fmt_num(s.score, '.5g')} Å²   condition number = "
                  f"{_fmt_num(s.condition_number, '.3f')}   total travel = {_fmt_num(s.travel_deg, '.1f')}°")
     if np.isfinite(s.score):
-        lines.append("  leverage: " + "  ".join(f"{_fmt_hkl(h)} {v:.2f}" for h, v in zip(s.hkls, s.leverage)))
+        lines.append("  leverage: " + "  ".join(f"{format_hkl(h)} {v:.2f}" for h, v in zip(s.hkls, s.leverage)))
         lines.append("  strain σ (Å per rad/Å of phase-gradient noise): " +
                      "  ".join(f"ε{c} {v:.3g}" for c, v in zip(STRAIN_COMPONENTS, s.strain_sigma)))
         if np.all(np.isfinite(s.relative_sigma)):
@@ -1321,7 +1317,7 @@ def _set_block(title, s):
     else:
         lines.append("  the G vectors are coplanar: this set cannot determine the strain tensor")
     if s.unreachable:
-        lines.append("  not reachable: " + "  ".join(_fmt_hkl(h) for h in s.unreachable))
+        lines.append("  not reachable: " + "  ".join(format_hkl(h) for h in s.unreachable))
     return lines
 
 
@@ -1337,7 +1333,7 @@ def format_plan_table(result):
             continue
         ang = [_fmt_num(r.angles_deg[n], ".3f") for n in names]
         mark = "*" if r.hkl in chosen else ""
-        rows.append([_fmt_hkl(r.hkl) + mark, f"{r.g_norm:.4f}", f"{r.d_spacing:.4f}", _fmt_num(r.two_theta_deg, ".3f"),
+        rows.append([format_hkl(r.hkl) + mark, f"{r.g_norm:.4f}", f"{r.d_spacing:.4f}", _fmt_num(r.two_theta_deg, ".3f"),
                      *ang, _fmt_num(r.incidence_deg, ".1f"), _fmt_num(r.exit_deg, ".1f"),
                      f"{abs(r.structure_factor):.1f}", _fmt_num(r.weight, ".3f"), _fmt_num(r.info, ".3f")])
     widths = [max(len(h), *(len(row[i]) for row in rows)) if rows else len(h) for i, h in enumerate(head)]
@@ -1363,7 +1359,7 @@ def format_plan_table(result):
     if un:
         lines.append("")
         lines.append("unreachable:")
-        lines += [f"  {_fmt_hkl(r.hkl):>12}  {r.reason}" for r in un]
+        lines += [f"  {format_hkl(r.hkl):>12}  {r.reason}" for r in un]
     lines.append("")
     lines.append("Caution: the planner knows circle limits and the substrate only; check every move for "
                  "collisions and follow the facility's rules.")

@@ -21,6 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain import _validate as _v
+from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
 from braggstrain.io.scans import atomic_path
 from braggstrain.strain.grid import Grid
@@ -382,16 +383,12 @@ def plot_displacements(results, path=None):
         if x.get("displacement") is None:
             continue
         rows.append(x["displacement"])
-        names.append(f"u_G for {_hkl(x['hkl'])}")
+        names.append(f"u_G for {format_hkl(x['hkl'])}")
     if not rows:
         return None
     return plot_slices(rows, results["support"], results["grid"], path, names=names,
                        units=["Å"] * len(rows), signed=True,
                        title="Displacement along each G vector, u_G = −φ/|G|")
-
-
-def _hkl(hkl):
-    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
 
 
 # --------------------------------------------------------------------------
@@ -415,7 +412,7 @@ def plot_prtf(results, path=None):
     for x, c in zip(refl, _colours(len(refl))):
         p = x["prtf"]
         res = p.get("resolution", np.nan)
-        lab = f"{x['name']} {_hkl(x['hkl'])}"
+        lab = f"{x['name']} {format_hkl(x['hkl'])}"
         lab += f": resolution {res / 10.0:.1f} nm" if np.isfinite(res) else ": stays above 1/e"
         ax.plot(p["q"], p["values"], "-o", ms=2.5, lw=1.4, color=c, label=lab)
     ax.axhline(np.exp(-1), color="0.3", ls="--", lw=1)
@@ -499,7 +496,7 @@ def plot_histories(results, path=None):
             chk = h.get("checkpoint")
             if chk is not None and len(chk) == len(y) and len(y) != max(len(v) for v in h.values()):
                 it = np.asarray(chk, float)
-            ax.plot(it, y, lw=1.2, color=c, label=f"{x['name']} {_hkl(x['hkl'])}",
+            ax.plot(it, y, lw=1.2, color=c, label=f"{x['name']} {format_hkl(x['hkl'])}",
                     marker="o" if len(y) < 30 else None, ms=3)
             fin = y[np.isfinite(y)]
             positive &= bool(fin.size) and bool(np.all(fin > 0)) and fin.max() / fin.min() > 20
@@ -553,7 +550,7 @@ def plot_runs(results, path=None):
     key_used = set()
     for j, x in enumerate(refl):
         runs = x.get("run_metrics") or []
-        labels.append(f"{x['name']} {_hkl(x['hkl'])}")
+        labels.append(f"{x['name']} {format_hkl(x['hkl'])}")
         key = _rank_key(runs)
         if key is None:
             continue

@@ -17,6 +17,7 @@ from pathlib import Path
 
 import numpy as np
 
+from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
 from braggstrain.io.scans import atomic_path
 
@@ -81,10 +82,6 @@ def _num(v, fmt="{:.4g}"):
     if not np.isfinite(x):
         return "—"
     return _e(fmt.format(x))
-
-
-def _hkl(hkl):
-    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
 
 
 def _table(header, rows, caption=None, text_cols=(0,), wrap_cols=(), css=None):
@@ -199,7 +196,7 @@ def _reflection_section(r):
     rows = []
     for x in refl:
         res = x["prtf"]["resolution"] if x["prtf"] is not None else np.nan
-        rows.append([_e(x["name"]), _e(_hkl(x["hkl"])), _num(np.linalg.norm(x["g_vector"])),
+        rows.append([_e(x["name"]), _e(format_hkl(x["hkl"])), _num(np.linalg.norm(x["g_vector"])),
                      _num(x["max_counts"], "{:.3g}"),
                      ", ".join(_num(v, "{:.2f}") for v in x["oversampling"]), str(x["runs"]), str(x["kept"]),
                      _num(res / 10.0, "{:.1f}"), ", ".join(_num(v, "{:.2f}") for v in x["shift_vox"]),
@@ -361,10 +358,10 @@ def _dislocation_section(r):
             _e(rec["character"]), _num(rec["character_deg"], "{:.0f}"), _num(rec["length_A"] / 10.0, "{:.1f}"),
             ", ".join(_num(v / 10.0, "{:.1f}") for v in d.center),
             "yes" if rec["closed"] else "no",
-            _e(", ".join(_hkl(p) for p in rec["slip_planes"]) or "—"),
+            _e(", ".join(format_hkl(p) for p in rec["slip_planes"]) or "—"),
             _e("; ".join(f"({k}): {'?' if v is None else v}" for k, v in rec["windings"].items())),
-            _e(" ".join(_hkl(h) for h in rec["visible_in"]) or "—"),
-            _e(" ".join(_hkl(h) for h in rec["invisible_in"]) or "—"),
+            _e(" ".join(format_hkl(h) for h in rec["visible_in"]) or "—"),
+            _e(" ".join(format_hkl(h) for h in rec["invisible_in"]) or "—"),
             _num(rec["confidence"], "{:.2f}"), _e(" | ".join(rec["notes"]) or "—"),
         ])
     out.append(_table(header, rows, text_cols=(1, 3, 8, 9, 10, 11, 13), wrap_cols=(9, 13)))
@@ -477,7 +474,7 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
             raise InputError(f"figures: {p} does not exist; expected PNG files to embed")
     heading = title or "Strain, rotation and dislocations of one crystal"
     n_lines = len(r["dislocations"])
-    refl_text = ", ".join(f"{x['name']} {_hkl(x['hkl'])}" for x in r["reflections"])
+    refl_text = ", ".join(f"{x['name']} {format_hkl(x['hkl'])}" for x in r["reflections"])
     summary = (f"<p>{len(r['reflections'])} reflections ({_e(refl_text)}); condition number of the G set "
                f"{_num(r['tensor'].condition_number, '{:.3f}')}; {n_lines} dislocation line"
                f"{'s' if n_lines != 1 else ''}. Arrays are in the sample frame (x, y, z), lengths in nm in "

@@ -94,7 +94,7 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
                 (out / sp["file"]).unlink(missing_ok=True)
     rng = np.random.default_rng(sim["seed"])
     for i, r in enumerate(cfg["reflection"]):
-        name = r["name"] or "refl_{}{}{}".format(*r["hkl"])
+        name = r["name"]  # checked and defaulted by the schema
         if r["scan"] is None and r["frames"] is None:
             raise ConfigError(f"{src}: key 'reflection[{i}].scan': expected the scan file to write (or 'frames' "
                               "in a beamline form)")

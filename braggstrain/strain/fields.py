@@ -29,6 +29,7 @@ from braggstrain.errors import InputError
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
+    "GRADIENT_AMPLITUDE_THRESHOLD",
     "default_support",
     "trusted_for_gradients",
     "trusted_for_windings",
@@ -43,6 +44,13 @@ __all__ = [
     "ReflectionField",
     "reflection_field",
 ]
+
+
+#: Default of every ``amplitude_threshold`` of phase gradients (trusted
+#: voxels, ramps, the tensor): a fraction of the median amplitude inside the
+#: support (common practice, no source). The defects' windings use
+#: :func:`trusted_for_windings` with its own, lower default.
+GRADIENT_AMPLITUDE_THRESHOLD = 0.3
 
 
 # --------------------------------------------------------------------------
@@ -110,7 +118,7 @@ def _bright(amp, support, fraction, name="amplitude_threshold"):
     return amp >= fraction * med, med
 
 
-def trusted_for_gradients(obj, support=None, amplitude_threshold=0.3, erosion=1):
+def trusted_for_gradients(obj, support=None, amplitude_threshold=GRADIENT_AMPLITUDE_THRESHOLD, erosion=1):
     """Voxels whose phase gradient can be trusted: the support, eroded.
 
     The support eroded by ``erosion`` voxels (face-connected structuring
@@ -127,8 +135,7 @@ def trusted_for_gradients(obj, support=None, amplitude_threshold=0.3, erosion=1)
     support : bool ndarray, optional
         Default: :func:`default_support` of ``obj``.
     amplitude_threshold : float in [0, 1)
-        0 keeps every voxel of the eroded support (common practice, no
-        source for 0.3).
+        0 keeps every voxel of the eroded support.
     erosion : int
         Voxels eroded from the support.
 
@@ -389,7 +396,7 @@ def unwrapped_phase(obj, support=None, reference=None):
 
 
 def displacement_along_g(obj, g_vector, voxel_size, support=None, *, remove_ramp=False,
-                         reference=None, amplitude_threshold=0.3):
+                         reference=None, amplitude_threshold=GRADIENT_AMPLITUDE_THRESHOLD):
     """Displacement along G, u_G = −φ/|G| (Å), from the unwrapped phase.
 
     Parameters
@@ -521,7 +528,7 @@ class ReflectionField:
 
 
 def reflection_field(obj, g_vector=None, voxel_size=None, support=None, *, remove_ramp=False,
-                     amplitude_threshold=0.3, order=2, smooth=0.0):
+                     amplitude_threshold=GRADIENT_AMPLITUDE_THRESHOLD, order=2, smooth=0.0):
     """All fields of one reflection (see :class:`ReflectionField`).
 
     ``obj`` may be a :class:`~braggstrain.objects.SampleObject`, whose G,

@@ -31,9 +31,10 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy import ndimage as ndi
 
+from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import TensorError
 from braggstrain import _validate as _v
-from braggstrain.strain.fields import (default_support, phase_gradient, phase_ramp,
+from braggstrain.strain.fields import (GRADIENT_AMPLITUDE_THRESHOLD, default_support, phase_gradient, phase_ramp,
                      reference_voxel, trusted_for_gradients, unwrapped_phase)
 from braggstrain.strain.components import STRAIN_PAIRS, split_gradient
 from braggstrain.strain.grid import Grid
@@ -44,6 +45,7 @@ __all__ = [
     "TensorField",
     "strain_tensor",
     "condition_number",
+    "MAX_CONDITION",
     "hydrostatic_strain",
     "von_mises_strain",
     "principal_strains",
@@ -55,12 +57,14 @@ __all__ = [
 ]
 
 
+#: Largest condition number of a G set accepted for the tensor and the mean
+#: lattice (the pipeline's ``[tensor] max_condition`` defaults to it; common
+#: practice, no source: the relative error in D grows up to that factor).
+MAX_CONDITION = 30.0
+
+
 class ReflectionConsistencyWarning(UserWarning):
     """One reflection disagrees with the others, or a twin choice is unsure."""
-
-
-def _fmt_label(hkl):
-    return "(" + " ".join(str(int(v)) for v in hkl) + ")"
 
 
 # --------------------------------------------------------------------------
@@ -253,11 +257,11 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
     if G.shape[0] != J:
         raise TensorError(f"g_vectors: {G.shape[0]} G vectors for {J} objects; expected one G per object")
     if labels is None:
-        labels = [(_fmt_label(h) if h is not None else
+        labels = [(format_hkl(h) if h is not None else
                    f"reflection {j} (G = [{G[j, 0]:.4f}, {G[j, 1]:.4f}, {G[j, 2]:.4f}] Å⁻¹)")
                   for j, h in enumerate(hkls)]
     else:
-        labels = [str(v) if not isinstance(v, (tuple, list)) else _fmt_label(v) for v in labels]
+        labels = [str(v) if not isinstance(v, (tuple, list)) else format_hkl(v) for v in labels]
         if len(labels) != J:
             raise TensorError(f"labels: {len(labels)} labels for {J} objects; expected one per object")
     if J < 3:
@@ -336,9 +340,9 @@ def _solve(P, w, G):
 
 
 def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *, labels=None,
-                  order=2, amplitude_threshold=0.3, max_condition=30.0, gradient_noise=None,
-                  gradient_covariance=None, covariance_source="the given phase-gradient covariance",
-                  resolution_blur=None,
+                  order=2, amplitude_threshold=GRADIENT_AMPLITUDE_THRESHOLD, max_condition=MAX_CONDITION,
+                  gradient_noise=None, gradient_covariance=None,
+                  covariance_source="the given phase-gradient covariance", resolution_blur=None,
                   displacement=True, uniform_gradient=None, phase_tolerance=np.pi / 4,
                   outlier_ratio=0.25, warn=True):
     """Strain tensor, rotation and residual per voxel from J ≥ 3 reflections.
@@ -1097,7 +1101,7 @@ def apply_registration(obj, report, index):
 
 
 def _label(o, j):
-    return _fmt_label(o.hkl) if o.hkl is not None else f"(reflection {j})"
+    return format_hkl(o.hkl) if o.hkl is not None else f"(reflection {j})"
 
 
 def _twin_by_residual(objects, results, info, amb, vs):
@@ -1183,7 +1187,7 @@ class MeanLattice:
     condition_number: float
 
 
-def mean_lattice_strain(g_measured, g_reference, lattice_parameter=None, *, max_condition=30.0):
+def mean_lattice_strain(g_measured, g_reference, lattice_parameter=None, *, max_condition=MAX_CONDITION):
     """Mean displacement gradient D₀ from measured and reference G vectors.
 
     Derivation: a homogeneous deformation F = I + D₀ takes the real-space
