@@ -42,7 +42,6 @@ from braggstrain.defects.lines import (
     Dislocation,
     find_dislocations,
     format_lattice_vector,
-    orientation_from_reflections,
     read_dislocations_h5,
     solve_burgers,
     vortex_map,
@@ -50,6 +49,7 @@ from braggstrain.defects.lines import (
     write_dislocations_h5,
 )
 from braggstrain.errors import InputError
+from braggstrain.geometry.orientation import orientation_from_reflections
 from braggstrain.strain.objects import SampleObject
 
 VS = 30.0  # voxel edge, Å
@@ -503,17 +503,6 @@ def test_solve_burgers_recovers_every_short_fcc_translation():
     b, _, res = solve_burgers(HKLS, n, cr)
     assert res > 0.4
     assert solve_burgers([(1, 1, 1), (-1, 1, 1), (2, 0, 0)], [0, 1, -1], cr)[0] is None
-
-
-def test_orientation_matches_scipy_align_vectors():
-    # Reference library: scipy.spatial.transform.Rotation.align_vectors solves
-    # the same least-squares rotation (Wahba's problem).
-    cr = _pt()
-    gs = np.array([cr.g_sample(h) for h in HKLS])
-    U = orientation_from_reflections(Crystal("Pt"), HKLS, gs)
-    ref, _ = Rotation.align_vectors(gs, np.array(HKLS, float) @ cr.B.T)
-    assert np.allclose(U, ref.as_matrix(), atol=1e-9)
-    assert np.allclose(U, U_TILT, atol=1e-9)
 
 
 def test_format_lattice_vector():

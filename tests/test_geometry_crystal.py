@@ -4,7 +4,8 @@ import numpy as np
 import pytest
 import xrayutilities as xu
 
-from braggstrain.geometry.crystal import Crystal, HC_KEV_ANGSTROM, orientation_from_two_reflections, wavelength
+from braggstrain.geometry.crystal import Crystal, HC_KEV_ANGSTROM, wavelength
+from braggstrain.geometry.orientation import orientation_from_two_reflections
 from braggstrain.errors import InputError, ReflectionError
 
 # Room-temperature lattice parameters (Å), from memory of the standard tables
@@ -68,21 +69,6 @@ def test_unreachable_reflection_is_refused():
 def test_unknown_material_suggests_a_name():
     with pytest.raises(InputError, match="did you mean"):
         Crystal("Ptt")
-
-
-def test_orientation_from_two_reflections_recovers_u():
-    rng = np.random.default_rng(1)
-    c = Crystal("Au")
-    from scipy.spatial.transform import Rotation
-
-    U = Rotation.from_rotvec(rng.normal(size=3)).as_matrix()  # reference library rotation
-    g1, g2 = c.g_crystal((1, 1, 1)), c.g_crystal((2, 0, 0))
-    U2 = orientation_from_two_reflections(g1, g2, U @ g1 * 3.0, U @ g2)
-    np.testing.assert_allclose(U2, U, atol=1e-12)
-    oc = c.oriented_by((1, 1, 1), U @ g1, (2, 0, 0), U @ g2)
-    np.testing.assert_allclose(oc.g_sample((0, 2, 2)), U @ c.g_crystal((0, 2, 2)), atol=1e-12)
-    with pytest.raises(InputError, match="parallel"):
-        orientation_from_two_reflections(g1, 2 * g1, g1, g1)
 
 
 def test_fcc_translations_and_slip_planes():

@@ -15,6 +15,7 @@ import pytest
 from scipy.optimize import least_squares
 from scipy.spatial.transform import Rotation
 
+from braggstrain.geometry import orientation, rotation
 from braggstrain.planner import plan as P
 from braggstrain.geometry.crystal import Crystal, format_hkl
 from braggstrain.errors import ConfigError
@@ -114,16 +115,16 @@ def test_bunge_matrix_hand_cases():
     # Bunge, Texture Analysis in Materials Science, 1982, ch. 2: g =
     # R_z(φ2) R_x(Φ) R_z(φ1), passive, R_z(a) = [[c, s, 0], [−s, c, 0], [0, 0, 1]].
     c30, s30 = math.sqrt(3) / 2, 0.5
-    np.testing.assert_allclose(P.bunge_matrix([30, 0, 0]), [[c30, s30, 0], [-s30, c30, 0], [0, 0, 1]], atol=1e-12)
-    np.testing.assert_allclose(P.bunge_matrix([0, 30, 0]), [[1, 0, 0], [0, c30, s30], [0, -s30, c30]], atol=1e-12)
-    np.testing.assert_allclose(P.bunge_matrix([0, 0, 30]), [[c30, s30, 0], [-s30, c30, 0], [0, 0, 1]], atol=1e-12)
+    np.testing.assert_allclose(rotation.bunge_matrix([30, 0, 0]), [[c30, s30, 0], [-s30, c30, 0], [0, 0, 1]], atol=1e-12)
+    np.testing.assert_allclose(rotation.bunge_matrix([0, 30, 0]), [[1, 0, 0], [0, c30, s30], [0, -s30, c30]], atol=1e-12)
+    np.testing.assert_allclose(rotation.bunge_matrix([0, 0, 30]), [[c30, s30, 0], [-s30, c30, 0], [0, 0, 1]], atol=1e-12)
     # The written-out matrix of Bunge (1982), ch. 2 (from memory), expanded by hand.
     p1, F, p2 = np.radians([10.0, 50.0, 70.0])
     c1, s1, c2, s2, c, s = np.cos(p1), np.sin(p1), np.cos(p2), np.sin(p2), np.cos(F), np.sin(F)
     g = [[c1 * c2 - s1 * s2 * c, s1 * c2 + c1 * s2 * c, s2 * s],
          [-c1 * s2 - s1 * c2 * c, -s1 * s2 + c1 * c2 * c, c2 * s],
          [s1 * s, -c1 * s, c]]
-    np.testing.assert_allclose(P.bunge_matrix([10, 50, 70]), g, atol=1e-12)
+    np.testing.assert_allclose(rotation.bunge_matrix([10, 50, 70]), g, atol=1e-12)
 
 
 @pytest.mark.parametrize("euler, plane, direction", [
@@ -136,13 +137,13 @@ def test_bunge_matrix_hand_cases():
     ((90.0, math.degrees(math.atan(1 / math.sqrt(2))), 45.0), (1, 1, 2), (-1, -1, 1)),  # copper {112}<111>
 ])
 def test_bunge_texture_components(euler, plane, direction):
-    g = P.bunge_matrix(euler)
+    g = rotation.bunge_matrix(euler)
     nd, rd = g[:, 2], g[:, 0]  # specimen ND and RD in crystal coordinates
     np.testing.assert_allclose(nd, np.array(plane) / np.linalg.norm(plane), atol=1e-9)
     np.testing.assert_allclose(rd, np.array(direction) / np.linalg.norm(direction), atol=1e-9)
     # With the identity mounting, U takes those crystal directions to the
     # sample axes z and x (U = M gᵀ by definition of U: crystal → sample).
-    U = P.orientation_from_euler(euler)
+    U = orientation.orientation_from_euler(euler)
     np.testing.assert_allclose(U @ nd, [0, 0, 1], atol=1e-9)
     np.testing.assert_allclose(U @ rd, [1, 0, 0], atol=1e-9)
 
@@ -150,10 +151,10 @@ def test_bunge_texture_components(euler, plane, direction):
 def test_mounting_places_specimen_axes():
     # Hand: RD along sample +y, TD along −x, ND along +z is a rotation of +90°
     # about z; the cube orientation then has crystal [100] along sample y.
-    U = P.orientation_from_euler([0, 0, 0], P.mounting_matrix(["y+", "x-", "z+"]))
+    U = orientation.orientation_from_euler([0, 0, 0], orientation.mounting_matrix(["y+", "x-", "z+"]))
     np.testing.assert_allclose(U, [[0, -1, 0], [1, 0, 0], [0, 0, 1]], atol=1e-12)
     with pytest.raises(ConfigError, match="mounting"):
-        P.mounting_matrix(["x+", "y+", "z-"])  # left-handed
+        orientation.mounting_matrix(["x+", "y+", "z-"])  # left-handed
 
 
 def _measure(crystal, dif, hkls, opt, n=None):
@@ -170,7 +171,7 @@ def _measure(crystal, dif, hkls, opt, n=None):
                 keep.append(r)
         rs = keep[:n]
         assert len(rs) == n
-    return [P.MeasuredReflection(r.hkl, r.angles_deg, opt.pixel) for r in rs]
+    return [orientation.MeasuredReflection(r.hkl, r.angles_deg, opt.pixel) for r in rs]
 
 
 @pytest.mark.parametrize("pixel", [None, (90.0, 170.0)])
@@ -182,11 +183,11 @@ def test_orientation_from_two_reflections_recovers_U(pixel):
     dif = four_circle()
     opt = P.PlanOptions(surface_normal=None, pixel=pixel, fixed_deg={"phi": 10.0})
     meas = _measure(pt, dif, [(1, 1, 1), (0, 2, 0)], opt)
-    U, res = P.orientation_from_measured(Crystal("Pt"), dif, meas)
+    U, res = orientation.orientation_from_measured(Crystal("Pt"), dif, meas)
     assert misorientation_deg(U, U_true) < 0.01
     assert np.all(res < 1e-6)
     meas3 = _measure(pt, dif, [(1, 1, 1), (0, 2, 0), (2, 0, 2)], opt)
-    U3, res3 = P.orientation_from_measured(Crystal("Pt"), dif, meas3)
+    U3, res3 = orientation.orientation_from_measured(Crystal("Pt"), dif, meas3)
     assert misorientation_deg(U3, U_true) < 0.01
 
 
@@ -202,8 +203,8 @@ def test_orientation_least_squares_matches_scipy_fit():
     for i, m in enumerate(meas):  # errors of a few hundredths of a degree
         a = dict(m.angles_deg)
         a["omega"] += [0.03, -0.02, 0.01, 0.04][i]
-        noisy.append(P.MeasuredReflection(m.hkl, a, None))
-    U, res = P.orientation_from_measured(Crystal("Pt"), dif, noisy)
+        noisy.append(orientation.MeasuredReflection(m.hkl, a, None))
+    U, res = orientation.orientation_from_measured(Crystal("Pt"), dif, noisy)
     assert np.all(res > 0) and np.all(res < 0.1)
     dirs, gcs = [], []
     for m in noisy:
@@ -415,7 +416,7 @@ def test_plan_from_config_writes_figure_and_fragment(tmp_path):
     frag = tomllib.loads(open(res.fragment_path).read())
     assert [tuple(r["hkl"]) for r in frag["reflections"]] == res.chosen.hkls
     crystal, dif = _objects(cfg)
-    crystal = crystal.with_orientation(P.orientation_from_euler([30.0, 54.7356, 45.0]))
+    crystal = crystal.with_orientation(orientation.orientation_from_euler([30.0, 54.7356, 45.0]))
     for r in frag["reflections"]:
         # the pasted angles put Q on G (xrayutilities QConversion via instrument)
         q = dif.pixel_q(r["angles_deg"], frame="sample", roi=(128, 129, 128, 129))[:, 0, 0]

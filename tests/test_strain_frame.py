@@ -17,6 +17,7 @@ import scipy.fft as sfft
 from scipy import ndimage
 from scipy.optimize import least_squares
 
+from braggstrain.geometry.rotation import rotation_from_rotvec
 from braggstrain.simulate import forward as fw
 from braggstrain.strain import frame as fr
 from braggstrain.prepare import scan as pr
@@ -151,13 +152,13 @@ def _fit(so, sc):
         dd = np.empty(len(normals))
         for k, (i, j) in enumerate(pairs):
             dd[i] = dd[j] = p[6 + k]
-        poly = fw.Polyhedron(normals @ fw.rotation_matrix(p[:3]).T, dd, sc["center"] + p[3:6])
+        poly = fw.Polyhedron(normals @ rotation_from_rotvec(p[:3]).T, dd, sc["center"] + p[3:6])
         return p[-2] * poly.density(coords, edge_width=abs(p[-1]))
 
     p0 = np.r_[np.zeros(6), [sc["d"][i] for i, _ in pairs], 1.0, float(np.mean(so.voxel_size))]
     scale = np.r_[[0.01] * 3, [10.0] * 3, [10.0] * len(pairs), 0.1, 10.0]
     p = least_squares(lambda q: (model(q) - a).ravel(), p0, x_scale=scale, diff_step=1e-3).x
-    return dict(rotation=fw.rotation_matrix(p[:3]), center=sc["center"] + p[3:6], ff=2 * p[6:6 + len(pairs)])
+    return dict(rotation=rotation_from_rotvec(p[:3]), center=sc["center"] + p[3:6], ff=2 * p[6:6 + len(pairs)])
 
 
 def _edges(ff, kind):

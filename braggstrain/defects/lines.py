@@ -49,6 +49,7 @@ from scipy.spatial import cKDTree
 
 from braggstrain import _validate as _v
 from braggstrain.geometry.crystal import format_hkl
+from braggstrain.geometry.orientation import orientation_from_reflections
 from braggstrain.errors import InputError
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.fields import trusted_for_windings
@@ -58,7 +59,6 @@ __all__ = [
     "Dislocation",
     "BurgersWarning",
     "vortex_map",
-    "orientation_from_reflections",
     "find_dislocations",
     "solve_burgers",
     "format_lattice_vector",
@@ -308,44 +308,6 @@ def vortex_map(obj, support, *, amplitude_threshold=0.1, dilation=2):
 # --------------------------------------------------------------------------
 # orientation and Burgers vectors
 # --------------------------------------------------------------------------
-
-def orientation_from_reflections(crystal, hkls, g_vectors, tolerance=0.03):
-    """Rotation U (crystal Cartesian → sample) that best maps U·B·h_j onto G_j.
-
-    The orthogonal Procrustes (Kabsch) solution through the SVD of
-    Σ G_j (B h_j)ᵀ (Kabsch, Acta Cryst. A32, 922, 1976).
-
-    Parameters
-    ----------
-    crystal : braggstrain.crystal.Crystal
-    hkls : (J, 3) ints
-    g_vectors : (J, 3) floats, Å⁻¹, sample frame
-    tolerance : float
-        Largest accepted relative mismatch |U·B·h_j − G_j| / |G_j|.
-
-    Returns
-    -------
-    (3, 3) ndarray, or None when the reflections do not fix an orientation
-    (fewer than two non-parallel ones).
-    """
-    H = np.asarray(hkls, float).reshape(-1, 3)
-    G = np.asarray(g_vectors, float).reshape(-1, 3)
-    P = H @ crystal.B.T  # B·h_j as rows, crystal Cartesian
-    if np.linalg.matrix_rank(P, tol=1e-6 * np.abs(P).max()) < 2:
-        return None
-    M = G.T @ P
-    V, _, Wt = np.linalg.svd(M)
-    D = np.diag([1.0, 1.0, np.sign(np.linalg.det(V @ Wt))])
-    U = V @ D @ Wt
-    mis = np.linalg.norm(P @ U.T - G, axis=1) / np.linalg.norm(G, axis=1)
-    if np.any(mis > tolerance):
-        j = int(np.argmax(mis))
-        raise InputError(
-            f"g_vectors: reflection {tuple(int(v) for v in H[j])} does not match the crystal "
-            f"{crystal.name}: |U·B·h − G|/|G| = {mis[j]:.3f} (expected ≤ {tolerance}); check the "
-            f"Miller indices, their order, and the lattice parameters")
-    return U
-
 
 def solve_burgers(hkls, windings, crystal, max_length=None):
     """Burgers vector from the windings: least squares of h_j·b = −n_j, then

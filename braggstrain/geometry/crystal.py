@@ -17,8 +17,8 @@ import numpy as np
 
 from braggstrain.errors import InputError, ReflectionError, did_you_mean
 
-__all__ = ["HC_KEV_ANGSTROM", "wavelength", "format_hkl", "Crystal", "orientation_from_two_reflections",
-           "check_reflection_identity", "Q_TOLERANCE", "DIRECTION_TOLERANCE_DEG"]
+__all__ = ["HC_KEV_ANGSTROM", "wavelength", "format_hkl", "Crystal", "check_reflection_identity", "Q_TOLERANCE",
+           "DIRECTION_TOLERANCE_DEG"]
 
 #: Default tolerances of :func:`check_reflection_identity` (common practice,
 #: no source): 1 % in |Q| is about ten times a typical nanocrystal's strain
@@ -63,6 +63,12 @@ _EXTRA_ELEMENTS = {
 }
 
 
+def _orientation():
+    from braggstrain.geometry import orientation
+
+    return orientation
+
+
 def _extra_material(name):
     import xrayutilities as xu
 
@@ -94,45 +100,6 @@ def format_hkl(hkl):
     """Miller indices as text, e.g. "(1 -1 0)": the one way reflections are
     named in messages, tables, figures and the report."""
     return "(" + " ".join(str(int(round(v))) for v in np.asarray(hkl).reshape(-1)) + ")"
-
-
-def _rotation_check(U, name="orientation"):
-    U = np.asarray(U, dtype=float)
-    if U.shape != (3, 3) or not np.all(np.isfinite(U)):
-        raise InputError(f"{name}: expected a 3×3 rotation matrix, got shape {U.shape}")
-    if not np.allclose(U @ U.T, np.eye(3), atol=1e-6) or np.linalg.det(U) < 0:
-        raise InputError(f"{name}: the matrix is not a proper rotation (UUᵀ ≠ I or det < 0)")
-    return U
-
-
-def orientation_from_two_reflections(g1_crystal, g2_crystal, d1_sample, d2_sample):
-    """Rotation U with U·g1 ∥ d1 and U·g2 in the plane of (d1, d2).
-
-    The usual two-reflection orientation (Busing & Levy, Acta Cryst. 22, 457,
-    1967, eqs. 23-27): an orthonormal triad is built from each pair and U maps
-    one onto the other; the first reflection is matched exactly.
-
-    Parameters
-    ----------
-    g1_crystal, g2_crystal : 3 floats
-        The two reflections' G in crystal Cartesian coordinates (any length).
-    d1_sample, d2_sample : 3 floats
-        Their measured directions in the sample frame (any length).
-    """
-    def triad(a, b):
-        a = np.asarray(a, float)
-        b = np.asarray(b, float)
-        t1 = a / np.linalg.norm(a)
-        t3 = np.cross(a, b)
-        n3 = np.linalg.norm(t3)
-        if n3 < 1e-9 * np.linalg.norm(a) * np.linalg.norm(b):
-            raise InputError("orientation: the two reflections are parallel; pick two non-collinear ones")
-        t3 = t3 / n3
-        return np.column_stack([t1, np.cross(t3, t1), t3])
-
-    Tc = triad(g1_crystal, g2_crystal)
-    Ts = triad(d1_sample, d2_sample)
-    return Ts @ Tc.T
 
 
 @dataclass(frozen=True)
@@ -184,7 +151,7 @@ class Crystal:
         self.space_group = sg
         self.centring = self._centring_from_symbol(mat)
         self._explicit = False
-        self.U = np.eye(3) if orientation is None else _rotation_check(orientation)
+        self.U = np.eye(3) if orientation is None else _orientation().check_rotation(orientation)
         self._finish()
 
     @classmethod
@@ -214,7 +181,7 @@ class Crystal:
         self.centring = centring
         self._explicit = True
         self._poisson = poisson
-        self.U = np.eye(3) if orientation is None else _rotation_check(orientation)
+        self.U = np.eye(3) if orientation is None else _orientation().check_rotation(orientation)
         self._finish()
         return self
 
@@ -239,13 +206,13 @@ class Crystal:
         """A copy of this crystal with orientation U (crystal → sample)."""
         new = object.__new__(type(self))
         new.__dict__.update(self.__dict__)
-        new.U = _rotation_check(U)
+        new.U = _orientation().check_rotation(U)
         return new
 
     def oriented_by(self, hkl1, direction1, hkl2, direction2):
         """A copy oriented so reflection hkl1 points along sample-frame
         ``direction1`` and hkl2 lies in the plane of (direction1, direction2)."""
-        U = orientation_from_two_reflections(self.g_crystal(hkl1), self.g_crystal(hkl2),
+        U = _orientation().orientation_from_two_reflections(self.g_crystal(hkl1), self.g_crystal(hkl2),
                                              direction1, direction2)
         return self.with_orientation(U)
 

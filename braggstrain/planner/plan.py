@@ -42,200 +42,20 @@ import numpy as np
 
 from braggstrain.geometry.crystal import HC_KEV_ANGSTROM, format_hkl
 from braggstrain.errors import ConfigError, GeometryError, InputError, ReflectionError
-from braggstrain.geometry.instrument import AXES, axis_rotation
+from braggstrain.geometry.orientation import (MeasuredReflection, mounting_matrix, orientation_from_euler,
+                                              orientation_from_measured)
+from braggstrain.geometry.rotation import AXES, axis_rotation, axis_vector
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS
 from braggstrain.strain.tensor import condition_number
 
 __all__ = [
-    "bunge_matrix", "mounting_matrix", "orientation_from_euler", "MeasuredReflection",
-    "orientation_from_measured", "CountModel", "PlanOptions", "ReflectionPlan", "SetScore",
+    "CountModel", "PlanOptions", "ReflectionPlan", "SetScore",
     "PlanResult", "reach", "set_travel", "score_set", "choose_set", "plan",
     "stereographic", "plot_plan", "fragment_text", "format_plan_table", "plan_from_config",
 ]
 
 
 _CONVERGED = 1e-9  # Å⁻¹, |Q − G| accepted as the Bragg condition (as solve_bragg)
-
-
-# ---------------------------------------------------------------------------
-# Orientation
-# ---------------------------------------------------------------------------
-
-def bunge_matrix(euler_deg):
-    """Rotation g (specimen → crystal) of Bunge Euler angles (φ1, Φ, φ2), degrees.
-
-    The passive rotation g = R_z(φ2)·R_x(Φ)·R_z(φ1) of Bunge's convention
-    (H.-J. Bunge, Texture Analysis in Materials Science, 1982, ch. 2), with
-    R_z(a) = [[cos a, sin a, 0], [−sin a, cos a, 0], [0, 0, 1]] and R_x
-    alike: a vector with specimen components v_s has crystal components
-    g·v_s. The rows of g are the crystal axes in specimen coordinates, its
-    third column the specimen normal (ND) in crystal coordinates.
-    """
-    e = np.asarray(euler_deg, dtype=float).reshape(-1)
-    if e.shape != (3,) or not np.all(np.isfinite(e)):
-        raise InputError(f"euler_deg: expected three finite Bunge angles (φ1, Φ, φ2) in degrees, got {euler_deg!r}")
-    p1, P, p2 = np.radians(e)
-
-    def rz(a):
-        c, s = math.cos(a), math.sin(a)
-        return np.array([[c, s, 0.0], [-s, c, 0.0], [0.0, 0.0, 1.0]])
-
-    def rx(a):
-        c, s = math.cos(a), math.sin(a)
-        return np.array([[1.0, 0.0, 0.0], [0.0, c, s], [0.0, -s, c]])
-
-    return rz(p2) @ rx(P) @ rz(p1)
-
-
-def mounting_matrix(spec, key="plan.orientation.mounting"):
-    """Rotation M (specimen → sample frame) from the mounting in the pipeline file.
-
-    Parameters
-    ----------
-    spec : None, three axis names, or a 3×3 matrix
-        Three axis names such as ``["x+", "y+", "z+"]`` say along which
-        sample-frame axes the specimen's RD, TD and ND (the axes of the Euler
-        angles) point; a matrix gives RD, TD, ND as its columns. None is the
-        identity.
-    key : where the value came from, for error messages
-    """
-    if spec is None:
-        return np.eye(3)
-    if isinstance(spec, (list, tuple)) and len(spec) == 3 and all(isinstance(s, str) for s in spec):
-        cols = []
-        for i, s in enumerate(spec):
-            if len(s) != 2 or s[0] not in AXES or s[1] not in "+-":
-                raise ConfigError(f"{key}[{i}] = {s!r}: expected an axis name x+, x-, y+, y-, z+ or z-")
-            cols.append(AXES[s[0]] * (1.0 if s[1] == "+" else -1.0))
-        M = np.column_stack(cols)
-    else:
-        try:
-            M = np.asarray(spec, dtype=float)
-        except (TypeError, ValueError):
-            raise ConfigError(f"{key}: expected three axis names or a 3×3 matrix, got {spec!r}") from None
-        if M.shape != (3, 3) or not np.all(np.isfinite(M)):
-            raise ConfigError(f"{key}: expected three axis names or a 3×3 matrix, got shape {M.shape}")
-    if not np.allclose(M.T @ M, np.eye(3), atol=1e-6) or np.linalg.det(M) < 0:
-        raise ConfigError(f"{key}: the specimen axes RD, TD, ND must form a right-handed orthonormal triad "
-                          f"(a proper rotation); got {np.round(M, 6).tolist()}")
-    return M
-
-
-def orientation_from_euler(euler_deg, mounting=None):
-    """U (crystal Cartesian → sample frame) from Bunge Euler angles (degrees).
-
-    U = M·gᵀ: gᵀ takes crystal coordinates to the specimen frame (RD, TD, ND)
-    and M (:func:`mounting_matrix`) places the specimen frame in the sample
-    frame. The crystal Cartesian frame is braggstrain's (a along x, b in the
-    xy plane), which for cubic crystals is the usual EBSD crystal frame; for
-    other lattices check your EBSD software's convention.
-    """
-    M = mounting if isinstance(mounting, np.ndarray) and mounting.shape == (3, 3) else mounting_matrix(mounting)
-    return M @ bunge_matrix(euler_deg).T
-
-
-@dataclass(frozen=True)
-class MeasuredReflection:
-    """A reflection found on the diffractometer.
-
-    Attributes
-    ----------
-    hkl : Miller indices
-    angles_deg : mapping circle name → degrees, every circle of the instrument
-    pixel : (row, column) where the peak was centred (default: direct-beam pixel)
-    """
-
-    hkl: tuple
-    angles_deg: Mapping
-    pixel: tuple | None = None
-
-
-def _measured_direction(instrument, m, key):
-    """Unit sample-frame direction and |Q| of a measured reflection."""
-    try:
-        angles = {n: float(v) for n, v in dict(m.angles_deg).items()}
-    except (TypeError, ValueError):
-        raise ConfigError(f"{key}.angles: expected a table circle name → degrees") from None
-    names = [c.name for c in instrument.circles]
-    unknown = sorted(set(angles) - set(names))
-    if unknown:
-        raise ConfigError(f"{key}.angles: unknown circle(s) {unknown}; the instrument's circles are {names}")
-    missing = [n for n in names if n not in angles]
-    if missing:
-        raise ConfigError(f"{key}.angles: missing circle(s) {missing}; expected an angle for every circle {names}")
-    pix = instrument.detector.direct_beam if m.pixel is None else m.pixel
-    q_lab = instrument.q_lab_of_pixel(float(pix[0]), float(pix[1]), angles)
-    q = instrument.sample_rotation(angles).T @ q_lab
-    return q / np.linalg.norm(q), float(np.linalg.norm(q))
-
-
-def orientation_from_measured(crystal, instrument, measured, key="plan.orientation.measured"):
-    """U from reflections found on the diffractometer.
-
-    Each reflection's G direction in the sample frame is R_sᵀ·Q_lab of its
-    peak pixel at its angles. With two reflections U is the usual
-    two-reflection orientation (Busing & Levy, Acta Cryst. 22, 457, 1967;
-    :func:`braggstrain.crystal.orientation_from_two_reflections`): the first
-    reflection is matched exactly. With three or more, U is the rotation that
-    best fits all directions in the least-squares sense (Wahba's problem,
-    SIAM Review 7, 409, 1965), solved by scipy's ``Rotation.align_vectors``.
-
-    Returns
-    -------
-    U : (3, 3) ndarray
-    residual_deg : (n,) ndarray, angle between U·B·h and each measured direction
-
-    Raises
-    ------
-    ConfigError
-        if fewer than two reflections are given, a reflection is forbidden,
-        its measured |Q| differs from |G| by more than 2 % (wrong hkl, energy
-        or angles), or two measured directions disagree with the lattice's
-        interplanar angle by more than 2°.
-    """
-    from scipy.spatial.transform import Rotation
-
-    from braggstrain.geometry.crystal import orientation_from_two_reflections
-
-    measured = list(measured)
-    if len(measured) < 2:
-        raise ConfigError(f"{key}: expected at least two measured reflections, got {len(measured)}")
-    dirs, gcs = [], []
-    for i, m in enumerate(measured):
-        k = f"{key}[{i}]"
-        try:
-            refl = crystal.reflection(m.hkl)
-        except ReflectionError as e:
-            raise ConfigError(f"{k}.hkl: {e}") from None
-        d, qn = _measured_direction(instrument, m, k)
-        gn = float(np.linalg.norm(refl.g_crystal))
-        # 2 %: far beyond any strain of a crystal, far below the step between
-        # neighbouring reflections (common practice, no source).
-        if abs(qn / gn - 1) > 0.02:
-            raise ConfigError(f"{k}: measured |Q| = {qn:.4f} Å⁻¹ differs from |G{format_hkl(refl.hkl)}| = {gn:.4f} Å⁻¹ "
-                              f"by {100 * abs(qn / gn - 1):.1f} %; expected the same within 2 % "
-                              f"(check hkl, energy and angles)")
-        dirs.append(d)
-        gcs.append(refl.g_crystal / gn)
-    dirs, gcs = np.array(dirs), np.array(gcs)
-    for i, j in itertools.combinations(range(len(dirs)), 2):
-        a_meas = math.degrees(math.acos(np.clip(dirs[i] @ dirs[j], -1, 1)))
-        a_lat = math.degrees(math.acos(np.clip(gcs[i] @ gcs[j], -1, 1)))
-        if abs(a_meas - a_lat) > 2.0:
-            raise ConfigError(f"{key}[{i}] and [{j}]: measured angle between the reflections {a_meas:.2f}° differs "
-                              f"from the lattice's {a_lat:.2f}°; expected agreement within 2° "
-                              f"(check hkl and angles)")
-    if len(dirs) == 2:
-        try:
-            U = orientation_from_two_reflections(gcs[0], gcs[1], dirs[0], dirs[1])
-        except InputError as e:
-            raise ConfigError(f"{key}: {e}") from None
-    else:
-        rot, _ = Rotation.align_vectors(dirs, gcs)
-        U = rot.as_matrix()
-    fit = (U @ gcs.T).T
-    res = np.degrees(np.arctan2(np.linalg.norm(np.cross(fit, dirs), axis=1), np.einsum("ij,ij->i", fit, dirs)))
-    return U, res
 
 
 # ---------------------------------------------------------------------------
@@ -468,7 +288,7 @@ class PlanResult:
 class _Geometry:
     """The diffractometer as vectors and index lists, for the batched solver.
 
-    Uses the instrument's own rotations (:func:`braggstrain.instrument.axis_rotation`,
+    Uses the instrument's own rotations (:func:`braggstrain.geometry.rotation.axis_rotation`,
     outermost circle first) and pixel direction, so a solution here is a
     solution of :meth:`Diffractometer.solve_bragg`'s equations.
     """
@@ -478,11 +298,11 @@ class _Geometry:
         self.names = [c.name for c in instrument.circles]
         self.ns = len(instrument.sample_circles)
         self.specs = [c.axis for c in instrument.circles]
-        self.axes = np.array([AXES[s[0]] * (1.0 if s[1] == "+" else -1.0) for s in self.specs])
+        self.axes = np.array([axis_vector(s) for s in self.specs])
         self.limits = np.radians(np.array([c.limits for c in instrument.circles], float))
         self.k = instrument.k
         b = instrument.beam
-        self.beam = AXES[b[0]] * (1.0 if b[1] == "+" else -1.0)
+        self.beam = axis_vector(b)
         pix = instrument.detector.direct_beam if options.pixel is None else options.pixel
         self.pixel = (float(pix[0]), float(pix[1]))
         self.p0 = instrument.pixel_directions(np.array([self.pixel[0]]), np.array([self.pixel[1]]))[:, 0]
@@ -1078,7 +898,7 @@ def choose_set(reflections, n, max_travel_deg=None, exhaustive_limit=2_000_000, 
 
 
 def _assign_weights(refls, instrument, count_model):
-    beam = AXES[instrument.beam[0]] * (1.0 if instrument.beam[1] == "+" else -1.0)
+    beam = axis_vector(instrument.beam)
     for r in refls:
         if not np.isfinite(r.two_theta_deg):
             continue

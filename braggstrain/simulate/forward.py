@@ -27,6 +27,7 @@ from typing import Sequence
 import numpy as np
 
 from braggstrain.errors import InputError
+from braggstrain.geometry.rotation import rotation_from_rotvec
 
 __all__ = [
     "grid_coordinates",
@@ -44,7 +45,6 @@ __all__ = [
     "DislocationLoop",
     "FieldSum",
     "complex_object",
-    "rotation_matrix",
     "SimulatedScan",
     "detector_frame_grid",
     "simulate_scan",
@@ -324,17 +324,6 @@ class UniformStrain(_Field):
         return np.broadcast_to(self.tensor.reshape((3, 3) + (1,) * len(shape)), (3, 3) + shape).copy()
 
 
-def rotation_matrix(rotvec):
-    """Rotation matrix of a rotation vector (axis × angle in radians), Rodrigues' formula."""
-    v = np.asarray(rotvec, dtype=float)
-    angle = np.linalg.norm(v)
-    if angle == 0:
-        return np.eye(3)
-    k = v / angle
-    K = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-    return np.eye(3) + np.sin(angle) * K + (1 - np.cos(angle)) * K @ K
-
-
 @dataclass
 class RigidRotation(_Field):
     """Rigid rotation of the lattice about ``origin``: u = (R − I)(r − r0)."""
@@ -343,11 +332,11 @@ class RigidRotation(_Field):
     origin: Sequence[float] = (0.0, 0.0, 0.0)
 
     def displacement(self, coords):
-        R = rotation_matrix(self.rotvec)
+        R = rotation_from_rotvec(self.rotvec)
         return UniformStrain(R - np.eye(3), self.origin).displacement(coords)
 
     def gradient(self, coords, step=None):
-        R = rotation_matrix(self.rotvec)
+        R = rotation_from_rotvec(self.rotvec)
         return UniformStrain(R - np.eye(3), self.origin).gradient(coords)
 
 
