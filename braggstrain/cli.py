@@ -320,8 +320,9 @@ def cmd_demo(args):
 
 def cmd_prepare(args):
     from braggstrain.config import load_config
+    from braggstrain.io.prepared import write_prepared
     from braggstrain.pipeline import _prepare_options, _scan_for, check_options
-    from braggstrain.prepare.scan import prepare_scan, summarize_prepared, write_prepared
+    from braggstrain.prepare.scan import prepare_scan, summarize_prepared
 
     cfg = load_config(args.config)
     opts = check_options(cfg)
@@ -343,7 +344,7 @@ def cmd_report(args):
     from braggstrain.io import results as outputs
     from braggstrain.report import html as report
 
-    from braggstrain.io.scans import remove_partial_files
+    from braggstrain.io.files import remove_partial_files
     from braggstrain.pipeline import check_output_folder
 
     results = outputs.read_results(args.results)

@@ -13,6 +13,7 @@ __all__ = [
     "did_you_mean",
     "BraggStrainError",
     "InputError",
+    "FileFormatError",
     "ScanFileError",
     "ConfigError",
     "ReflectionError",
@@ -31,8 +32,8 @@ class InputError(BraggStrainError, ValueError):
     """An array or argument given to a stage is not what the stage expects."""
 
 
-class ScanFileError(InputError):
-    """A scan file is missing, corrupt, or lacks a field, or a field is malformed.
+class FileFormatError(InputError):
+    """A file is missing, corrupt, of another format or version, or lacks a field.
 
     The message always names the file and the field.
     """
@@ -42,6 +43,11 @@ class ScanFileError(InputError):
         self.field = field
         self.expected = expected
         super().__init__(f"{self.path}: field '{field}': {expected}")
+
+
+class ScanFileError(FileFormatError):
+    """A scan file (or a prepared scan) is missing, corrupt, or lacks a field,
+    or a field is malformed."""
 
 
 class ConfigError(InputError):

@@ -38,6 +38,8 @@ from braggstrain.errors import (BraggStrainError, ConfigError, InputError, Outpu
 from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_RUNS
 from braggstrain.strain.objects import SampleObject
 from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
+from braggstrain.io.dislocations import write_dislocation_table
+from braggstrain.io.prepared import read_prepared, write_prepared
 
 __all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES",
            "estimate_output_bytes", "check_output_folder"]
@@ -97,7 +99,6 @@ def check_options(cfg):
     """
     from braggstrain.defects import lines as defects
     from braggstrain.strain import frame
-    from braggstrain.prepare import scan as prepare
     from braggstrain.prepare import regrid
     from braggstrain.strain import tensor
     from braggstrain.phasing import options_from_config
@@ -598,7 +599,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                           f"(condition number {cond:.3g} > {max_cond:g}); expected three or more non-coplanar")
     # the output folder: writable, no stale partial files of an earlier killed run
     check_output_folder(out)
-    from braggstrain.io.scans import remove_partial_files
+    from braggstrain.io.files import remove_partial_files
 
     stale = remove_partial_files(out)
     if stale:
@@ -653,7 +654,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             prepared = None
             if resume and pp.exists():
                 try:
-                    prepared = prp.read_prepared(pp)
+                    prepared = read_prepared(pp)
                     run.reused.append(f"prepare:{name}")
                 except BraggStrainError:
                     prepared = None
@@ -673,7 +674,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     for (prepared, _, pp), name in zip(prepared_all, names):
         if not pp.exists():
             run.ck.mkdir(parents=True, exist_ok=True)
-            prp.write_prepared(prepared, pp)
+            write_prepared(prepared, pp)
 
     te_all = opts["tensor"]
     n_rep = int(te_all.get("replicas", DEFAULT_REPLICAS))
@@ -828,8 +829,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             paths["figures"] = figs
         if ou.get("vtk", True):
             paths["vtk"] = outp.export_vtk(results, out / "vtk")
-        paths["dislocations"] = [dfx.write_dislocation_table(dislocations, out / "dislocations.csv"),
-                                 dfx.write_dislocation_table(dislocations, out / "dislocations.json")]
+        paths["dislocations"] = [write_dislocation_table(dislocations, out / "dislocations.csv"),
+                                 write_dislocation_table(dislocations, out / "dislocations.json")]
         # the outputs stage's own time, up to the report (which shows it)
         timings = dict(run.timings)
         timings["outputs"] = timings.get("outputs", 0.0) + time.perf_counter() - t_out

@@ -62,7 +62,7 @@ def test_simulate_and_inspect(tmp_path, small_config, capsys):
     assert "after preparation" in text and "oversampling" in text
     # `prepare` writes the prepared data of every scan
     assert main(["-q", "prepare", str(out / "pipeline.toml"), "--out", str(tmp_path / "prep")]) == 0
-    from braggstrain.prepare.scan import read_prepared
+    from braggstrain.io.prepared import read_prepared
 
     files = sorted((tmp_path / "prep").glob("*_prepared.h5"))
     assert len(files) == 4

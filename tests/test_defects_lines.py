@@ -37,19 +37,11 @@ from scipy.spatial.transform import Rotation
 from braggstrain.phasing.metrics import far_field
 from braggstrain.simulate import forward as fw
 from braggstrain.geometry.crystal import Crystal
-from braggstrain.defects.lines import (
-    BurgersWarning,
-    Dislocation,
-    find_dislocations,
-    format_lattice_vector,
-    read_dislocations_h5,
-    solve_burgers,
-    vortex_map,
-    write_dislocation_table,
-    write_dislocations_h5,
-)
+from braggstrain.defects.burgers import format_lattice_vector, solve_burgers
+from braggstrain.defects.lines import BurgersWarning, Dislocation, find_dislocations
+from braggstrain.defects.vortices import vortex_map
+from braggstrain.io.dislocations import read_dislocations_h5, write_dislocation_table, write_dislocations_h5
 from braggstrain.errors import InputError
-from braggstrain.geometry.orientation import orientation_from_reflections
 from braggstrain.strain.objects import SampleObject
 
 VS = 30.0  # voxel edge, Å

@@ -5,7 +5,6 @@ import pytest
 import xrayutilities as xu
 
 from braggstrain.geometry.crystal import Crystal, HC_KEV_ANGSTROM, wavelength
-from braggstrain.geometry.orientation import orientation_from_two_reflections
 from braggstrain.errors import InputError, ReflectionError
 
 # Room-temperature lattice parameters (Å), from memory of the standard tables

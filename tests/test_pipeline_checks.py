@@ -595,7 +595,7 @@ def test_atomic_write_fails_on_a_full_disk_reported_only_on_release(tmp_path):
     from types import SimpleNamespace
 
     from braggstrain.errors import OutputError
-    from braggstrain.io.scans import atomic_path
+    from braggstrain.io.files import atomic_path
 
     target = tmp_path / "r.h5"
     target.write_bytes(b"earlier")

@@ -12,6 +12,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
+from braggstrain.io.prepared import read_prepared, write_prepared
 from braggstrain.simulate import forward as fw
 from braggstrain.prepare import scan as pr
 from braggstrain.geometry.crystal import Crystal
@@ -235,8 +236,8 @@ def test_summary_lines(prepared):
 
 def test_write_read_round_trip(tmp_path, prepared):
     path = tmp_path / "out" / "cube_prepared.h5"
-    pr.write_prepared(prepared, path)
-    back = pr.read_prepared(path)
+    write_prepared(prepared, path)
+    back = read_prepared(path)
     np.testing.assert_array_equal(back.intensity, prepared.intensity)
     np.testing.assert_array_equal(back.mask, prepared.mask)
     for name in ("linear_map", "q_center", "rotation", "center_index", "crop", "binning", "padding",
@@ -249,16 +250,16 @@ def test_write_read_round_trip(tmp_path, prepared):
     # no temporary file is left beside the output
     assert [p.name for p in path.parent.iterdir()] == [path.name]
     # overwriting goes through a temporary file too, and a foreign file is refused
-    pr.write_prepared(prepared, path)
+    write_prepared(prepared, path)
     import h5py
 
     bad = tmp_path / "foreign.h5"
     with h5py.File(bad, "w") as f:
         f.attrs["format"] = "something-else"
     with pytest.raises(ScanFileError, match=r"foreign\.h5.*'@format'"):
-        pr.read_prepared(bad)
+        read_prepared(bad)
     with pytest.raises(ScanFileError, match="file not found"):
-        pr.read_prepared(tmp_path / "missing.h5")
+        read_prepared(tmp_path / "missing.h5")
 
 
 # --------------------------------------------------------------------------

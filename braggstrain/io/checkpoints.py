@@ -15,11 +15,14 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain.errors import BraggStrainError
-from braggstrain.io.scans import atomic_path, nbytes_of
+from braggstrain.io.files import atomic_path, mark_version, nbytes_of, open_versioned
 
 __all__ = ["save_tree", "load_tree", "hash_inputs", "file_digest"]
 
 _KIND = "__kind__"
+#: Version marker of a checkpoint file (:mod:`braggstrain.io.files`); the
+#: version is :data:`CHECKPOINT_FORMAT`.
+CHECKPOINT_NAME = "braggstrain-checkpoint"
 
 
 def _is_plain(v):
@@ -95,6 +98,7 @@ def save_tree(path, tree, attrs=None):
 
     with atomic_path(path, size_hint=nbytes_of(tree)) as tmp:
         with h5py.File(tmp, "w") as f:
+            mark_version(f, CHECKPOINT_NAME, CHECKPOINT_FORMAT)
             for k, v in (attrs or {}).items():
                 f.attrs[k] = v
             f.attrs[_KIND] = "dict"
@@ -106,9 +110,7 @@ def save_tree(path, tree, attrs=None):
 
 def load_tree(path):
     """Read a tree written by :func:`save_tree` (returns (tree, root attrs))."""
-    import h5py
-
-    with h5py.File(path, "r") as f:
+    with open_versioned(path, CHECKPOINT_NAME, CHECKPOINT_FORMAT) as f:
         if int(f.attrs.get("complete", 0)) != 1:
             raise BraggStrainError(f"{path}: checkpoint is incomplete")
         attrs = {k: v for k, v in f.attrs.items()}

@@ -38,7 +38,7 @@ from typing import Any, TypedDict
 import numpy as np
 
 from braggstrain.errors import BraggStrainError, InputError, OutputError
-from braggstrain.io.scans import atomic_path, disk_full_message, is_disk_full, nbytes_of
+from braggstrain.io.files import atomic_path, disk_full_message, is_disk_full, nbytes_of
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.components import (STRAIN_COMPONENTS, gradient_from, strain_components,
                                            strain_from_components)
@@ -563,7 +563,7 @@ def write_results(path, results):
     """
     import h5py
 
-    from braggstrain.defects.lines import write_dislocations_h5
+    from braggstrain.io.dislocations import write_dislocations_h5
 
     r = check_results(results)
     path = Path(path)
@@ -794,7 +794,7 @@ def read_results(path):
     """
     import h5py
 
-    from braggstrain.defects.lines import read_dislocations_h5
+    from braggstrain.io.dislocations import read_dislocations_h5
     from braggstrain.strain.tensor import TensorField
 
     path = Path(path)

@@ -21,23 +21,16 @@ file that is renamed into place, so an earlier file is never half-overwritten.
 
 from __future__ import annotations
 
-import errno
-import os
-import re
-import shutil
-import sys
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 
-from braggstrain.errors import OutputError, ScanFileError
+from braggstrain.errors import ScanFileError
 from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
+from braggstrain.io.files import atomic_path, mark_version, open_versioned
 
-__all__ = ["FORMAT_NAME", "FORMAT_VERSION", "Scan", "write_scan", "read_scan",
-           "read_frame_stack", "atomic_path", "open_versioned", "remove_partial_files",
-           "disk_full_message", "is_disk_full", "nbytes_of", "PARTIAL_PATTERN"]
+__all__ = ["FORMAT_NAME", "FORMAT_VERSION", "Scan", "write_scan", "read_scan", "read_frame_stack"]
 
 FORMAT_NAME = "braggstrain-scan"
 FORMAT_VERSION = 1
@@ -86,185 +79,6 @@ class Scan:
         return float(np.mean(np.diff(a))) if len(a) > 1 else 0.0
 
 
-#: Temporary files of :class:`atomic_path`: ``.<name>.<8 random>.part<suffix>``
-#: beside the target (``tempfile.mkstemp``'s random part: 8 of [a-z0-9_]).
-PARTIAL_PATTERN = re.compile(r"^\.(?P<target>.+)\.[a-z0-9_]{8}\.part(\.[A-Za-z0-9]+)?$")
-#: Work folders of the VTK export (``.<stem>.vtk.<8 random>``, ``tempfile.mkdtemp``).
-PARTIAL_DIR_PATTERN = re.compile(r"^\.[A-Za-z0-9_-]+\.vtk\.[a-z0-9_]{8}$")
-
-
-def is_disk_full(exc):
-    """True for an OSError (or an HDF5 error wrapping one) meaning no space left."""
-    if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, getattr(errno, "EDQUOT", -1)):
-        return True
-    text = str(exc)
-    return isinstance(exc, (OSError, RuntimeError)) and ("No space left" in text or "errno = 28" in text
-                                                         or "Disk quota exceeded" in text)
-
-
-def _mb(nbytes):
-    return f"{nbytes / 1e6:.1f} MB" if nbytes >= 1e5 else f"{max(nbytes, 1e3) / 1e3:.0f} kB"
-
-
-def nbytes_of(value):
-    """Bytes of every array in a nested structure (dicts, lists, dataclasses):
-    about what a file holding it needs before compression (a size hint for
-    :class:`atomic_path`)."""
-    if isinstance(value, np.ndarray):
-        return int(value.nbytes)
-    if isinstance(value, dict):
-        return sum(nbytes_of(v) for v in value.values())
-    if isinstance(value, (list, tuple)):
-        return sum(nbytes_of(v) for v in value)
-    if hasattr(value, "__dataclass_fields__"):
-        return sum(nbytes_of(getattr(value, k)) for k in value.__dataclass_fields__)
-    return 0
-
-
-def disk_full_message(path, needed=None):
-    """The one line of a full disk: which file, how much it needs, what is left."""
-    path = Path(path)
-    try:
-        free = shutil.disk_usage(path.parent if path.parent.exists() else ".").free
-    except OSError:
-        free = None
-    need = f"it needs about {_mb(needed)}" if needed else "it needs more space"
-    left = f"{_mb(free)} left on {path.parent}" if free is not None else f"space left on {path.parent} unknown"
-    return (f"{path}: disk full while writing ({need}, {left}); earlier files are untouched; free some "
-            f"space or write elsewhere")
-
-
-def _release_full_file(tmp):
-    """After a full disk: free the partial file's space at once (it is
-    removed next, but a library may still hold it open)."""
-    try:
-        os.truncate(tmp, 0)
-    except OSError:
-        pass
-
-
-class atomic_path:
-    """Context manager giving a temporary path beside ``path`` that is renamed
-    onto ``path`` on success and removed on failure.
-
-    A full disk (ENOSPC, also inside HDF5's own errors) becomes one
-    :class:`~braggstrain.errors.OutputError` naming the file, about how much
-    it needed (``size_hint`` in bytes, or what was written when it failed) and
-    how much is left; the earlier file at ``path`` stays as it was."""
-
-    def __init__(self, path, suffix=None, size_hint=None):
-        self.path = Path(path)
-        self.suffix = suffix if suffix is not None else self.path.suffix
-        self.size_hint = size_hint
-
-    def __enter__(self):
-        self.path.parent.mkdir(parents=True, exist_ok=True)
-        if self.size_hint:
-            try:
-                free = shutil.disk_usage(self.path.parent).free
-            except OSError:
-                free = None
-            if free is not None and free < self.size_hint:
-                raise OutputError(disk_full_message(self.path, self.size_hint).replace(
-                    "disk full while writing", "not enough space to write"))
-        try:
-            fd, tmp = tempfile.mkstemp(prefix="." + self.path.name + ".", suffix=".part" + self.suffix,
-                                       dir=self.path.parent)
-        except OSError as e:
-            if is_disk_full(e):
-                raise OutputError(disk_full_message(self.path, self.size_hint)) from None
-            raise
-        os.close(fd)
-        self.tmp = Path(tmp)
-        # HDF5 reports some failed writes only where h5py releases an object,
-        # as "unraisable" exceptions: a full disk there must fail the write too
-        self._full = []
-        self._previous_hooks = sys.unraisablehook, sys.excepthook
-        sys.unraisablehook, sys.excepthook = self._unraisable, self._printed
-        return self.tmp
-
-    def _unraisable(self, info):
-        if is_disk_full(info.exc_value):
-            self._full.append(info.exc_value)
-        else:
-            self._previous_hooks[0](info)
-
-    def _printed(self, exc_type, value, tb):
-        # Cython prints the traceback of an error in a release (__dealloc__) this way
-        if is_disk_full(value):
-            self._full.append(value)
-        else:
-            self._previous_hooks[1](exc_type, value, tb)
-
-    def __exit__(self, exc_type, exc, tb):
-        full = (exc is not None and is_disk_full(exc)) or bool(self._full)
-        if full:
-            try:
-                self._written = self.tmp.stat().st_size
-            except OSError:
-                self._written = 0
-            _release_full_file(self.tmp)
-        else:
-            # after a full disk the filters stay: a library (HDF5) that could not
-            # flush the file retries and reports it at every later release
-            sys.unraisablehook, sys.excepthook = self._previous_hooks
-        if exc_type is None and not full:
-            umask = os.umask(0)
-            os.umask(umask)
-            try:
-                os.chmod(self.tmp, 0o666 & ~umask)
-                os.replace(self.tmp, self.path)
-            except OSError as e:
-                self._remove()
-                if is_disk_full(e):
-                    raise OutputError(disk_full_message(self.path, self.size_hint)) from None
-                raise
-            return False
-        written = max(self._remove(), getattr(self, "_written", 0))
-        if full:
-            # what it needs: the writer's estimate, else the file it replaces, else what got written
-            need = self.size_hint or (self.path.stat().st_size if self.path.is_file() else 0) or written or None
-            err = OutputError(disk_full_message(self.path, need))
-            # an HDF5 file that could not be flushed stays open inside the
-            # library, which may crash at interpreter exit: the command line
-            # then ends the process at once after its message
-            err.unclean_exit = "h5py" in sys.modules and isinstance(
-                exc if exc is not None else (self._full[0] if self._full else None), (OSError, RuntimeError)) \
-                and self.path.suffix in (".h5", ".hdf5", ".nxs")
-            raise err from None
-        return False
-
-    def _remove(self):
-        try:
-            size = self.tmp.stat().st_size
-            self.tmp.unlink()
-            return size
-        except FileNotFoundError:
-            return 0
-
-
-def remove_partial_files(folder, recursive=True):
-    """Remove the temporary files :class:`atomic_path` leaves when a process
-    is killed before it could clean up (``.<name>.<random>.part<suffix>``).
-
-    Only names of that pattern are touched. Returns the removed paths."""
-    folder = Path(folder)
-    if not folder.is_dir():
-        return []
-    removed = []
-    for p in sorted(folder.rglob(".*") if recursive else folder.glob(".*")):
-        try:
-            if p.is_file() and PARTIAL_PATTERN.match(p.name):
-                p.unlink()
-                removed.append(p)
-            elif p.is_dir() and PARTIAL_DIR_PATTERN.match(p.name):
-                shutil.rmtree(p)
-                removed.append(p)
-        except FileNotFoundError:
-            pass
-    return removed
-
-
 def write_scan(path, frames, angles, rocking_circle, instrument, mask=None, hkl=None, material=None,
                compression="gzip"):
     """Write one rocking scan to a braggstrain scan file (atomically).
@@ -285,8 +99,7 @@ def write_scan(path, frames, angles, rocking_circle, instrument, mask=None, hkl=
     frames = np.asarray(frames)
     with atomic_path(path) as tmp:
         with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = FORMAT_NAME
-            f.attrs["format_version"] = FORMAT_VERSION
+            mark_version(f, FORMAT_NAME, FORMAT_VERSION)
             d = f.create_dataset("frames", data=frames, compression=compression, chunks=(1,) + frames.shape[1:])
             d.attrs["units"] = "counts"
             if mask is not None:
@@ -343,35 +156,6 @@ def _attr(path, obj, name, where, kind=None, shape=None):
     return a
 
 
-def open_versioned(path, format_name, version):
-    """Open an HDF5 file of ours for reading after checking its root
-    attributes ``format`` and ``format_version``.
-
-    Raises ScanFileError naming the file and the field for a missing or
-    unreadable file, another format or another version."""
-    import h5py
-
-    path = str(path)
-    if not os.path.exists(path):
-        raise ScanFileError(path, "(file)", "file not found")
-    try:
-        f = h5py.File(path, "r")
-    except OSError as e:
-        raise ScanFileError(path, "(file)", f"not a readable HDF5 file ({e})") from None
-    try:
-        fmt = f.attrs.get("format")
-        fmt = fmt.decode() if isinstance(fmt, bytes) else fmt
-        if fmt != format_name:
-            raise ScanFileError(path, "@format", f"expected '{format_name}', got {fmt!r}")
-        ver = f.attrs.get("format_version")
-        if ver is None or int(ver) != version:
-            raise ScanFileError(path, "@format_version", f"expected {version}, got {ver!r}")
-    except BaseException:
-        f.close()
-        raise
-    return f
-
-
 def read_scan(path):
     """Read and validate a braggstrain scan file.
 
@@ -390,7 +174,7 @@ def read_scan(path):
     import h5py
 
     path = str(path)
-    with open_versioned(path, FORMAT_NAME, FORMAT_VERSION) as f:
+    with open_versioned(path, FORMAT_NAME, FORMAT_VERSION, error=ScanFileError) as f:
         if "frames" not in f or not isinstance(f["frames"], h5py.Dataset):
             raise ScanFileError(path, "frames", "missing dataset of counts (frames × rows × columns)")
         frames = f["frames"][()]

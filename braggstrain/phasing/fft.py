@@ -37,9 +37,7 @@ array per transform, which is copied back into the work array.
 from __future__ import annotations
 
 import base64
-import json
 import os
-import tempfile
 import threading
 
 # Two OpenMP runtimes share the cores in the loop (the one bundled with
@@ -53,6 +51,7 @@ import numpy as np
 import scipy.fft
 
 from braggstrain.errors import InputError
+from braggstrain.io.files import read_versioned_json, write_versioned_json
 
 try:  # pyFFTW is a declared dependency, but keep working without it.
     import pyfftw
@@ -339,23 +338,17 @@ def adopt_wisdom(wisdom) -> None:
         _cache["saved"] = export_wisdom()
 
 
+WISDOM_FORMAT = "braggstrain-fftw-wisdom"
+WISDOM_VERSION = 1
+
+
 def save_wisdom(path) -> None:
-    """Write this process's FFTW wisdom to ``path`` atomically (temp file, then replace)."""
+    """Write this process's FFTW wisdom to ``path`` atomically (JSON with the version marker)."""
     wisdom = export_wisdom()
     if wisdom is None:
         return
-    path = os.fspath(path)
-    folder = os.path.dirname(os.path.abspath(path))
-    os.makedirs(folder, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=".wisdom-", suffix=".tmp")
-    try:
-        with os.fdopen(fd, "w") as fh:
-            json.dump({"fftw_wisdom": [base64.b64encode(w).decode("ascii") for w in wisdom]}, fh)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
+    write_versioned_json(path, WISDOM_FORMAT, WISDOM_VERSION,
+                         {"fftw_wisdom": [base64.b64encode(w).decode("ascii") for w in wisdom]})
 
 
 def load_wisdom(path) -> bool:
@@ -363,11 +356,11 @@ def load_wisdom(path) -> bool:
     path = os.fspath(path)
     if not os.path.exists(path):
         return False
+    doc = read_versioned_json(path, WISDOM_FORMAT, WISDOM_VERSION)
     try:
-        with open(path) as fh:
-            wisdom = tuple(base64.b64decode(w) for w in json.load(fh)["fftw_wisdom"])
+        wisdom = tuple(base64.b64decode(w) for w in doc["fftw_wisdom"])
     except Exception as exc:
-        raise InputError(f"{path}: field 'fftw_wisdom': expected the JSON written by "
+        raise InputError(f"{path}: field 'fftw_wisdom': expected the base64 entries written by "
                          f"save_wisdom ({exc})") from exc
     if len(wisdom) != 3:
         raise InputError(f"{path}: field 'fftw_wisdom': expected three entries, got {len(wisdom)}")

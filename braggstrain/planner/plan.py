@@ -34,7 +34,6 @@ from __future__ import annotations
 import itertools
 import math
 import os
-import tempfile
 from dataclasses import dataclass, field
 from typing import Mapping
 
@@ -45,6 +44,7 @@ from braggstrain.errors import ConfigError, GeometryError, InputError, Reflectio
 from braggstrain.geometry.orientation import (MeasuredReflection, mounting_matrix, orientation_from_euler,
                                               orientation_from_measured)
 from braggstrain.geometry.rotation import AXES, axis_rotation, axis_vector
+from braggstrain.io.files import write_atomic
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS
 from braggstrain.strain.tensor import condition_number
 
@@ -1007,20 +1007,6 @@ def stereographic(vectors):
     return u[:, :2] / den[:, None], upper
 
 
-def _atomic_write_bytes(path, data):
-    path = os.fspath(path)
-    d = os.path.dirname(os.path.abspath(path))
-    fd, tmp = tempfile.mkstemp(dir=d, prefix=".tmp-", suffix=os.path.basename(path))
-    try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-
-
 def plot_plan(result, path):
     """Write the stereographic projection (PNG) of the G directions: reachable,
     unreachable, chosen and (if any) the user's set; filled markers upper
@@ -1090,7 +1076,7 @@ def plot_plan(result, path):
     ax.legend(loc="upper center", fontsize=7, bbox_to_anchor=(0.5, -0.08), ncol=2, frameon=False)
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=120, bbox_inches="tight")
-    _atomic_write_bytes(path, buf.getvalue())
+    write_atomic(path, buf.getvalue())
 
 
 def _toml_key(name):
@@ -1447,6 +1433,6 @@ def plan_from_config(config, out_dir):
     result.figure_path = fig
     if result.chosen is not None:
         frag = os.path.join(out_dir, names["fragment"])
-        _atomic_write_bytes(frag, fragment_text(result).encode("utf-8"))
+        write_atomic(frag, fragment_text(result))
         result.fragment_path = frag
     return result

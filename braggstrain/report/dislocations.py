@@ -15,7 +15,8 @@ from pathlib import Path
 
 import numpy as np
 
-from braggstrain.defects.lines import Dislocation, format_lattice_vector
+from braggstrain.defects.burgers import format_lattice_vector
+from braggstrain.defects.lines import Dislocation
 from braggstrain.errors import InputError
 from braggstrain.strain.grid import Grid
 
@@ -169,7 +170,7 @@ def _default_view(lines):
 
 
 def _save_atomic(fig, path, dpi):
-    from braggstrain.io.scans import atomic_path
+    from braggstrain.io.files import atomic_path
 
     path = Path(path)
     if not path.parent.exists():

@@ -23,7 +23,7 @@ import numpy as np
 from braggstrain import _validate as _v
 from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
-from braggstrain.io.scans import atomic_path
+from braggstrain.io.files import atomic_path
 from braggstrain.strain.grid import Grid
 
 __all__ = [

@@ -19,7 +19,7 @@ import numpy as np
 
 from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
-from braggstrain.io.scans import atomic_path
+from braggstrain.io.files import write_atomic
 
 __all__ = ["strain_statistics", "write_report", "CAUTIONS"]
 
@@ -497,6 +497,4 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
             f"<title>{_e(heading)}</title>\n<style>{_CSS}</style>\n</head>\n<body>\n"
             + "\n".join(b for b in body if b) + "\n</body>\n</html>\n")
     path = out_dir / name
-    with atomic_path(path) as tmp:
-        tmp.write_text(page, encoding="utf-8")
-    return path
+    return write_atomic(path, page)

@@ -54,7 +54,7 @@ def _write_h5_frames(path, dataset, frames):
     import h5py
     import hdf5plugin
 
-    from braggstrain.io.scans import atomic_path
+    from braggstrain.io.files import atomic_path
 
     path.parent.mkdir(parents=True, exist_ok=True)
     data = path.with_name(path.stem + "_data_000000.h5")

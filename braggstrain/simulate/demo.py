@@ -32,11 +32,15 @@ import numpy as np
 from braggstrain.simulate import forward as fw
 from braggstrain.config import build_crystal, build_instrument, build_specimen
 from braggstrain.errors import ConfigError
-from braggstrain.io.scans import atomic_path, write_scan
+from braggstrain.io.files import atomic_path, mark_version, open_versioned, write_atomic
+from braggstrain.io.scans import write_scan
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS, split_gradient
 
-__all__ = ["simulate_experiment", "truth_fields", "read_truth"]
+__all__ = ["simulate_experiment", "truth_fields", "read_truth", "compare_to_truth"]
+
+TRUTH_FORMAT = "braggstrain-truth"
+TRUTH_VERSION = 1
 
 
 def truth_fields(shape, field_, grid_shape, voxel_size):
@@ -161,8 +165,7 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
     truth = out / "truth.h5"
     with atomic_path(truth) as tmp:
         with h5py.File(tmp, "w") as f:
-            f.attrs["format"] = "braggstrain-truth"
-            f.attrs["format_version"] = 1
+            mark_version(f, TRUTH_FORMAT, TRUTH_VERSION)
             for k, v, unit in (("density", dens, "1"), ("displacement", u, "angstrom"),
                                ("displacement_gradient", D, "1"), ("strain", eps, "1"), ("rotation", rot, "rad")):
                 d = f.create_dataset(k, data=v, compression="gzip")
@@ -193,18 +196,15 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
             gc.attrs["lattice_parameters"] = np.asarray(crystal.lattice_parameters)
     text = cfg.get("_text")
     if text:
-        with atomic_path(out / "pipeline.toml") as tmp:
-            Path(tmp).write_text(text, encoding="utf-8")
+        write_atomic(out / "pipeline.toml", text)
     return {"scans": written, "truth": truth, "pipeline": out / "pipeline.toml",
             "seconds": time.perf_counter() - t0}
 
 
 def read_truth(path):
     """Read a truth file into a dict of arrays and metadata."""
-    import h5py
-
     out = {}
-    with h5py.File(path, "r") as f:
+    with open_versioned(path, TRUTH_FORMAT, TRUTH_VERSION) as f:
         for k in ("density", "displacement", "displacement_gradient", "strain", "rotation"):
             out[k] = f[k][()]
         out["voxel_size"] = f["grid"].attrs["voxel_size"]
