@@ -233,33 +233,31 @@ def _timing_table(timings, wall):
 
 def _summary(res):
     r = res["results"]
-    tf = r["tensor"]
+    tf = r.tensor
     lines = []
     sup = tf.support
-    eps = tf.strain
-    names = ["xx", "yy", "zz"]
     stats = []
-    for i in range(3):
-        v = eps[i, i][sup]
+    for c in ("xx", "yy", "zz"):
+        v = r.strain(c)[sup]
         v = v[np.isfinite(v)]
         if v.size:
-            stats.append(f"ε_{names[i]} {np.mean(v):+.2e} (spread {np.std(v):.1e})")
+            stats.append(f"ε_{c} {np.mean(v):+.2e} (spread {np.std(v):.1e})")
     lines.append(f"strain inside the crystal ({int(sup.sum())} voxels), mean and spread (standard deviation "
                  "over the voxels, not an uncertainty; per-voxel one-σ errors are in results.h5 "
                  "/tensor/strain_uncertainty): " + ", ".join(stats))
     lines.append(f"G set condition number {tf.condition_number:.2f}")
     sig = np.asarray(tf.strain_uncertainty, float)[:, :, np.asarray(tf.trusted, bool)]
-    basis = getattr(tf, "uncertainty_basis", "") or "not recorded"
+    basis = tf.uncertainty_basis or "not recorded"
     if np.isfinite(sig).any():
         med = [np.nanmedian(sig[i, i]) for i in range(3)]
         lines.append("error bars (median σ, trusted voxels): " + ", ".join(
-            f"ε_{n} {m:.1e}" for n, m in zip(names, med)) + f"; {basis}")
+            f"ε_{n} {m:.1e}" for n, m in zip(("xx", "yy", "zz"), med)) + f"; {basis}")
     else:
         lines.append(f"error bars: none. {basis}")
-    ml = r.get("mean_lattice") or {}
+    ml = r.mean_lattice
     if ml.get("lattice_parameter") is not None:
         lines.append(f"mean lattice parameter from the peak positions: {ml['lattice_parameter']:.5f} Å")
-    for d in r["dislocations"]:
+    for d in r.dislocations:
         b = " ".join(f"{v:+.2f}" for v in np.atleast_1d(d.burgers)) if d.burgers is not None else "unknown"
         c = ", ".join(f"{v / 10:.0f}" for v in d.center)
         xi = np.asarray(d.directions, float).mean(axis=0) if len(d.directions) else np.full(3, np.nan)
@@ -267,11 +265,11 @@ def _summary(res):
         lines.append(f"dislocation: b = [{b}] (lattice) for the line direction ξ = "
                      f"[{' '.join(f'{v:+.2f}' for v in xi)}] (sample frame), {d.character_deg:.0f}° character, "
                      f"length {d.length / 10:.0f} nm, centre ({c}) nm, seen in {len(d.visible_in)} reflections")
-    if r["dislocations"]:
+    if r.dislocations:
         lines.append("  (b is defined for the line direction ξ (right-handed circuit about ξ, h·b = −winding): "
                      "(−b, −ξ) is the same dislocation, so a sign of b only means something with ξ; "
                      "docs/defects.md)")
-    if not r["dislocations"]:
+    if not r.dislocations:
         lines.append("no dislocations found")
     for k, v in res["paths"].items():
         if isinstance(v, (list, tuple)):
@@ -358,12 +356,12 @@ def cmd_report(args):
 
 
 def cmd_export(args):
-    from braggstrain.io import results as outputs
+    from braggstrain.io.vtk import export_vtk
 
     if not args.vtk:
         raise InputError("export: choose a format, e.g. --vtk")
     out = Path(args.out) if args.out else Path(args.results).resolve().parent / "vtk"
-    paths = outputs.export_vtk(args.results, out)
+    paths = export_vtk(args.results, out)
     for p in paths:
         _print(f"wrote {p}", args.quiet)
     return 0

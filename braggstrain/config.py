@@ -163,7 +163,8 @@ SCHEMA = _Table(
         distance_m=_Spec((int, float, str), None, doc="m, or \"file.h5#/path\"; overrides the detector's"),
         roi=_Spec(list, None, check=_vec(2, int), doc="[first_row, first_column] of the stored frames"),
         repeat_max_shift=_Spec(NUM, 5.0, check=_positive, doc="voxels a repeated scan's peak may move"),
-        mask=_Spec(str, None, doc="optional mask file (HDF5 dataset 'mask' or .npy), True = not measured"),
+        mask=_Spec(str, None, doc="mask file (.npy, .npz, .tif, HDF5 file.h5#/dataset) relative to this file; "
+                                  "True/nonzero = not measured; added to the scan's own mask"),
         name=_Spec(str, None, check=_reflection_name,
                    doc="letters, digits, _ and -; names the reflection's files (default refl_<hkl>)"),
     ), min_items=1),

@@ -1,4 +1,4 @@
-"""The pipeline: DESIGN.md's stages wired into one small graph.
+"""The pipeline: the stages of docs/design.md wired into one small graph.
 
 Per reflection: prepare → (grid, for the orthogonal route) → phase → sample
 frame; then, over all reflections: register → tensor → defects → outputs.
@@ -35,8 +35,9 @@ from braggstrain.config import build_crystal, build_instrument, resolve_path
 from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, check_reflection_identity, format_hkl
 from braggstrain.errors import (BraggStrainError, ConfigError, InputError, OutputError, ReflectionError,
                                 ScanFileError, TensorError, did_you_mean)
-from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_RUNS
+from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_METRIC, DEFAULT_RUNS
 from braggstrain.strain.objects import SampleObject
+from braggstrain.io.arrays import split_dataset
 from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 from braggstrain.io.dislocations import write_dislocation_table
 from braggstrain.io.prepared import read_prepared, write_prepared
@@ -63,6 +64,25 @@ _DEFECTS_OWN = {"enabled"}
 # were put on the common grid (origin included, issue 17) are not reused.
 _DEFECTS_POINTS = "points: positions on the common grid"
 _OUTPUT_KEYS = {"vtk": bool, "figures": bool, "report": bool}
+# Options of [prepare] that may name a file (an array: dark, flat field, mask).
+_PREPARE_FILES = ("dark", "flat", "user_mask")
+
+
+def _resolve_array_path(cfg, value, key):
+    """A file option (``file.npy`` or ``file.h5#/dataset``) resolved against the pipeline file."""
+    path, ds = split_dataset(value)
+    p = resolve_path(cfg, path, key)
+    return str(p) if ds is None else f"{p}#{ds}"
+
+
+def _file_digests(paths):
+    """Digests of the files the prepare options name, for the checkpoint key."""
+    out = {}
+    for k, v in paths.items():
+        if isinstance(v, str):
+            f = Path(split_dataset(v)[0])
+            out[k] = file_digest(f) if f.is_file() else None
+    return out
 
 
 def _kwargs_of(fn, skip):
@@ -80,7 +100,8 @@ def _check_keys(table, allowed, where, src):
 
 def prepare_options(cfg):
     """The [prepare] table checked against prepare_scan's options (ConfigError
-    naming the key), lists turned into tuples."""
+    naming the key), lists turned into tuples, file options resolved against
+    the pipeline file."""
     from braggstrain.prepare import scan as prepare
 
     p = dict(cfg["prepare"])
@@ -88,6 +109,9 @@ def prepare_options(cfg):
     for k in ("bin", "crop", "max_crop", "pad"):
         if isinstance(p.get(k), list):
             p[k] = tuple(p[k])
+    for k in _PREPARE_FILES:  # every path in a pipeline file is relative to that file
+        if isinstance(p.get(k), str):
+            p[k] = _resolve_array_path(cfg, p[k], f"prepare.{k}")
     return p
 
 
@@ -257,10 +281,12 @@ def _phase_to_tree(ens, voxel):
                 pass
     runs = []
     kept = {int(v) for v in ens.kept}
+    rank = {int(run): k for k, run in enumerate(ens.ranking)}
     for r in ens.runs:
         m = _plain(r.metrics)
         m.update({"run": r.run, "seed": r.seed, "status": r.status, "iterations": r.iterations,
-                  "elapsed": r.elapsed, "message": r.message, "kept": int(r.run) in kept})
+                  "elapsed": r.elapsed, "message": r.message, "kept": int(r.run) in kept,
+                  "rank": rank.get(int(r.run), -1)})
         runs.append(m)
     pr = ens.prtf
     # PRTF shells come in cycles per voxel f; as |q| in Å⁻¹: 2π f / voxel, and
@@ -270,7 +296,7 @@ def _phase_to_tree(ens, voxel):
     return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
             "kept_objects": ens.kept_objects,
             "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
-            "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed),
+            "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed), "metric": ens.metric,
             "prtf": {"q": 2 * np.pi * f / voxel, "values": np.asarray(pr.values, float),
                      "resolution": voxel / (2 * res_f) if np.isfinite(res_f) and res_f > 0 else float("nan"),
                      "voxel_A": voxel}}
@@ -347,7 +373,7 @@ def _scan_for(cfg, i, r, prepare_opts=None):
             raise ConfigError(f"{src}: key 'reflection[{i}].scan': file {p} not found")
         scan = read_scan(p)
         scan.instrument, scan.extra["instrument_from"] = _agree_instrument(cfg, i, scan)
-        return scan, file_digest(p)
+        return _with_reflection_mask(cfg, i, r, scan, file_digest(p))
     if r["frames"] is None:
         raise ConfigError(f"{src}: key 'reflection[{i}]': expected 'scan' (a scan file) or 'frames' (a frame stack)")
     scans = reflection_scan(r, build_instrument(cfg), base_dir=cfg.get("_dir", "."), key=f"reflection[{i}]",
@@ -364,7 +390,32 @@ def _scan_for(cfg, i, r, prepare_opts=None):
                      field=f"reflection[{i}].angles.{rc}")  # refused here, before any work
     digest = hash_inputs(scan.frames, scan.mask, scan.monitor, scan.angles, scan.instrument, scan.extra.get("roi"))
     scan.extra.setdefault("instrument_from", "the pipeline file (and the files it names)")
-    return scan, digest
+    return _with_reflection_mask(cfg, i, r, scan, digest)
+
+
+def _with_reflection_mask(cfg, i, r, scan, digest):
+    """Add the ``[[reflection]] mask`` file (True/nonzero = not measured) to the scan's own mask."""
+    if r["mask"] is None:
+        return scan, digest
+    from braggstrain.io.arrays import read_array
+
+    src = cfg.get("_source", "<pipeline>")
+    key = f"reflection[{i}].mask"
+    spec = _resolve_array_path(cfg, r["mask"], key)
+    try:
+        m = np.asarray(read_array(spec, "mask", src)) != 0
+    except InputError as e:
+        raise ConfigError(f"{src}: key '{key}': {e}") from None
+    shape = scan.frames.shape
+    if m.shape not in (shape[1:], shape):
+        raise ConfigError(f"{src}: key '{key}': a mask of shape {m.shape}; expected {shape[1:]} (rows, columns) "
+                          f"or {shape} (frames, rows, columns)")
+    own = None if scan.mask is None else np.asarray(scan.mask, bool)
+    if own is not None and own.shape != m.shape:
+        own = np.broadcast_to(own, shape) if own.ndim == 2 else own
+        m = np.broadcast_to(m, shape)
+    scan.mask = m if own is None else (own | m)
+    return scan, hash_inputs(digest, file_digest(Path(split_dataset(spec)[0])))
 
 
 # Relative tolerance for "the same value" of a pipeline file and a scan file:
@@ -648,7 +699,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     # -- prepare every scan (all its checks on the data), then check what each peak is
     prepared_all = []
     for j, ((scan, digest), name, h) in enumerate(zip(scans, names, hkls)):
-        k_prep = hash_inputs("prepare", digest, opts["prepare"], scan.instrument.to_dict())
+        k_prep = hash_inputs("prepare", digest, opts["prepare"], scan.instrument.to_dict(),
+                             _file_digests({k: opts["prepare"].get(k) for k in _PREPARE_FILES}))
         with run.timed("prepare"):
             pp = run.path("prepare", name, k_prep)
             prepared = None
@@ -809,8 +861,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
     # -- outputs
     results = _bundle(cfg, crystal, per_refl, registered, rt["report"], tfield, dislocations, mean_lattice,
-                      run, base_seed, runs, keep, route)
-    results["provenance"]["command"] = command if command is not None else shlex.join(
+                      run, base_seed, runs, keep, route, ph_opts.get("metric", DEFAULT_METRIC))
+    results.provenance["command"] = command if command is not None else shlex.join(
         [Path(sys.argv[0]).name or "python", *sys.argv[1:]])
     paths = {}
     with run.timed("outputs"):
@@ -820,25 +872,27 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
         ou = opts["output"]
         t_out = time.perf_counter()
-        results["provenance"]["timings"] = dict(run.timings)
-        results["provenance"]["wall_s"] = time.perf_counter() - t_start
+        results.provenance["timings"] = dict(run.timings)
+        results.provenance["wall_s"] = time.perf_counter() - t_start
         paths["results"] = outp.write_results(out / "results.h5", results)
         figs = None
         if ou.get("figures", True) or ou.get("report", True):
             figs = figm.make_figures(results, out / "figures")
             paths["figures"] = figs
         if ou.get("vtk", True):
-            paths["vtk"] = outp.export_vtk(results, out / "vtk")
+            from braggstrain.io.vtk import export_vtk
+
+            paths["vtk"] = export_vtk(results, out / "vtk")
         paths["dislocations"] = [write_dislocation_table(dislocations, out / "dislocations.csv"),
                                  write_dislocation_table(dislocations, out / "dislocations.json")]
         # the outputs stage's own time, up to the report (which shows it)
         timings = dict(run.timings)
         timings["outputs"] = timings.get("outputs", 0.0) + time.perf_counter() - t_out
-        results["provenance"]["timings"] = timings
-        results["provenance"]["wall_s"] = time.perf_counter() - t_start
+        results.provenance["timings"] = timings
+        results.provenance["wall_s"] = time.perf_counter() - t_start
         if ou.get("report", True):
             paths["report"] = repm.write_report(results, out, figures=figs)
-        outp.update_provenance(paths["results"], {"timings": timings, "wall_s": results["provenance"]["wall_s"]})
+        outp.update_provenance(paths["results"], {"timings": timings, "wall_s": results.provenance["wall_s"]})
     wall = time.perf_counter() - t_start
     return {"results": results, "paths": paths, "timings": dict(run.timings), "wall_s": wall,
             "phasing_s": run.phasing_seconds, "phasing_share": run.phasing_seconds / wall if wall else 0.0,
@@ -979,8 +1033,11 @@ def _versions():
 
 
 def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, mean_lattice, run, seed, runs,
-            keep, route):
-    """The results bundle the outputs stage writes (see braggstrain.outputs)."""
+            keep, route, metric):
+    """The :class:`~braggstrain.io.results.Results` of the run, built (and checked) once."""
+    from braggstrain.io.results import ReflectionResult, Results
+    from braggstrain.strain.fields import displacement_along_g
+
     grid = registered[0].grid
     vs = grid.voxel_size
     support = tf.support
@@ -993,36 +1050,28 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
         amps.append(a)
         ph = np.angle(o.obj).astype(np.float32)
         try:
-            from braggstrain.strain.fields import displacement_along_g
-
             disp = displacement_along_g(o.obj, o.g_vector, vs, o.support)
-            disp = np.asarray(getattr(disp, "displacement", disp), np.float32)
         except BraggStrainError:
             disp = np.full(o.obj.shape, np.nan, np.float32)
         pr = p["prepared"]
         t = p["phase"]
-        final = t["runs"][t["kept"][0]] if t["kept"] else {}
         meta_reg = o.meta.get("registration", {}) if isinstance(o.meta, dict) else {}
-        refl.append({
-            "name": p["name"], "hkl": tuple(int(v) for v in p["hkl"]), "g_vector": o.g_vector,
-            "scan": p["scan"], "max_counts": float(pr.max_counts), "oversampling": np.asarray(pr.oversampling, float),
-            "runs": runs, "kept": len(t["kept"]), "run_metrics": t["runs"], "final_metrics": final,
-            "prtf": t["prtf"], "history": t["history"], "amplitude": a, "phase": ph, "displacement": disp,
-            "support": o.support, "shift_vox": np.asarray(meta_reg.get("shift_voxels", np.zeros(3)), float),
-            "twin": bool(meta_reg.get("twin", False)), "route": route,
-        })
-    return {
-        "grid": grid.to_dict(),
-        "support": support, "amplitude": np.mean(amps, axis=0).astype(np.float32),
-        "reflections": refl, "tensor": tf, "dislocations": dislocations,
-        "registration": reg_report, "mean_lattice": mean_lattice,
-        "crystal": {"material": crystal.name, "lattice_parameters": list(crystal.lattice_parameters),
-                    "U": crystal.U},
-        "provenance": {"pipeline_text": cfg.get("_text", ""), "pipeline_file": cfg.get("_source", ""),
-                       "versions": _versions(),
-                       "seeds": {"phasing": seed, **{f"phasing {p['name']}": seed + 7919 * j
-                                                     for j, p in enumerate(per_refl)}},
-                       "ensemble": {"runs": runs, "keep": keep},
-                       "timings": dict(run.timings), "reused": list(run.reused),
-                       "created": datetime.now(timezone.utc).isoformat(timespec="seconds")},
-    }
+        refl.append(ReflectionResult(
+            name=p["name"], hkl=tuple(int(v) for v in p["hkl"]), g_vector=o.g_vector, scan=p["scan"],
+            max_counts=float(pr.max_counts), oversampling=np.asarray(pr.oversampling, float), runs=runs,
+            kept=len(t["kept"]), run_metrics=t["runs"], ranking_metric=t.get("metric", metric), prtf=t["prtf"],
+            history=t["history"], amplitude=a, phase=ph, displacement=disp, support=o.support,
+            shift_vox=np.asarray(meta_reg.get("shift_voxels", np.zeros(3)), float),
+            twin=bool(meta_reg.get("twin", False))))
+    return Results(
+        grid=grid,
+        support=support, amplitude=np.mean(amps, axis=0).astype(np.float32),
+        reflections=refl, tensor=tf, dislocations=dislocations,
+        registration=reg_report, mean_lattice=mean_lattice,
+        provenance={"pipeline_text": cfg.get("_text", ""), "pipeline_file": cfg.get("_source", ""),
+                    "route": route, "versions": _versions(),
+                    "seeds": {"phasing": seed, **{f"phasing {p['name']}": seed + 7919 * j
+                                                  for j, p in enumerate(per_refl)}},
+                    "ensemble": {"runs": runs, "keep": keep},
+                    "timings": dict(run.timings), "reused": list(run.reused),
+                    "created": datetime.now(timezone.utc).isoformat(timespec="seconds")})

@@ -99,3 +99,21 @@ def simulated_cube(peak_counts=1e5, background=0.5, seed=4, hot_pixels=0, gaps=(
                            background=background, hot_pixels=hot_pixels, seed=seed)
     return Scan(frames=sim.frames, angles=sim.angles, rocking_circle="eta", instrument=ins, mask=None,
                 hkl=(1, 1, 1), path=f"cube_{peak_counts:g}.h5"), sim
+def assert_runs_columns_recorded(path, new=False):
+    """Every runs-table column the figures and the report read exists in the
+    results file at ``path`` (issue 16), and no leftover llk/free_llk."""
+    import h5py
+
+    from braggstrain.io.results import read_results
+    from braggstrain.report import figures, html
+
+    results = read_results(path)
+    with h5py.File(path, "r") as f:
+        for name in results.names:
+            cols = {c.decode() if isinstance(c, bytes) else str(c)
+                    for c in f[f"reflections/{name}/runs"].attrs["columns"]}
+            used = set(figures.RUN_COLUMNS) | set(html.RUN_COLUMNS) | {results.reflection(name).ranking_metric}
+            if new:
+                used.add("rank")
+            assert used <= cols, (name, used - cols)
+            assert not {"llk", "free_llk"} & cols

@@ -129,3 +129,59 @@ def test_prepare_refuses_a_name_that_leaves_the_output_folder(tmp_path, small_co
     assert main(["-q", "prepare", str(p), "--out", str(sim / "prep")]) == 2
     assert "reflection[0].name" in capsys.readouterr().err
     assert not list(tmp_path.rglob("*_prepared.h5"))
+
+
+@pytest.fixture(scope="module")
+def small_sim(tmp_path_factory):
+    d = tmp_path_factory.mktemp("small-sim")
+    (d / "small.toml").write_text(small_toml())
+    assert main(["-q", "simulate", str(d / "small.toml"), "--out", str(d / "sim")]) == 0
+    return d / "sim"
+
+
+def _prepared_mask_counts(folder):
+    from braggstrain.io.prepared import read_prepared
+
+    return {p.name: read_prepared(p).mask_counts for p in sorted(folder.glob("*_prepared.h5"))}
+
+
+def test_reflection_mask_reaches_preparation(small_sim, tmp_path):
+    # [[reflection]] mask is added to the scan's own mask (issue 11: it was
+    # accepted by the schema and then dropped).
+    text = (small_sim / "pipeline.toml").read_text()
+    cfg = tmp_path / "p.toml"
+    (tmp_path / "scans").symlink_to(small_sim / "scans")
+    mask = np.zeros((96, 96), bool)
+    mask[10:14, :] = True  # four rows
+    np.save(tmp_path / "rows.npy", mask)
+    cfg.write_text(text.replace('scan = "scans/r0.h5"', 'scan = "scans/r0.h5"\nmask = "rows.npy"'))
+    plain = tmp_path / "plain.toml"
+    plain.write_text(text)
+    assert main(["-q", "prepare", str(plain), "--out", str(tmp_path / "a")]) == 0
+    assert main(["-q", "prepare", str(cfg), "--out", str(tmp_path / "b")]) == 0
+    a, b = _prepared_mask_counts(tmp_path / "a"), _prepared_mask_counts(tmp_path / "b")
+    # four rows, less the two gap columns (70, 71) the scan masks already
+    assert b["r0_prepared.h5"]["scan_mask"] == a["r0_prepared.h5"]["scan_mask"] + 4 * (96 - 2)
+    assert b["r1_prepared.h5"] == a["r1_prepared.h5"]
+
+
+def test_prepare_paths_resolve_against_the_pipeline_file(small_sim, tmp_path, monkeypatch):
+    # [prepare] user_mask (and dark, flat) name files next to the pipeline
+    # file, wherever the command runs from.
+    folder = tmp_path / "exp"
+    folder.mkdir()
+    (folder / "scans").symlink_to(small_sim / "scans")
+    um = np.zeros((96, 96), bool)
+    um[:, 5:8] = True
+    np.save(folder / "um.npy", um)
+    np.save(folder / "dark.npy", np.zeros((96, 96), np.float32))
+    text = (small_sim / "pipeline.toml").read_text()
+    (folder / "p.toml").write_text(text + '\n[prepare]\nuser_mask = "um.npy"\ndark = "dark.npy"\n'
+                                   if "[prepare]" not in text else
+                                   text.replace("[prepare]", '[prepare]\nuser_mask = "um.npy"\ndark = "dark.npy"'))
+    elsewhere = tmp_path / "elsewhere"
+    elsewhere.mkdir()
+    monkeypatch.chdir(elsewhere)
+    assert main(["-q", "prepare", str(folder / "p.toml"), "--out", "prep"]) == 0
+    counts = _prepared_mask_counts(elsewhere / "prep")
+    assert all(c["user_mask"] == 3 * 96 for c in counts.values())

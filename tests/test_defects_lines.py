@@ -8,7 +8,7 @@ displacement fields (no phase retrieval unless said so):
   numbers from memory);
 * loops: solid-angle term of Burgers' formula, u = b Ω/4π (Hirth & Lothe,
   ch. 4, from memory);
-* circulation convention (DESIGN.md): right-handed about ξ the displacement
+* circulation convention (docs/design.md): right-handed about ξ the displacement
   gains b, so the phase −G·u of reflection j gains −G_j·b = 2π n_j and
   h_j·b = −n_j;
 * g·b = 0 invisibility: Williams & Carter, Transmission Electron Microscopy,
@@ -80,7 +80,7 @@ def _perp_dist(points, p0, xi):
 def test_vortex_map_screw_along_z_matches_an_unwrapped_circuit():
     # Screw along +z with b = a[001] (a lattice translation of fcc): Hirth &
     # Lothe eq. 3-2, u_z = bθ/2π. Reflection (111): h·b = 1, so every z-layer
-    # has one plaquette of winding n = −1 about +z at the line (DESIGN.md);
+    # has one plaquette of winding n = −1 about +z at the line (docs/design.md);
     # (002): h·b = 2, total −2 per layer (a double vortex may show as two
     # neighbouring unit vortices on the grid). Checked against an independent
     # count: numpy.unwrap of the phase along a square circuit.
@@ -180,7 +180,7 @@ def test_straight_dislocation_found_with_right_line_and_burgers(straight_cases, 
     assert np.allclose(d.burgers_sample, s * cr.burgers_to_sample(B_TRUE))
     assert abs(np.linalg.norm(d.burgers_sample) - 3.9242 / np.sqrt(2)) < 1e-3
     assert d.residual == 0.0 and d.confidence == pytest.approx(1.0)
-    # the windings obey h_j·b = −n_j with the sign of the found ξ (DESIGN.md)
+    # the windings obey h_j·b = −n_j with the sign of the found ξ (docs/design.md)
     for h in HKLS:
         assert d.windings[h] == -round(s * np.dot(h, B_TRUE))
     # character within 5°

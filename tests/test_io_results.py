@@ -28,10 +28,13 @@ from braggstrain.defects.lines import find_dislocations
 from braggstrain.errors import InputError
 from braggstrain.report.figures import FIGURES, make_figures, plot_slices
 from braggstrain.strain.objects import SampleObject
-from braggstrain.io.results import export_vtk, read_results, write_results
+from braggstrain.io.results import Results, read_results, write_results
+from braggstrain.io.vtk import export_vtk
 from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components, strain_from_components
 from braggstrain.report.html import CAUTIONS, strain_statistics, write_report
 from braggstrain.strain.tensor import mean_lattice_strain, strain_tensor
+
+from conftest import assert_runs_columns_recorded  # noqa: E402
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "results.md"
 N = 32
@@ -67,9 +70,10 @@ def _bundle():
         refl.append(dict(
             name=f"pt_{''.join(map(str, h))}", hkl=h, g_vector=g, scan=f"scans/pt_{j}.h5",
             max_counts=2e5 / (j + 1), oversampling=(2.4, 2.6 + 0.1 * j, 3.1), runs=4, kept=2,
-            run_metrics=[dict(run=k, llk=1.2 + 0.1 * k + 0.05 * j, free_llk=1.3 + 0.1 * k,
+            run_metrics=[dict(run=k, nll=1.2 + 0.1 * k + 0.05 * j, free_nll=1.3 + 0.1 * k,
                               support_size=900 + k, sharpness=0.8 - 0.01 * k,
-                              status="ok" if k < 3 else "support collapsed", kept=k < 2)
+                              status="ok" if k < 3 else "support collapsed", kept=k < 2,
+                              rank=k if k < 3 else -1)
                          for k in range(4)],
             prtf=dict(q=q, values=np.exp(-(q / q_cut) ** 2), resolution=2 * np.pi / q_cut),
             history=dict(amplitude_error=((0.5 + 0.1 * j) * np.exp(-it / (40.0 + 10 * j)) + 0.02).astype(np.float32),
@@ -124,7 +128,7 @@ def test_results_file_holds_every_documented_dataset_with_units(bundle, results_
     assert len(documented) >= 30
     names = [x["name"] for x in bundle["reflections"]]
     with h5py.File(results_file, "r") as f:
-        assert f.attrs["content"] == "braggstrain results"
+        assert f.attrs["format"] == "braggstrain-results" and f.attrs["format_version"] == 2
         for pattern in documented:
             paths = [pattern.replace("<name>", n) for n in names] if "<name>" in pattern else [pattern]
             paths = [p.replace("line_NNN", "line_001") for p in paths]
@@ -161,10 +165,10 @@ def test_results_file_holds_every_documented_dataset_with_units(bundle, results_
 
 def test_read_results_round_trip(bundle, results_file):
     back = read_results(results_file)
-    np.testing.assert_array_equal(back["support"], bundle["support"])
-    np.testing.assert_array_equal(back["amplitude"], bundle["amplitude"].astype(np.float32))
-    assert back["grid"]["shape"] == (N, N, N)
-    a, b = back["tensor"], bundle["tensor"]
+    np.testing.assert_array_equal(back.support, bundle["support"])
+    np.testing.assert_array_equal(back.amplitude, bundle["amplitude"].astype(np.float32))
+    assert back.grid.shape == (N, N, N)
+    a, b = back.tensor, bundle["tensor"]
     for name in ("strain", "rotation", "residual", "residual_per_reflection", "strain_uncertainty",
                  "rotation_uncertainty", "displacement", "support", "trusted", "g_vectors"):
         np.testing.assert_array_equal(getattr(a, name), getattr(b, name), err_msg=name)
@@ -173,26 +177,26 @@ def test_read_results_round_trip(bundle, results_file):
         np.abs(b.displacement_gradient)), equal_nan=True)
     assert a.condition_number == b.condition_number and a.labels == b.labels
     assert a.reference == b.reference
-    for x, y in zip(back["reflections"], bundle["reflections"]):
-        assert x["name"] == y["name"] and x["hkl"] == y["hkl"]
+    for x, y in zip(back.reflections, bundle["reflections"]):
+        assert x.name == y["name"] and x.hkl == y["hkl"]
         for key in ("amplitude", "phase", "displacement", "support"):
-            np.testing.assert_array_equal(x[key], y[key], err_msg=key)
-        assert x["run_metrics"] == y["run_metrics"]
-        np.testing.assert_array_equal(x["prtf"]["q"], y["prtf"]["q"])
-        assert x["prtf"]["resolution"] == y["prtf"]["resolution"]
-        assert set(x["history"]) == set(y["history"])
+            np.testing.assert_array_equal(getattr(x, key), y[key], err_msg=key)
+        assert x.run_metrics == y["run_metrics"]
+        np.testing.assert_array_equal(x.prtf["q"], y["prtf"]["q"])
+        assert x.prtf["resolution"] == y["prtf"]["resolution"]
+        assert set(x.history) == set(y["history"])
         for k in y["history"]:
-            np.testing.assert_array_equal(x["history"][k], y["history"][k])
-        assert x["twin"] == y["twin"] and x["max_counts"] == y["max_counts"]
-    assert len(back["dislocations"]) == len(bundle["dislocations"]) >= 1
-    for d, e in zip(back["dislocations"], bundle["dislocations"]):
+            np.testing.assert_array_equal(x.history[k], y["history"][k])
+        assert x.twin == y["twin"] and x.max_counts == y["max_counts"]
+    assert len(back.dislocations) == len(bundle["dislocations"]) >= 1
+    for d, e in zip(back.dislocations, bundle["dislocations"]):
         np.testing.assert_array_equal(d.points, e.points)
         np.testing.assert_array_equal(d.burgers, e.burgers)
-    np.testing.assert_array_equal(back["registration"]["shifts_voxels"], bundle["registration"]["shifts_voxels"])
-    assert back["registration"]["twin_decided_by"] == bundle["registration"]["twin_decided_by"]
-    np.testing.assert_array_equal(back["mean_lattice"]["strain"], bundle["mean_lattice"].strain)
-    assert back["mean_lattice"]["lattice_parameter"] == bundle["mean_lattice"].lattice_parameter
-    assert back["provenance"] == bundle["provenance"]
+    np.testing.assert_array_equal(back.registration["shifts_voxels"], bundle["registration"]["shifts_voxels"])
+    assert back.registration["twin_decided_by"] == bundle["registration"]["twin_decided_by"]
+    np.testing.assert_array_equal(back.mean_lattice["strain"], bundle["mean_lattice"].strain)
+    assert back.mean_lattice["lattice_parameter"] == bundle["mean_lattice"].lattice_parameter
+    assert back.provenance == bundle["provenance"]
 
 
 def test_strain_components_round_trip():
@@ -221,12 +225,12 @@ def test_minimal_bundle_round_trip(tmp_path):
     b = dict(grid=dict(voxel_size=vs, origin=(5.0, 0.0, 0.0), shape=shape), support=sup,
              amplitude=np.abs(objs[0]), reflections=refl, tensor=tf)
     back = read_results(write_results(tmp_path / "results.h5", b))
-    assert back["tensor"].displacement is None and back["dislocations"] == []
-    x = back["reflections"][1]
-    assert x["displacement"] is None and x["prtf"] is None and x["run_metrics"] == [] and x["history"] == {}
-    assert np.isnan(x["oversampling"]).all() and np.isnan(x["max_counts"])
+    assert back.tensor.displacement is None and back.dislocations == []
+    x = back.reflection("r1")
+    assert x.displacement is None and x.prtf is None and x.run_metrics == [] and x.history == {}
+    assert np.isnan(x.oversampling).all() and np.isnan(x.max_counts) and x.best_run() is None
     # ε_xx = 1e-3 of the uniform field, read back from the file (float32 solve)
-    e = back["tensor"].strain[0, 0][back["tensor"].trusted]
+    e = back.strain("xx")[back.tensor.trusted]
     assert np.allclose(e, 1e-3, atol=1e-8)
     with h5py.File(tmp_path / "results.h5", "r") as f:
         assert f["grid/x"][shape[0] // 2] == 5.0  # origin = position of index n//2
@@ -267,9 +271,9 @@ def test_read_rejects_other_hdf5(tmp_path):
     p = tmp_path / "other.h5"
     with h5py.File(p, "w") as f:
         f["data"] = np.zeros(3)
-    with pytest.raises(InputError, match="content"):
+    with pytest.raises(InputError, match="format"):
         read_results(p)
-    with pytest.raises(InputError, match="no such results file"):
+    with pytest.raises(InputError, match="file not found"):
         read_results(tmp_path / "missing.h5")
 
 
@@ -414,7 +418,7 @@ def test_report_is_self_contained_and_holds_the_tables(bundle, results_file, fig
 def test_report_makes_its_own_figures(bundle, tmp_path):
     small = dict(bundle, reflections=[dict(x, history={}, prtf=None, run_metrics=[]) for x in bundle["reflections"]],
                  dislocations=[])
-    page = write_report(small, tmp_path)
+    page = write_report(Results.from_dict(small), tmp_path)
     names = sorted(p.name for p in tmp_path.glob("*.png"))
     # nothing recorded, no empty figure
     expected = sorted(set(FIGURES) - {"prtf.png", "history.png", "runs.png"})
@@ -428,3 +432,47 @@ def test_documentation_lists_every_figure():
     text = DOC.read_text(encoding="utf-8")
     for name in FIGURES:
         assert f"`{name}`" in text, name
+
+
+# --------------------------------------------------------------------------
+# the Results object, files of earlier versions, the runs columns used
+# --------------------------------------------------------------------------
+
+LEGACY = Path(__file__).resolve().parent / "data" / "results_layout1.h5"
+
+
+def test_results_answer_questions(bundle):
+    r = Results.from_dict(bundle)
+    assert r.names == [x["name"] for x in bundle["reflections"]]
+    assert r.reflection("pt_200").hkl == (2, 0, 0)
+    with pytest.raises(InputError, match="did you mean 'pt_200'"):
+        r.reflection("pt_2OO")
+    np.testing.assert_array_equal(r.strain("xz"), bundle["tensor"].strain[0, 2])
+    np.testing.assert_array_equal(r.strain("zx"), r.strain("xz"))
+    with pytest.raises(InputError, match="strain component"):
+        r.strain("xw")
+    np.testing.assert_array_equal(r.trusted, bundle["tensor"].trusted & bundle["support"])
+    # the best run is the one the ensemble ranked first (rank 0), not a guess
+    assert r.best_run("pt_111")["run"] == 0
+    assert r.reflection("pt_111").ranking_metric == "free_nll"
+
+
+def test_a_results_file_of_layout_1_still_opens():
+    # written by braggstrain at commit 27e9039 (tests/data/README.md)
+    r = read_results(LEGACY)
+    assert r.names == ["r0", "r1", "r2", "r3"]
+    assert r.grid.shape == r.support.shape == r.tensor.strain.shape[2:]
+    assert r.tensor.condition_number > 1 and r.dislocations == []
+    for x in r.reflections:
+        # no rank column: ranked again by the pipeline file's metric (the default, free_nll)
+        assert x.ranking_metric == "free_nll" and "rank" not in x.run_metrics[0]
+        ok = [m for m in x.run_metrics if m["status"] == "ok"]
+        assert x.best_run() == min(ok, key=lambda m: m["free_nll"])
+        assert x.best_run()["kept"]
+    assert np.isfinite(r.strain("yz")[r.trusted]).all()
+
+
+def test_every_runs_column_the_outputs_use_is_in_a_layout_1_file():
+    # issue 16: the figures and the report read only columns that runs record
+    # (a file written by today's pipeline: tests/test_pipeline.py)
+    assert_runs_columns_recorded(LEGACY)

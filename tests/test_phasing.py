@@ -111,7 +111,7 @@ shapes = st.tuples(st.integers(1, 6), st.integers(1, 6), st.integers(1, 6))
 @settings(max_examples=40, deadline=None)
 @given(data=st.data(), shape=shapes)
 def test_masked_modulus_leaves_masked_voxels_untouched(data, shape):
-    # Modulus projection P_M (Fienup, Appl. Opt. 21, 2758 (1982); METHODS.md):
+    # Modulus projection P_M (Fienup, Appl. Opt. 21, 2758 (1982); docs/methods.md):
     # Psi' = A Psi/|Psi| on measured voxels, Psi' = Psi on unmeasured ones.
     floats = st.floats(-1e3, 1e3, allow_nan=False, width=32)
     re = data.draw(hnp.arrays(np.float32, shape, elements=floats))
@@ -392,7 +392,7 @@ def test_bad_inputs_give_clear_errors():
 
 
 def test_undersampled_axis_warns_with_axis_and_ratio():
-    # Oversampling sigma = N / L must be >= 2 (common practice; METHODS.md).
+    # Oversampling sigma = N / L must be >= 2 (common practice; docs/methods.md).
     # A box 20 voxels long on a 32-voxel axis 2 gives sigma = 1.6 there.
     obj = np.zeros((32, 32, 32), np.complex64)
     obj[12:20, 12:20, 6:26] = 1.0

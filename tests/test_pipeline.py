@@ -19,7 +19,7 @@ from braggstrain.config import load_config
 from braggstrain.simulate.demo import compare_to_truth, simulate_experiment
 from braggstrain.pipeline import run_pipeline
 
-from conftest import ROOT, small_toml
+from conftest import ROOT, assert_runs_columns_recorded, small_toml
 
 # A short phasing plan and small crop so that one run of the whole pipeline
 # takes well under a minute on two cores; invented test settings.
@@ -120,6 +120,14 @@ def test_end_to_end_accuracy(simulated, reference_run):
     assert best["median_distance_vox"] < 3.0 and best["median_angle_deg"] < 10.0
 
 
+def test_every_runs_column_the_outputs_use_is_in_the_results_file(reference_run, simulated):
+    assert_runs_columns_recorded(simulated / "out" / "results.h5", new=True)
+    r = reference_run["results"]
+    for x in r.reflections:
+        assert x.best_run()["rank"] == 0 and x.best_run()["kept"]
+        assert x.ranking_metric == "free_nll"
+
+
 def test_results_file_datasets_have_units(reference_run, simulated):
     with h5py.File(simulated / "out" / "results.h5", "r") as f:
         missing = []
@@ -216,7 +224,7 @@ def test_nothing_read_is_evaluated_or_unpickled():
 
 
 def test_uniform_tension_sign_through_the_whole_chain(tmp_path):
-    # DESIGN.md convention: ρ = s·exp(−i G·u), u_G = −φ/|G|, tensile positive.
+    # docs/design.md convention: ρ = s·exp(−i G·u), u_G = −φ/|G|, tensile positive.
     # A crystal stretched by ε_xx = +1e-3 (and nothing else), simulated as scan
     # files, phased and combined, must give ε_xx = +1e-3 (Bragg's law: the
     # lattice spacing along x grows by 1e-3; Warren, X-ray Diffraction, 1969,
@@ -227,7 +235,7 @@ def test_uniform_tension_sign_through_the_whole_chain(tmp_path):
     (tmp_path / "t.toml").write_text(text + FAST + NO_FILES + "\n[defects]\nenabled = false\n")
     simulate_experiment(load_config(tmp_path / "t.toml"), tmp_path / "sim", log=None)
     res = run_pipeline(load_config(tmp_path / "sim" / "pipeline.toml"), tmp_path / "out", progress=False, log=None)
-    tf = res["results"]["tensor"]
+    tf = res["results"].tensor
     ok = tf.trusted & np.isfinite(tf.strain[0, 0])
     eps = {c: float(np.median(tf.strain[i, k][ok])) for c, (i, k) in
            {"xx": (0, 0), "yy": (1, 1), "zz": (2, 2), "yz": (1, 2), "xz": (0, 2), "xy": (0, 1)}.items()}
@@ -327,7 +335,7 @@ def calibration(request, tmp_path_factory, simulated, reference_run):
 def test_three_reflections_give_finite_error_bars(calibration):
     # Issue 21: with three reflections σ comes from the spread of the kept
     # starts and the Poisson replicas through G⁻¹, finite in every trusted voxel.
-    tf = calibration[3]["results"]["tensor"]
+    tf = calibration[3]["results"].tensor
     assert len(tf.labels) == 3
     m = tf.trusted
     assert m.sum() > 50

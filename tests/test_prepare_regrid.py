@@ -100,7 +100,7 @@ def test_voxel_size_is_2pi_over_N_dq(plain):
 def test_grid_keeps_the_oversampling(plain):
     """The grid's steps keep the data's oversampling: σ = 2π/(L Δq) along
     each sample axis, with L the truth's extent, is at least 0.9 of the
-    detector-frame data's smallest (METHODS.md), and ≥ 2."""
+    detector-frame data's smallest (docs/methods.md), and ≥ 2."""
     p = plain["prepared"]
     gi = plain["gridded"]
     T = p.rotation.T @ p.real_space_basis()

@@ -212,7 +212,7 @@ def test_padding_is_masked(cube):
 
 def test_oversampling_estimate_against_the_truth(cube, prepared):
     """σ_k = N_k/L_k with L_k the crystal's extent in voxels along array axis k
-    (METHODS.md); the truth's extent comes from the simulator's shape sampled
+    (docs/methods.md); the truth's extent comes from the simulator's shape sampled
     on the conjugate grid T = 2π M⁻ᵀ diag(1/N). The estimate is rough: within
     20 %."""
     p = prepared

@@ -98,7 +98,7 @@ def _loop_circulation(field_, center, axis, radius=4.0, n=2001):
 def test_dislocation_circulation_and_phase_winding(kind):
     # Circulation of u around the line is b (Hirth & Lothe, Theory of Dislocations,
     # 2nd ed., 1982, eq. 1-1); the phase φ = −G·u of reflection h then winds by
-    # −G·b = −2π h·b with b in lattice coordinates (DESIGN.md sign convention);
+    # −G·b = −2π h·b with b in lattice coordinates (docs/design.md sign convention);
     # h·b = 0 shows no winding (g·b = 0 invisibility, Williams & Carter,
     # Transmission Electron Microscopy, 2nd ed., 2009, ch. 26).
     cr = Crystal("Pt")

@@ -1,6 +1,6 @@
 """Checks of braggstrain.strain.fields (one reflection) against analytic fields.
 
-Objects are written directly as ρ = s·exp(−i G·u) (DESIGN.md convention),
+Objects are written directly as ρ = s·exp(−i G·u) (docs/design.md convention),
 without phase retrieval, on 48³ grids with a voxel of a few nm.
 """
 
@@ -97,7 +97,7 @@ def test_smoothing_is_an_amplitude_weighted_mean(grid):
 
 
 def test_displacement_along_g_uniform_strain_and_ramp(grid, pt):
-    # u_G = ĝ·u with u = D·r (analytic), from ρ = s·exp(−i G·u): DESIGN.md
+    # u_G = ĝ·u with u = D·r (analytic), from ρ = s·exp(−i G·u): docs/design.md
     # gives u_G = −φ/|G|. The reference voxel sits at u_G = 0.
     coords, support = grid
     g = pt.g_sample((2, 0, 0))

@@ -281,7 +281,7 @@ def test_removed_ramp_is_put_back(routes):
 
 def test_uniform_strain_gives_the_phase_gradient():
     """u = D·r gives φ = −G·D·r, so ∇φ = −Dᵀ G in the sample frame (the
-    convention ρ = s·exp(−i G·u) of DESIGN.md), through both routes. The
+    convention ρ = s·exp(−i G·u) of docs/design.md), through both routes. The
     gradient is taken wrap-free, arg(ρ(r+e)ρ*(r−e))/(2h)."""
     D = np.array([[1e-3, 2e-4, 0.0], [0.0, -5e-4, 0.0], [1e-4, 0.0, 5e-4]])
     sc = _scene(**SCENES["cube"], field=fw.UniformStrain(D), seed=4)

@@ -1,6 +1,6 @@
 """Checks of braggstrain.strain.tensor against analytic fields and textbook results.
 
-Objects are written directly as ρ_j = s·exp(−i G_j·u) (DESIGN.md), without
+Objects are written directly as ρ_j = s·exp(−i G_j·u) (docs/design.md), without
 phase retrieval, on 48³ grids with 40-50 Å voxels; the truth is the
 simulator's analytic gradient (braggstrain.simulate.forward), itself the isotropic
 solutions of Hirth & Lothe, Theory of Dislocations, 2nd ed. (1982), ch. 3
@@ -70,7 +70,7 @@ def _distance_to_line(coords, point, line):
 # --------------------------------------------------------------------------
 
 def test_sign_uniform_tension_along_x_is_positive(pt, grid):
-    # DESIGN.md: ρ = s·exp(−i G·u), D_ik = ∂u_i/∂x_k, tensile positive.
+    # docs/design.md: ρ = s·exp(−i G·u), D_ik = ∂u_i/∂x_k, tensile positive.
     # Written with numpy alone: u = (ε x, 0, 0), ε = +1e-3.
     coords, support = grid
     G = _gs(pt, SET3)
@@ -411,7 +411,7 @@ def test_register_recovers_shifts_and_twins(pt, reg_case):
 def test_register_twin_by_phase_consistency(pt, grid):
     # A centrosymmetric ellipsoid: the amplitudes of object and twin are the
     # same, so with four reflections the twin choices must come from the
-    # phases (the twinned set is inconsistent, DESIGN.md twin note), and
+    # phases (the twinned set is inconsistent, docs/design.md twin note), and
     # for a field that is not odd in r the twin is a different object.
     coords, support = grid
     f = fw.InterfaceGradient([0.0, 0.0, -1.0], 500.0, 2e-3, 200.0)

@@ -2,7 +2,7 @@
 
 One object per physical crystal: made once from an xrayutilities material
 (``Crystal("Pt")``) or from explicit lattice parameters, then asked about
-reflections. Conventions (DESIGN.md): crystal Cartesian coordinates are those
+reflections. Conventions (docs/design.md): crystal Cartesian coordinates are those
 of xrayutilities (a along x, b in the xy plane); the orientation U takes
 crystal Cartesian coordinates to the sample frame; G_sample = U·B·(h, k, l)
 with B including 2π, so |G| = 2π/d.

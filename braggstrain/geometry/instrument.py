@@ -11,7 +11,7 @@ are made once (from the pipeline file or a scan file) and then asked:
 * :meth:`Diffractometer.linear_map` — the local linear map from (frame, row,
   column) steps to q steps at the peak.
 
-Conventions (DESIGN.md): lab frame right-handed, y along the incident beam,
+Conventions (docs/design.md): lab frame right-handed, y along the incident beam,
 z up. Circle axes are written ``"x+"``, ``"y-"``, ``"z+"``…: the rotation
 axis and its sense (``+`` right-handed about the axis, ``-`` left-handed).
 Circles are listed outermost first (the mounting order), so for a vector v

@@ -1,27 +1,29 @@
-"""Outputs stage: the results file, VTK files for ParaView, and the bundle.
+"""The results file: one HDF5 file (``results.h5``) with everything a run found.
 
-The pipeline hands this stage one *results bundle*: a plain dict (see
-:class:`Results`) holding the sample-frame grid, the crystal's amplitude and
-support, every reflection's reconstruction and phasing record, the strain
-tensor (:class:`braggstrain.tensor.TensorField`), the dislocation lines
-(:class:`braggstrain.defects.Dislocation`) and the provenance of the run.
+:class:`Results` is the one object the pipeline builds (checked once, in its
+constructor) and every output reads: the sample-frame grid, the crystal's
+amplitude and support, every reflection's reconstruction and phasing record
+(:class:`ReflectionResult`), the strain tensor
+(:class:`braggstrain.strain.tensor.TensorField`), the dislocation lines
+(:class:`braggstrain.defects.lines.Dislocation`) and the provenance of the
+run. It answers questions: a reflection by name, a strain component by name,
+the best run of a reflection (the ensemble's own ranking), the trusted mask.
 
-* :func:`write_results` stores it in one HDF5 file (``results.h5``), written
-  atomically; every dataset carries ``units``, ``axes`` and ``description``
-  attributes. The layout is documented in ``docs/results.md``.
-* :func:`read_results` reads such a file back into a bundle (plain h5py
-  reads only: nothing is evaluated or unpickled).
-* :func:`export_vtk` writes VTK ImageData (``.vti``) with pyevtk and the
-  dislocation lines as a VTK polyline file (``.vtu``), for ParaView.
+* :func:`write_results` stores it in one HDF5 file, written atomically;
+  every dataset carries ``units``, ``axes`` and ``description`` attributes.
+  The layout is documented in ``docs/results.md``.
+* :func:`read_results` reads such a file back into :class:`Results` (plain
+  h5py reads only: nothing is evaluated or unpickled), files of layout 1
+  (written before the version marker of :mod:`braggstrain.io.files`) too.
 
-Figures are made by :mod:`braggstrain.figures`, the HTML page by
-:mod:`braggstrain.report`.
+VTK files for ParaView are written by :mod:`braggstrain.io.vtk`, figures by
+:mod:`braggstrain.report.figures`, the HTML page by :mod:`braggstrain.report.html`.
 
-Conventions (DESIGN.md): grid arrays have axes 0, 1, 2 along sample-frame
-x, y, z; the grid's ``origin`` is the sample-frame position (Å) of the voxel
-at index n//2 on each axis, and every position written (``/grid/x, y, z``,
-the dislocation lines, the tables, the VTK files) comes from that one grid
-(:class:`braggstrain.strain.grid.Grid`); lengths in Å, angles in radians
+Conventions (docs/design.md): grid arrays have axes 0, 1, 2 along
+sample-frame x, y, z; the grid's ``origin`` is the sample-frame position (Å)
+of the voxel at index n//2 on each axis, and every position written
+(``/grid/x, y, z``, the dislocation lines, the tables, the VTK files) comes
+from that one grid (:class:`braggstrain.strain.grid.Grid`); lengths in Å, angles in radians
 inside the file unless an attribute says otherwise; strain is
 dimensionless, tensile positive.
 """
@@ -29,94 +31,211 @@ dimensionless, tensile positive.
 from __future__ import annotations
 
 import dataclasses
-import os
 import shutil
-import tempfile
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, TypedDict
 
 import numpy as np
 
-from braggstrain.errors import BraggStrainError, InputError, OutputError
-from braggstrain.io.files import atomic_path, disk_full_message, is_disk_full, nbytes_of
+from braggstrain.errors import FileFormatError, InputError, did_you_mean
+from braggstrain.io.files import atomic_path, file_version, mark_version, nbytes_of, open_versioned
+from braggstrain.phasing.ensemble import DEFAULT_METRIC, RANKING_METRICS
 from braggstrain.strain.grid import Grid
-from braggstrain.strain.components import (STRAIN_COMPONENTS, gradient_from, strain_components,
+from braggstrain.strain.components import (STRAIN_COMPONENTS, STRAIN_PAIRS, gradient_from, strain_components,
                                            strain_from_components)
 
 __all__ = [
     "Results",
     "ReflectionResult",
-    "LAYOUT_VERSION",
-    "check_results",
+    "RESULTS_FORMAT",
+    "RESULTS_VERSION",
     "write_results",
     "read_results",
-    "export_vtk",
 ]
 
-#: Version of the results-file layout written by :func:`write_results`.
-LAYOUT_VERSION = 1
-
-
-_CONTENT = "braggstrain results"
+#: Version marker of the results file (:mod:`braggstrain.io.files`). Version
+#: 2 adds the runs table's ``rank`` column and each reflection's
+#: ``ranking_metric``; version 1 files (root attributes ``content`` =
+#: "braggstrain results", ``layout_version`` = 1) are still read.
+RESULTS_FORMAT = "braggstrain-results"
+RESULTS_VERSION = 2
+_LEGACY = ("content", "braggstrain results", "layout_version")
 _GRID_AXES = "x, y, z (sample frame; array index i along x, j along y, k along z; origin at index n//2)"
 _GZIP = dict(compression="gzip", compression_opts=4, shuffle=True)
 
 
-class ReflectionResult(TypedDict, total=False):
-    """One reflection of a :class:`Results` bundle (all keys plain values).
+@dataclass
+class ReflectionResult:
+    """One reflection of :class:`Results`.
 
-    Required: ``name`` (str), ``hkl`` (3 ints), ``g_vector`` ((3,) Å⁻¹,
-    sample frame), ``amplitude`` (float grid), ``phase`` (float grid, rad,
-    wrapped), ``support`` (bool grid). Optional: ``displacement`` (float grid,
-    Å, u along G; NaN outside), ``scan`` (str), ``max_counts`` (float),
-    ``oversampling`` ((3,) floats), ``runs`` and ``kept`` (int),
-    ``run_metrics`` (list of dicts, one per random start), ``prtf`` (dict
-    with ``q`` Å⁻¹, ``values``, ``resolution`` Å), ``history`` (dict name →
-    1-D array), ``shift_vox`` ((3,) voxels), ``twin`` (bool).
+    Attributes
+    ----------
+    name : str
+    hkl : tuple of 3 int
+    g_vector : (3,) float, Å⁻¹, sample frame
+    amplitude, phase : float32 grids (phase in rad, wrapped)
+    support : bool grid
+    displacement : float32 grid or None
+        u along G, Å; NaN outside and where unwrapping failed.
+    scan : str
+    max_counts : float
+    oversampling : (3,) float
+    runs, kept : int
+        Random starts made and averaged.
+    run_metrics : list of dict
+        One row per random start (the runs table: metrics, ``run``, ``seed``,
+        ``status``, ``kept``, ``rank``…).
+    ranking_metric : str
+        The metric the ensemble ranked its runs by (``[phasing] metric``).
+    prtf : dict or None
+        ``q`` (Å⁻¹), ``values``, ``resolution`` (Å).
+    history : dict name → 1-D array
+        Per-iteration metrics of the best run.
+    shift_vox : (3,) float
+        Registration shift, voxels of the common grid.
+    twin : bool
+        Replaced by its twin at registration.
     """
 
     name: str
     hkl: tuple
-    g_vector: Any
-    scan: str
-    max_counts: float
-    oversampling: Any
-    runs: int
-    kept: int
-    run_metrics: list
-    prtf: dict
-    history: dict
-    amplitude: Any
-    phase: Any
-    displacement: Any
-    support: Any
-    shift_vox: Any
-    twin: bool
+    g_vector: np.ndarray
+    amplitude: np.ndarray
+    phase: np.ndarray
+    support: np.ndarray
+    displacement: np.ndarray | None = None
+    scan: str = ""
+    max_counts: float = float("nan")
+    oversampling: np.ndarray = field(default_factory=lambda: np.full(3, np.nan))
+    runs: int = 0
+    kept: int = 0
+    run_metrics: list = field(default_factory=list)
+    ranking_metric: str = DEFAULT_METRIC
+    prtf: dict | None = None
+    history: dict = field(default_factory=dict)
+    shift_vox: np.ndarray = field(default_factory=lambda: np.zeros(3))
+    twin: bool = False
+
+    def best_run(self):
+        """The run the ensemble ranked first, as a row of :attr:`run_metrics` (None without runs).
+
+        From the recorded ``rank`` column (0 = best); a file written before
+        that column existed is ranked again by :attr:`ranking_metric` among
+        the successful runs, exactly as the ensemble ranks.
+        """
+        rows = self.run_metrics
+        if not rows:
+            return None
+        if all("rank" in m for m in rows):
+            best = [m for m in rows if int(m["rank"]) == 0]
+            return best[0] if best else None
+        metric = self.ranking_metric
+        if metric not in RANKING_METRICS:
+            raise InputError(f"reflection '{self.name}': ranking metric {metric!r} is not one of "
+                             f"{sorted(RANKING_METRICS)}")
+        ok = [m for m in rows if str(m.get("status", "ok")) == "ok" and metric in m]
+        if not ok:
+            return None
+        sign = -1.0 if RANKING_METRICS[metric] else 1.0
+        return min(ok, key=lambda m: (np.isnan(float(m[metric])), sign * float(m[metric])))
 
 
-class Results(TypedDict, total=False):
-    """The results bundle the pipeline hands to the outputs stage.
+class Results:
+    """Everything a run found, built once and asked questions by every output.
 
-    Keys: ``grid`` (dict: ``voxel_size`` (3,) Å, ``origin`` (3,) Å,
-    ``shape`` (3 ints)), ``support`` (bool grid), ``amplitude`` (float grid,
-    mean normalised amplitude), ``reflections`` (list of
-    :class:`ReflectionResult`), ``tensor`` (TensorField), ``dislocations``
-    (list of Dislocation), ``registration`` and ``mean_lattice`` (plain dicts
-    or the stage's dataclasses), ``provenance`` (dict: ``pipeline_text``,
-    ``versions``, ``seeds``, ``timings``, ``command``, ``created``).
-    ``grid``, ``support``, ``amplitude``, ``reflections`` and ``tensor`` are
-    required; the rest default to empty.
+    The pipeline builds it (:meth:`from_dict` of its bundle) and
+    :func:`read_results` returns it; the constructor checks every part
+    (shapes on the common grid, types, units' conventions), so writers,
+    figures, the report and the VTK export never check or guess again.
+
+    Attributes
+    ----------
+    grid : :class:`braggstrain.strain.grid.Grid`
+    support : bool grid
+        The crystal (common support).
+    amplitude : float32 grid
+        Mean normalised amplitude over the reflections.
+    reflections : list of :class:`ReflectionResult`
+    tensor : :class:`braggstrain.strain.tensor.TensorField`
+    dislocations : list of :class:`braggstrain.defects.lines.Dislocation`
+    registration, mean_lattice, provenance : dict of plain values
+        ``provenance`` holds ``pipeline_text``, ``command``, ``created``,
+        ``versions``, ``seeds``, ``timings``.
     """
 
-    grid: dict
-    support: Any
-    amplitude: Any
-    reflections: list
-    tensor: Any
-    dislocations: list
-    registration: dict
-    mean_lattice: dict
-    provenance: dict
+    def __init__(self, grid, support, amplitude, reflections, tensor, dislocations=(), registration=None,
+                 mean_lattice=None, provenance=None):
+        out = _check(dict(grid=grid, support=support, amplitude=amplitude, reflections=reflections,
+                          tensor=tensor, dislocations=dislocations, registration=registration,
+                          mean_lattice=mean_lattice, provenance=provenance))
+        g = out["grid"]
+        self.grid = Grid(g["shape"], g["voxel_size"], g["origin"])
+        self.support = out["support"]
+        self.amplitude = out["amplitude"]
+        self.reflections = [ReflectionResult(**x) for x in out["reflections"]]
+        self.tensor = out["tensor"]
+        self.dislocations = out["dislocations"]
+        self.registration = out["registration"]
+        self.mean_lattice = out["mean_lattice"]
+        self.provenance = out["provenance"]
+
+    @classmethod
+    def from_dict(cls, bundle):
+        """Results from a bundle dict with the keys of the constructor's arguments."""
+        if isinstance(bundle, Results):
+            return bundle
+        if not isinstance(bundle, dict):
+            raise InputError(f"results: expected a dict (the results bundle), got {type(bundle).__name__}")
+        for key in ("grid", "support", "amplitude", "reflections", "tensor"):
+            if key not in bundle:
+                raise InputError(f"results: missing key '{key}'")
+        unknown = set(bundle) - set(_BUNDLE_KEYS)
+        if unknown:
+            raise InputError(f"results: unknown key(s) {sorted(unknown)}; expected some of {list(_BUNDLE_KEYS)}")
+        return cls(**bundle)
+
+    # -- questions ---------------------------------------------------------
+    @property
+    def names(self):
+        """Reflection names, in order."""
+        return [x.name for x in self.reflections]
+
+    def reflection(self, name):
+        """The :class:`ReflectionResult` of reflection ``name``."""
+        for x in self.reflections:
+            if x.name == name:
+                return x
+        raise InputError(f"reflection '{name}': not in the results{did_you_mean(name, self.names)}; "
+                         f"expected one of {self.names}")
+
+    def strain(self, component):
+        """One strain component on the grid, e.g. ``"xz"`` (``"zx"`` is the same), dimensionless."""
+        return self.tensor.strain[_component_index(component)]
+
+    def strain_uncertainty(self, component):
+        """One standard deviation of a strain component on the grid."""
+        return self.tensor.strain_uncertainty[_component_index(component)]
+
+    @property
+    def trusted(self):
+        """Voxels where the strain is trusted: the tensor's trusted mask inside the crystal."""
+        return np.asarray(self.tensor.trusted, bool) & self.support
+
+    def best_run(self, name):
+        """The run the ensemble ranked first for reflection ``name`` (see :meth:`ReflectionResult.best_run`)."""
+        return self.reflection(name).best_run()
+
+
+_BUNDLE_KEYS = ("grid", "support", "amplitude", "reflections", "tensor", "dislocations", "registration",
+                "mean_lattice", "provenance")
+
+
+def _component_index(component):
+    c = str(component).lower()
+    for name, (i, k) in zip(STRAIN_COMPONENTS, STRAIN_PAIRS):
+        if c in (name, name[::-1]):
+            return i, k
+    raise InputError(f"strain component {component!r}: expected one of {list(STRAIN_COMPONENTS)}")
 
 
 # --------------------------------------------------------------------------
@@ -164,8 +283,13 @@ def _grid_array(value, shape, where, kind="float"):
 
 def _check_reflection(r, j, shape, names):
     where = f"results['reflections'][{j}]"
+    if isinstance(r, ReflectionResult):
+        r = dataclasses.asdict(r)
     if not isinstance(r, dict):
         raise InputError(f"{where}: expected a dict, got {type(r).__name__}")
+    unknown = set(r) - {f.name for f in dataclasses.fields(ReflectionResult)}
+    if unknown:
+        raise InputError(f"{where}: unknown key(s) {sorted(unknown)}")
     out = dict(r)
     for key in ("name", "hkl", "g_vector", "amplitude", "phase", "support"):
         if key not in r:
@@ -212,6 +336,10 @@ def _check_reflection(r, j, shape, names):
     out["shift_vox"] = (_vec3(r["shift_vox"], f"{where}['shift_vox']")
                         if r.get("shift_vox") is not None else np.zeros(3))
     out["twin"] = bool(r.get("twin", False))
+    metric = r.get("ranking_metric", DEFAULT_METRIC)
+    if metric not in RANKING_METRICS:
+        raise InputError(f"{where}['ranking_metric']: expected one of {sorted(RANKING_METRICS)}, got {metric!r}")
+    out["ranking_metric"] = metric
     rm = r.get("run_metrics", []) or []
     if not isinstance(rm, (list, tuple)) or not all(isinstance(m, dict) for m in rm):
         raise InputError(f"{where}['run_metrics']: expected a list of dicts (one per random start)")
@@ -262,8 +390,8 @@ def _check_tensor(tf, shape):
     return tf
 
 
-def check_results(results):
-    """Check a results bundle and return a normalised copy.
+def _check(results):
+    """Check the parts of :class:`Results` and return them normalised.
 
     Arrays become numpy arrays of the documented dtypes, optional keys get
     their defaults (empty lists and dicts, NaN numbers), dataclasses in
@@ -276,12 +404,9 @@ def check_results(results):
     """
     from braggstrain.defects.lines import Dislocation
 
-    if not isinstance(results, dict):
-        raise InputError(f"results: expected a dict (the results bundle), got {type(results).__name__}")
-    for key in ("grid", "support", "amplitude", "reflections", "tensor"):
-        if key not in results:
-            raise InputError(f"results: missing key '{key}'")
     grid = results["grid"]
+    if isinstance(grid, Grid):
+        grid = {"voxel_size": grid.voxel_size, "origin": grid.origin, "shape": grid.shape}
     if not isinstance(grid, dict):
         raise InputError("results['grid']: expected a dict with voxel_size, origin and shape")
     for key in ("voxel_size", "shape"):
@@ -463,16 +588,15 @@ _HISTORY_UNITS = {
     "support_size": "voxels",
     "stage": "index of the phasing-plan stage",
     "checkpoint": "iteration number",
-    "nll": "1 (per voxel)",
-    "free_nll": "1 (per voxel)",
-    "llk": "1 (per voxel)",
-    "free_llk": "1 (per voxel)",
+    "nll": "1 (negative log-likelihood per measured voxel)",
+    "free_nll": "1 (negative log-likelihood per held-out voxel)",
     "background": "counts per voxel",
     "run": "1 (index of the random start)",
     "seed": "1 (random seed)",
     "status": "text",
     "message": "text",
     "kept": "1 (true when averaged into the result)",
+    "rank": "1 (0 = best by the ranking metric; -1 = failed run)",
     "sharpness": "1 (dimensionless)",
     "iterations": "iterations",
     "elapsed": "s",
@@ -554,8 +678,8 @@ def write_results(path, results):
     ----------
     path : str or Path
         Target file, conventionally ``results.h5``.
-    results : dict
-        The results bundle (:class:`Results`).
+    results : Results
+        (or a bundle dict, which :meth:`Results.from_dict` builds first).
 
     Returns
     -------
@@ -565,20 +689,19 @@ def write_results(path, results):
 
     from braggstrain.io.dislocations import write_dislocations_h5
 
-    r = check_results(results)
+    r = Results.from_dict(results)
     path = Path(path)
-    grid = Grid.of(r["grid"])
+    grid = r.grid
     shape = grid.shape
     vs = grid.voxel_size
-    tf = r["tensor"]
-    with atomic_path(path, size_hint=nbytes_of(r)) as tmp:
+    tf = r.tensor
+    with atomic_path(path, size_hint=nbytes_of(vars(r))) as tmp:
         with h5py.File(tmp, "w") as f:
-            f.attrs["content"] = _CONTENT
-            f.attrs["layout_version"] = LAYOUT_VERSION
+            mark_version(f, RESULTS_FORMAT, RESULTS_VERSION)
             f.attrs["frame"] = "sample frame: the lab frame with every sample circle at zero (y along the beam, z up)"
             f.attrs["axes"] = _GRID_AXES
             f.attrs["length_units"] = "Å"
-            f.attrs["created"] = r["provenance"].get("created", "")
+            f.attrs["created"] = r.provenance.get("created", "")
 
             g = f.create_group("grid")
             g.attrs["voxel_size"] = vs
@@ -594,9 +717,9 @@ def write_results(path, results):
                          dtype=np.float64, compress=False)
 
             c = f.create_group("crystal")
-            _dataset(c, "amplitude", r["amplitude"], "1 (normalised)", _GRID_AXES,
+            _dataset(c, "amplitude", r.amplitude, "1 (normalised)", _GRID_AXES,
                      "mean over reflections of the normalised reconstructed amplitude")
-            _mask(c, "support", r["support"], "voxels inside the crystal (common support)")
+            _mask(c, "support", r.support, "voxels inside the crystal (common support)")
 
             t = f.create_group("tensor")
             comp_axes = "component (xx, yy, zz, yz, xz, xy), " + _GRID_AXES
@@ -607,7 +730,7 @@ def write_results(path, results):
                      comp_axes, "one standard deviation of each strain component (what it includes: the "
                      "attribute 'includes'); NaN where it cannot be estimated")
             t["strain_uncertainty"].attrs["components"] = list(STRAIN_COMPONENTS)
-            basis = getattr(tf, "uncertainty_basis", "") or "not recorded"
+            basis = tf.uncertainty_basis or "not recorded"
             t["strain_uncertainty"].attrs["includes"] = basis
             vec_axes = "component (x, y, z), " + _GRID_AXES
             _dataset(t, "rotation", tf.rotation, "rad", vec_axes,
@@ -656,19 +779,19 @@ def write_results(path, results):
                      "principal_directions[:, m] is the direction of principal strain m (sign arbitrary)")
 
             rg = f.create_group("reflections")
-            rg.attrs["order"] = [x["name"] for x in r["reflections"]]
-            for x in r["reflections"]:
-                _write_reflection(rg.create_group(x["name"]), x)
+            rg.attrs["order"] = r.names
+            for x in r.reflections:
+                _write_reflection(rg.create_group(x.name), x)
 
             dg = f.create_group("dislocations")
-            write_dislocations_h5(dg, r["dislocations"])
+            write_dislocations_h5(dg, r.dislocations)
             _label_dislocations(dg)
 
             for key in ("registration", "mean_lattice"):
-                _put(f, key, r[key], f"results['{key}']")
+                _put(f, key, getattr(r, key), f"results['{key}']")
 
             p = f.create_group("provenance")
-            prov = r["provenance"]
+            prov = r.provenance
             ds = p.create_dataset("pipeline_text", data=prov.get("pipeline_text", ""), dtype=h5py.string_dtype())
             ds.attrs["units"] = "text"
             ds.attrs["description"] = "the pipeline file (TOML) of the run, verbatim"
@@ -712,39 +835,40 @@ def _label_dislocations(group):
 
 
 def _write_reflection(g, x):
-    g.attrs["name"] = x["name"]
-    g.attrs["hkl"] = np.asarray(x["hkl"], np.int64)
-    g.attrs["g_vector"] = x["g_vector"]
+    g.attrs["name"] = x.name
+    g.attrs["hkl"] = np.asarray(x.hkl, np.int64)
+    g.attrs["g_vector"] = x.g_vector
     g.attrs["g_vector_units"] = "Å⁻¹ (2π included), sample frame"
-    g.attrs["scan"] = x["scan"]
-    g.attrs["max_counts"] = x["max_counts"]
-    g.attrs["oversampling"] = x["oversampling"]
-    g.attrs["runs"] = x["runs"]
-    g.attrs["kept"] = x["kept"]
-    g.attrs["shift_vox"] = x["shift_vox"]
+    g.attrs["scan"] = x.scan
+    g.attrs["max_counts"] = x.max_counts
+    g.attrs["oversampling"] = x.oversampling
+    g.attrs["runs"] = x.runs
+    g.attrs["kept"] = x.kept
+    g.attrs["shift_vox"] = x.shift_vox
     g.attrs["shift_units"] = "voxels of the common grid"
-    g.attrs["twin"] = x["twin"]
-    _dataset(g, "amplitude", x["amplitude"], "1 (normalised)", _GRID_AXES,
+    g.attrs["twin"] = x.twin
+    g.attrs["ranking_metric"] = x.ranking_metric
+    _dataset(g, "amplitude", x.amplitude, "1 (normalised)", _GRID_AXES,
              "reconstructed amplitude on the common sample-frame grid")
-    _dataset(g, "phase", x["phase"], "rad (wrapped to (−π, π])", _GRID_AXES,
+    _dataset(g, "phase", x.phase, "rad (wrapped to (−π, π])", _GRID_AXES,
              "reconstructed phase φ = −G·u (wrapped)")
-    if x["displacement"] is not None:
-        _dataset(g, "displacement", x["displacement"], "Å", _GRID_AXES,
+    if x.displacement is not None:
+        _dataset(g, "displacement", x.displacement, "Å", _GRID_AXES,
                  "displacement along G, u_G = −φ/|G| (unwrapped); NaN outside and where unwrapping failed")
-    _mask(g, "support", x["support"], "this reflection's support after registration")
-    _run_table(g, x["run_metrics"], f"reflection '{x['name']}' run_metrics")
-    if x["prtf"] is not None:
+    _mask(g, "support", x.support, "this reflection's support after registration")
+    _run_table(g, x.run_metrics, f"reflection '{x.name}' run_metrics")
+    if x.prtf is not None:
         pg = g.create_group("prtf")
-        pg.attrs["resolution"] = x["prtf"]["resolution"]
+        pg.attrs["resolution"] = x.prtf["resolution"]
         pg.attrs["resolution_units"] = "Å"
-        _dataset(pg, "q", x["prtf"]["q"], "Å⁻¹", "shell", "centre of each |q| shell", dtype=np.float64,
+        _dataset(pg, "q", x.prtf["q"], "Å⁻¹", "shell", "centre of each |q| shell", dtype=np.float64,
                  compress=False)
-        _dataset(pg, "values", x["prtf"]["values"], "1 (dimensionless, 0..1)", "shell",
+        _dataset(pg, "values", x.prtf["values"], "1 (dimensionless, 0..1)", "shell",
                  "phase-retrieval transfer function per shell (NaN where a shell is empty)",
                  dtype=np.float64, compress=False)
     hg = g.create_group("history")
     hg.attrs["description"] = "per-iteration metrics of the best run"
-    hist = x["history"]
+    hist = x.history
     n_iter = max((len(v) for v in hist.values()), default=0)
     n_check = len(hist["checkpoint"]) if "checkpoint" in hist else -1
     for k, v in hist.items():
@@ -766,8 +890,8 @@ def _write_reflection(g, x):
 
 def _need(node, key, path):
     if key not in node:
-        raise InputError(f"{path}: field '{node.name.rstrip('/')}/{key}' missing; expected a results file "
-                         f"written by braggstrain (layout version {LAYOUT_VERSION})")
+        raise FileFormatError(path, f"{node.name.rstrip('/')}/{key}", "missing; expected a results file "
+                                                                      "written by braggstrain")
     return node[key]
 
 
@@ -777,37 +901,31 @@ def _text(v):
 
 
 def read_results(path):
-    """Read a results file back into a bundle.
+    """Read a results file back into :class:`Results`.
 
     Only datasets and attributes are read (h5py); nothing is evaluated or
-    unpickled. The tensor comes back as a :class:`~braggstrain.tensor.TensorField`
-    (its displacement gradient rebuilt from strain and rotation), the lines
-    as :class:`~braggstrain.defects.Dislocation` records, their points on the
-    file's grid (a file written before the points carried the grid's origin,
-    recognised by its ``/dislocations`` group lacking ``points_frame``, has
-    the origin added on reading).
+    unpickled. The tensor comes back as a
+    :class:`~braggstrain.strain.tensor.TensorField` (its displacement
+    gradient rebuilt from strain and rotation), the lines as
+    :class:`~braggstrain.defects.lines.Dislocation` records, their points on
+    the file's grid (a file written before the points carried the grid's
+    origin, recognised by its ``/dislocations`` group lacking
+    ``points_frame``, has the origin added on reading). Files of layout 1
+    (no ``rank`` column, no ``ranking_metric``) take the metric from the
+    ``[phasing]`` table of their pipeline file.
 
     Raises
     ------
-    InputError
-        The file is missing, not a braggstrain results file, or lacks a field.
+    FileFormatError (an InputError)
+        The file is missing, not a braggstrain results file (of layout 1 or
+        2), or lacks a field.
     """
-    import h5py
-
-    from braggstrain.io.dislocations import read_dislocations_h5
-    from braggstrain.strain.tensor import TensorField
-
     path = Path(path)
-    if not path.is_file():
-        raise InputError(f"{path}: no such results file")
-    try:
-        f = h5py.File(path, "r")
-    except OSError as exc:
-        raise InputError(f"{path}: cannot be opened as HDF5 ({exc}); expected a results file") from None
+    f = open_versioned(path, RESULTS_FORMAT, (1, RESULTS_VERSION), legacy=_LEGACY)
     trail = _Trail(f)
     try:
         with f:
-            return _read_all(trail, path)
+            return _read_all(trail, path, file_version(f, _LEGACY[2]))
     except InputError:
         raise
     except (OSError, RuntimeError, KeyError, ValueError, TypeError, IndexError, AttributeError) as exc:
@@ -896,78 +1014,90 @@ def _raw(node):
     return node._node if isinstance(node, _Trail) else node
 
 
-def _read_all(f, path):
-    from braggstrain.defects.lines import read_dislocations_h5
+def _read_all(f, path, version):
+    from braggstrain.io.dislocations import read_dislocations_h5
     from braggstrain.strain.tensor import TensorField
 
-    if True:
-        if _text(f.attrs.get("content")) != _CONTENT:
-            raise InputError(f"{path}: attribute 'content' is {_text(f.attrs.get('content'))!r}; expected "
-                             f"'{_CONTENT}' (a file written by braggstrain.outputs.write_results)")
-        ver = int(f.attrs.get("layout_version", -1))
-        if ver != LAYOUT_VERSION:
-            raise InputError(f"{path}: layout_version {ver}; this braggstrain reads version {LAYOUT_VERSION}")
-        g = _need(f, "grid", path)
-        grid = {"voxel_size": np.asarray(g.attrs["voxel_size"], float),
-                "origin": np.asarray(g.attrs["origin"], float),
-                "shape": tuple(int(n) for n in g.attrs["shape"])}
-        c = _need(f, "crystal", path)
-        out = {"grid": grid,
-               "amplitude": _need(c, "amplitude", path)[()],
-               "support": _need(c, "support", path)[()].astype(bool)}
+    g = _need(f, "grid", path)
+    grid = Grid(tuple(int(n) for n in g.attrs["shape"]), np.asarray(g.attrs["voxel_size"], float),
+                np.asarray(g.attrs["origin"], float))
+    c = _need(f, "crystal", path)
+    out = {"grid": grid,
+           "amplitude": _need(c, "amplitude", path)[()],
+           "support": _need(c, "support", path)[()].astype(bool)}
 
-        t = _need(f, "tensor", path)
-        strain = strain_from_components(_need(t, "strain", path)[()])
-        rotation = _need(t, "rotation", path)[()]
-        labels = [str(s) for s in _plain(t.attrs["labels"])]
-        tf = TensorField(
-            displacement_gradient=gradient_from(strain, rotation).astype(np.float32),
-            strain=strain,
-            rotation=rotation,
-            residual=_need(t, "residual", path)[()],
-            residual_per_reflection=_need(t, "residual_per_reflection", path)[()],
-            strain_uncertainty=strain_from_components(_need(t, "strain_uncertainty", path)[()]),
-            rotation_uncertainty=_need(t, "rotation_uncertainty", path)[()],
-            displacement=t["displacement"][()] if "displacement" in t else None,
-            support=_need(t, "support", path)[()].astype(bool),
-            trusted=_need(t, "trusted", path)[()].astype(bool),
-            condition_number=float(t.attrs["condition_number"]),
-            g_vectors=_need(t, "g_vectors", path)[()],
-            labels=labels,
-            voxel_size=grid["voxel_size"].copy(),
-            reference=tuple(int(v) for v in t.attrs["reference_voxel"]),
-            outlier=_text(t.attrs.get("outlier")) or None,
-            outlier_scores=({k: float(v) for k, v in t["outlier_scores"].attrs.items()
-                             if k not in ("description", "units")} if "outlier_scores" in t else {}),
-            uncertainty_basis=_text(t.attrs.get("uncertainty_basis")) or "",
-        )
-        out["tensor"] = tf
+    t = _need(f, "tensor", path)
+    strain = strain_from_components(_need(t, "strain", path)[()])
+    rotation = _need(t, "rotation", path)[()]
+    labels = [str(s) for s in _plain(t.attrs["labels"])]
+    tf = TensorField(
+        displacement_gradient=gradient_from(strain, rotation).astype(np.float32),
+        strain=strain,
+        rotation=rotation,
+        residual=_need(t, "residual", path)[()],
+        residual_per_reflection=_need(t, "residual_per_reflection", path)[()],
+        strain_uncertainty=strain_from_components(_need(t, "strain_uncertainty", path)[()]),
+        rotation_uncertainty=_need(t, "rotation_uncertainty", path)[()],
+        displacement=t["displacement"][()] if "displacement" in t else None,
+        support=_need(t, "support", path)[()].astype(bool),
+        trusted=_need(t, "trusted", path)[()].astype(bool),
+        condition_number=float(t.attrs["condition_number"]),
+        g_vectors=_need(t, "g_vectors", path)[()],
+        labels=labels,
+        voxel_size=grid.voxel_size.copy(),
+        reference=tuple(int(v) for v in t.attrs["reference_voxel"]),
+        outlier=_text(t.attrs.get("outlier")) or None,
+        outlier_scores=({k: float(v) for k, v in t["outlier_scores"].attrs.items()
+                         if k not in ("description", "units")} if "outlier_scores" in t else {}),
+        uncertainty_basis=_text(t.attrs.get("uncertainty_basis")) or "",
+    )
+    out["tensor"] = tf
 
-        rg = _need(f, "reflections", path)
-        order = [str(s) for s in _plain(rg.attrs["order"])]
-        out["reflections"] = [_read_reflection(_need(rg, name, path), path) for name in order]
-        dg = _need(f, "dislocations", path)
-        out["dislocations"] = read_dislocations_h5(_raw(dg))
-        if "points_frame" not in dg.attrs:
-            # written before the line points were put on the grid (issue 17): they were
-            # computed with the origin taken as zero, i.e. relative to the voxel at n//2
-            for d in out["dislocations"]:
-                d.points = d.points + grid["origin"]
-        for key in ("registration", "mean_lattice"):
-            out[key] = _get(_raw(f[key])) if key in f else {}
-        p = _need(f, "provenance", path)
-        prov = {"pipeline_text": _text(p["pipeline_text"][()]) if "pipeline_text" in p else "",
-                "command": _text(p.attrs.get("command")), "created": _text(p.attrs.get("created"))}
-        for key in ("versions", "seeds", "timings"):
-            prov[key] = _get(_raw(p[key])) if key in p else {}
-        if "other" in p:
-            prov.update(_get(_raw(p["other"])))
-        out["provenance"] = prov
-    return out
+    rg = _need(f, "reflections", path)
+    order = [str(s) for s in _plain(rg.attrs["order"])]
+    out["provenance"] = _read_provenance(_need(f, "provenance", path))
+    legacy_metric = _phasing_metric(out["provenance"]["pipeline_text"]) if version == 1 else None
+    out["reflections"] = [_read_reflection(_need(rg, name, path), path, legacy_metric) for name in order]
+    dg = _need(f, "dislocations", path)
+    out["dislocations"] = read_dislocations_h5(_raw(dg))
+    if "points_frame" not in dg.attrs:
+        # written before the line points were put on the grid (issue 17): they were
+        # computed with the origin taken as zero, i.e. relative to the voxel at n//2
+        for d in out["dislocations"]:
+            d.points = d.points + grid.origin
+    for key in ("registration", "mean_lattice"):
+        out[key] = _get(_raw(f[key])) if key in f else {}
+    return Results(**out)
 
 
-def _read_reflection(g, path):
+def _read_provenance(p):
+    prov = {"pipeline_text": _text(p["pipeline_text"][()]) if "pipeline_text" in p else "",
+            "command": _text(p.attrs.get("command")), "created": _text(p.attrs.get("created"))}
+    for key in ("versions", "seeds", "timings"):
+        prov[key] = _get(_raw(p[key])) if key in p else {}
+    if "other" in p:
+        prov.update(_get(_raw(p["other"])))
+    return prov
+
+
+def _phasing_metric(pipeline_text):
+    """The ranking metric a layout-1 file's run used: ``[phasing] metric`` of its
+    pipeline file, else the ensemble's default."""
+    try:
+        import tomllib
+    except ModuleNotFoundError:  # pragma: no cover - Python < 3.11
+        import tomli as tomllib  # type: ignore
+    try:
+        metric = tomllib.loads(pipeline_text or "").get("phasing", {}).get("metric", DEFAULT_METRIC)
+    except (tomllib.TOMLDecodeError, AttributeError):
+        metric = DEFAULT_METRIC
+    return metric if metric in RANKING_METRICS else DEFAULT_METRIC
+
+
+def _read_reflection(g, path, legacy_metric=None):
+    metric = legacy_metric or _text(g.attrs.get("ranking_metric")) or DEFAULT_METRIC
     x = {"name": _text(g.attrs["name"]),
+         "ranking_metric": metric,
          "hkl": tuple(int(v) for v in g.attrs["hkl"]),
          "g_vector": np.asarray(g.attrs["g_vector"], float),
          "scan": _text(g.attrs.get("scan")),
@@ -988,133 +1118,3 @@ def _read_reflection(g, path):
         pg = g["prtf"]
         x["prtf"] = {"q": pg["q"][()], "values": pg["values"][()], "resolution": float(pg.attrs["resolution"])}
     return x
-
-
-# --------------------------------------------------------------------------
-# VTK
-# --------------------------------------------------------------------------
-
-def _vtk_name(text):
-    keep = "".join(ch if (ch.isalnum() or ch in "_-") else "_" for ch in str(text))
-    return keep or "reflection"
-
-
-def export_vtk(results_or_path, out_dir, *, stem="crystal"):
-    """Write ParaView files: one VTK ImageData file and the dislocation lines.
-
-    ``<stem>.vti`` holds, as point data on the voxel centres (spacing = the
-    voxel size in **nm**, origin = the sample-frame position of voxel
-    (0, 0, 0) in nm, so its points are ``/grid/x, y, z`` in nm): ``amplitude``, ``support`` (0/1), ``strain_xx`` …
-    ``strain_xy``, ``hydrostatic_strain``, ``von_mises_strain``,
-    ``rotation_rad`` (vector), ``displacement_nm`` (vector, nm, so that
-    ParaView's warp-by-vector uses the grid's unit), ``residual_rad_per_A``,
-    and per reflection ``phase_rad_<name>`` and ``u_along_G_nm_<name>``.
-    NaN marks voxels outside the crystal. ``<stem>_dislocations.vtu`` holds
-    the lines as polylines (sample-frame positions in nm, the same frame as
-    the ``.vti``) with point data ``line_id`` (1-based, the
-    report's numbering) and ``character_deg``; it is written only when
-    there are lines. Written with pyevtk.
-
-    Parameters
-    ----------
-    results_or_path : dict or str or Path
-        A results bundle or a results file.
-    out_dir : str or Path
-        Folder for the files (created if missing).
-    stem : str
-        File-name stem.
-
-    Returns
-    -------
-    list of Path
-    """
-    try:
-        from pyevtk.hl import imageToVTK, polyLinesToVTK
-    except ImportError:  # pragma: no cover - depends on the environment
-        raise BraggStrainError("export_vtk: the pyevtk package is needed for VTK export (pip install pyevtk)") from None
-
-    if isinstance(results_or_path, (str, os.PathLike)):
-        r = read_results(results_or_path)
-    else:
-        r = results_or_path
-    r = check_results(r)
-    if not stem or _vtk_name(stem) != stem:
-        raise InputError(f"stem: expected letters, digits, '_' or '-' only, got {stem!r}")
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
-    grid = Grid.of(r["grid"])
-    vs_nm = grid.voxel_size / 10.0
-    origin_nm = grid.corner / 10.0  # VTK's origin: the position of voxel (0, 0, 0)
-    tf = r["tensor"]
-
-    def f32(a):
-        return np.ascontiguousarray(a, dtype=np.float32)
-
-    data = {"amplitude": f32(r["amplitude"]),
-            "support": np.ascontiguousarray(r["support"], dtype=np.uint8)}
-    comps = strain_components(tf.strain)
-    for m, name in enumerate(STRAIN_COMPONENTS):
-        data[f"strain_{name}"] = f32(comps[m])
-    data["hydrostatic_strain"] = f32(tf.hydrostatic)
-    data["von_mises_strain"] = f32(tf.von_mises)
-    data["rotation_rad"] = tuple(f32(tf.rotation[i]) for i in range(3))
-    if tf.displacement is not None:
-        data["displacement_nm"] = tuple(f32(tf.displacement[i] / 10.0) for i in range(3))
-    data["residual_rad_per_A"] = f32(tf.residual)
-    used = set()
-    for x in r["reflections"]:
-        nm = _vtk_name(x["name"])
-        base = nm
-        k = 2
-        while nm in used:
-            nm = f"{base}_{k}"
-            k += 1
-        used.add(nm)
-        data[f"phase_rad_{nm}"] = f32(x["phase"])
-        if x["displacement"] is not None:
-            data[f"u_along_G_nm_{nm}"] = f32(x["displacement"] / 10.0)
-
-    written = []
-    work = Path(tempfile.mkdtemp(prefix=f".{stem}.vtk.", dir=out_dir))
-    try:
-        tmp = imageToVTK(str(work / stem), origin=tuple(float(v) for v in origin_nm),
-                         spacing=tuple(float(v) for v in vs_nm), pointData=data,
-                         fieldData={"voxel_size_nm": np.asarray(vs_nm, np.float64)})
-        staged = [(Path(tmp), out_dir / f"{stem}.vti")]
-        lines = r["dislocations"]
-        if lines:
-            xs, ys, zs, counts, ids, chars = [], [], [], [], [], []
-            for k, d in enumerate(lines):
-                p = np.asarray(d.points, float) / 10.0
-                ch = np.asarray(d.local_character_deg, float)
-                if ch.shape != (len(p),):
-                    ch = np.full(len(p), float(d.character_deg))
-                if d.closed and len(p) > 2:
-                    p = np.vstack([p, p[:1]])
-                    ch = np.append(ch, ch[:1])
-                xs.append(p[:, 0])
-                ys.append(p[:, 1])
-                zs.append(p[:, 2])
-                counts.append(len(p))
-                ids.append(np.full(len(p), k + 1, np.int32))
-                chars.append(ch)
-            tmp = polyLinesToVTK(str(work / f"{stem}_dislocations"),
-                                 np.ascontiguousarray(np.concatenate(xs)),
-                                 np.ascontiguousarray(np.concatenate(ys)),
-                                 np.ascontiguousarray(np.concatenate(zs)),
-                                 pointsPerLine=np.asarray(counts, np.int64),
-                                 pointData={"line_id": np.concatenate(ids),
-                                            "character_deg": np.concatenate(chars).astype(np.float64)})
-            staged.append((Path(tmp), out_dir / f"{stem}_dislocations.vtu"))
-        for src, dst in staged:
-            os.replace(src, dst)
-            written.append(dst)
-    except (OSError, RuntimeError) as exc:
-        if is_disk_full(exc):
-            need = sum(int(np.asarray(v).nbytes) for v in data.values()) + sum(
-                int(np.asarray(c).nbytes) for v in data.values() if isinstance(v, tuple) for c in v)
-            raise OutputError(disk_full_message(out_dir / f"{stem}.vti", need)) from None
-        raise
-    finally:
-        shutil.rmtree(work, ignore_errors=True)
-    return written

@@ -25,8 +25,9 @@ from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _opti
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
-__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "worker_pool", "DEFAULT_RUNS",
-           "DEFAULT_KEEP"]
+__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "DEFAULT_METRIC", "METRIC_LABELS",
+           "metric_label",
+           "worker_pool", "DEFAULT_RUNS", "DEFAULT_KEEP"]
 
 #: Random starts and runs averaged when nothing else is asked (the pipeline's
 #: ``[phasing] runs`` and ``keep`` default to these too).
@@ -69,6 +70,29 @@ RANKING_METRICS = {
     "amplitude_error": False,
     "sharpness": True,
 }
+#: The ranking metric unless ``metric`` (``[phasing] metric``) says otherwise.
+DEFAULT_METRIC = "free_nll"
+
+#: (name, meaning and unit) of each run metric, for axes and tables (the keys are the
+#: columns of the runs table in results.h5).
+METRIC_LABELS = {
+    "nll": ("negative log-likelihood",
+            "Poisson negative log-likelihood per measured voxel (nats)"),
+    "free_nll": ("free negative log-likelihood",
+                 "negative log-likelihood per measured voxel (free: held-out voxels), nats"),
+    "amplitude_error": ("amplitude error", "Σ(|Ψ|−√I)² / ΣI over the constrained voxels (dimensionless)"),
+    "free_amplitude_error": ("free amplitude error", "Σ(|Ψ|−√I)² / ΣI over the held-out voxels (dimensionless)"),
+    "support_size": ("support size", "voxels in the final support"),
+    "background": ("background", "flat background, counts per voxel"),
+    "sharpness": ("sharpness", "N·Σ|ρ|⁴ / (Σ|ρ|²)², higher is more concentrated (dimensionless)"),
+}
+
+
+def metric_label(key, long=False):
+    """Label of a phasing metric: its meaning and unit, or with ``long`` its
+    name, a colon, and its meaning and unit (axis labels, report tables)."""
+    name, unit = METRIC_LABELS.get(key, (key.replace("_", " "), ""))
+    return f"{name}: {unit}" if long and unit else (unit or name)
 
 
 @dataclass
@@ -253,7 +277,7 @@ def _align_support(sup, info):
 
 
 def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan=None, seed=None, executor=None,
-             progress=False, metric="free_nll", threads=1, coherence=False, background=None,
+             progress=False, metric=DEFAULT_METRIC, threads=1, coherence=False, background=None,
              free_fraction=0.03, fft_backend="auto", fft_effort=DEFAULT_EFFORT,
              initial_threshold=0.04, remove_ramp=True, center=True) -> EnsembleResult:
     """Independent random starts, ranked, aligned and averaged.

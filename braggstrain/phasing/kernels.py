@@ -23,7 +23,7 @@ The measured amplitude ``amp`` has the mask and the free set folded in:
 The modulus projection leaves the last two kinds free (only the ``1/N``
 scale is applied), and the free misfit is summed in the same pass.
 
-Formulas (METHODS.md; Fienup, Appl. Opt. 21, 2758 (1982); Luke, Inverse
+Formulas (docs/methods.md; Fienup, Appl. Opt. 21, 2758 (1982); Luke, Inverse
 Problems 21, 37 (2005)), with ``p = P_M x`` the modulus-projected iterate and
 ``S`` the support:
 

@@ -54,7 +54,7 @@ class Stage:
         Number of iterations of this stage (> 0).
     beta : float or None
         Feedback (HIO) or relaxation (RAAR) parameter in (0, 1]; ``None``
-        takes 0.9 for HIO and 0.8 for RAAR (METHODS.md); ignored by ER.
+        takes 0.9 for HIO and 0.8 for RAAR (docs/methods.md); ignored by ER.
     support_update : {"shrinkwrap", "none"}
         Support rule: shrink-wrap (Marchesini et al., Phys. Rev. B 68,
         140101, 2003) or a fixed support.

@@ -18,7 +18,7 @@ strain tensor is determined. This module
 4. writes a stereographic projection of the G directions and a pipeline-file
    fragment with the chosen reflections.
 
-Conventions are those of DESIGN.md: lab frame y along the beam, z up;
+Conventions are those of docs/design.md: lab frame y along the beam, z up;
 Q_lab = R_s(angles)·G_sample at the Bragg condition; Å, Å⁻¹ with 2π; degrees
 at the interface (every field that holds degrees ends in ``_deg``), radians
 inside. The user documentation is docs/planner.md.
@@ -714,7 +714,7 @@ def score_set(g_vectors, weights):
 
     The phase gradients of reflection j give ∇φ_j = −(∇u)ᵀ G_j, so per
     voxel and per gradient direction the displacement gradient is a weighted
-    least-squares fit with covariance σ²·C, C = (Gᵀ W G)⁻¹ (METHODS.md,
+    least-squares fit with covariance σ²·C, C = (Gᵀ W G)⁻¹ (docs/methods.md,
     Fields). The score is trace(C), Å²; ε_ii has variance C_ii and ε_ik
     (i ≠ k) (C_ii + C_kk)/4, taking the three gradient directions as
     independent.

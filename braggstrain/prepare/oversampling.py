@@ -26,7 +26,7 @@ def estimate_oversampling(intensity, threshold=0.005, mask=None):
     level = max(threshold·max, twice the 99th percentile of |F⁻¹ I| in the
     array's corner blocks, where no crystal with σ > 8/3 reaches),
     the (1 − threshold) undoing the shrink of a linear tent at its foot, and
-    σ_k = N_k / L_k (METHODS.md: σ = 2π/(L Δq)). Rough: where the crystal's
+    σ_k = N_k / L_k (docs/methods.md: σ = 2π/(L Δq)). Rough: where the crystal's
     extreme along an axis is a vertex the autocorrelation fades there as the
     cube of the distance, so the extent is underestimated and σ comes out
     high; with the default threshold 0.005, measured on the simulator's

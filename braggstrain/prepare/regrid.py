@@ -12,7 +12,7 @@ them; bins no voxel reaches are flagged in the mask (True = not measured).
 Grid steps keep the oversampling: along grid axis x the crystal's extent L_x
 is estimated from the autocorrelation of the prepared data (twice the
 crystal), mapped into the grid's frame, and Δq_x = 2π/(σ·L_x) with σ the
-smallest oversampling the detector-frame data have (METHODS.md:
+smallest oversampling the detector-frame data have (docs/methods.md:
 σ = 2π/(L Δq)). The grid spans the whole measured q range, centred on the Q
 of the prepared array's centre (index n//2 of every grid axis).
 
@@ -108,7 +108,7 @@ def default_q_step(prepared, frame="sample", oversampling=None, threshold=0.005)
 
     The autocorrelation of the prepared intensity (twice the crystal) is
     thresholded at ``threshold`` of its maximum; its voxels' positions on the
-    conjugate real-space grid (T = 2π M⁻ᵀ diag(1/N), METHODS.md) give the
+    conjugate real-space grid (T = 2π M⁻ᵀ diag(1/N), docs/methods.md) give the
     crystal's extent L along each axis of the frame, L = extent/(2(1 −
     threshold)), and Δq = 2π/(σ L) with σ = ``oversampling`` (default: the
     smallest oversampling of the prepared data, so none is lost).

@@ -20,7 +20,7 @@ The "lab frame at the peak" is the lab frame with the sample circles at the
 angles of the centre frame; ``rotation`` (R_s, lab ← sample) takes
 sample-frame vectors into it, so Q_sample = rotationᵀ · Q.
 
-Oversampling (METHODS.md, common practice): along array axis k,
+Oversampling (docs/methods.md, common practice): along array axis k,
 σ_k = N_k / L_k with L_k the crystal's extent in voxels; it is estimated here
 from the autocorrelation (the inverse FFT of the intensity), whose extent is
 twice the crystal's. Note that σ depends on the q step only: cropping fewer
@@ -43,6 +43,7 @@ from pathlib import Path
 import numpy as np
 
 from braggstrain.errors import InputError, ScanFileError
+from braggstrain.io.arrays import read_array
 from braggstrain.prepare.oversampling import estimate_oversampling
 
 __all__ = [
@@ -91,62 +92,6 @@ def fast_size(n, up=True, multiple=1):
 
 def _src(scan):
     return getattr(scan, "path", "") or "<in-memory scan>"
-
-
-def _load_array(value, field_name, src):
-    """An option that is an array, a number, or a file holding an array.
-
-    Files: .npy, .npz (the only array in it), .tif/.tiff (scikit-image), or
-    HDF5 (.h5, .hdf5, .nxs) as ``file.h5`` (its only dataset) or
-    ``file.h5#/path/in/file``.
-    """
-    if value is None:
-        return None
-    if isinstance(value, (str, Path)):
-        spec = str(value)
-        ds = None
-        if "#" in spec:
-            spec, ds = spec.split("#", 1)
-        p = Path(spec)
-        if not p.exists():
-            raise InputError(f"{src}: option '{field_name}': file '{p}' not found")
-        suf = p.suffix.lower()
-        try:
-            if suf == ".npy":
-                return np.load(p, allow_pickle=False)
-            if suf == ".npz":
-                with np.load(p, allow_pickle=False) as z:
-                    if len(z.files) != 1:
-                        raise InputError(f"{p}: option '{field_name}': expected one array in the .npz, "
-                                         f"found {z.files}")
-                    return z[z.files[0]]
-            if suf in (".tif", ".tiff"):
-                from skimage import io
-
-                return io.imread(str(p))
-            if suf in (".h5", ".hdf5", ".nxs", ".hdf"):
-                import h5py
-
-                with h5py.File(p, "r") as f:
-                    if ds is None:
-                        names = []
-                        f.visititems(lambda n, o: names.append(n) if isinstance(o, h5py.Dataset) else None)
-                        if len(names) != 1:
-                            raise InputError(f"{p}: option '{field_name}': expected one dataset, found "
-                                             f"{names}; name it as '{p}#/path/to/dataset'")
-                        ds = names[0]
-                    if ds not in f:
-                        raise InputError(f"{p}: option '{field_name}': dataset '{ds}' not found")
-                    return f[ds][()]
-        except InputError:
-            raise
-        except Exception as e:  # noqa: BLE001 - any reader failure becomes a clear error
-            raise InputError(f"{p}: option '{field_name}': not readable ({e})") from None
-        raise InputError(f"{p}: option '{field_name}': expected a .npy, .npz, .tif or HDF5 file")
-    arr = np.asarray(value)
-    if not np.issubdtype(arr.dtype, np.number) and arr.dtype != bool:
-        raise InputError(f"{src}: option '{field_name}': expected numbers, got dtype {arr.dtype}")
-    return arr
 
 
 def _angles_at(angles, nf, frame_index):
@@ -381,7 +326,7 @@ class PreparedScan:
 
     def real_space_basis(self):
         """T = 2π M⁻ᵀ diag(1/N): lab-frame position (Å) per index step of the
-        conjugate real-space grid (METHODS.md), columns along the array axes."""
+        conjugate real-space grid (docs/methods.md), columns along the array axes."""
         N = np.asarray(self.shape, float)
         return 2 * np.pi * np.linalg.inv(self.linear_map).T / N[None, :]
 
@@ -500,7 +445,7 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
         sm = _as_stack_mask(scan.mask, raw.shape, "mask", src)
         counts["scan_mask"] = int(sm.any(axis=0).sum()) if sm.ndim == 3 else int(sm.sum())
         mask |= sm
-    um = _load_array(user_mask, "user_mask", src)
+    um = read_array(user_mask, "user_mask", src)
     if um is not None:
         um = _as_stack_mask(um != 0, raw.shape, "user_mask", src)
         counts["user_mask"] = int(np.asarray(um).any(axis=0).sum())
@@ -514,7 +459,7 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
             raise InputError(f"{src}: option 'saturation': expected a positive count, got {saturation!r}")
         satmask = (raw >= sat) & ~mask
         counts["saturated"] = int(satmask.sum())
-    d = _load_array(dark, "dark", src)
+    d = read_array(dark, "dark", src)
     if d is not None:
         d = np.asarray(d, np.float32)
         if d.ndim != 0 and d.shape not in (raw.shape[1:], raw.shape):
@@ -531,7 +476,7 @@ def prepare_scan(scan, *, dark=None, flat=None, hot_pixel_threshold=10.0, dead_m
         data /= mscale.astype(np.float32)[:, None, None]
         mask[monitor_bad] = True
         counts["monitor"] = len(monitor_bad)
-    fl = _load_array(flat, "flat", src)
+    fl = read_array(flat, "flat", src)
     if fl is not None:
         fl = np.asarray(fl, np.float64)
         if fl.shape != raw.shape[1:]:

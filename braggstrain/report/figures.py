@@ -24,7 +24,9 @@ from braggstrain import _validate as _v
 from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
 from braggstrain.io.files import atomic_path
+from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components
 from braggstrain.strain.grid import Grid
+from braggstrain.phasing.ensemble import METRIC_LABELS, RANKING_METRICS, metric_label
 
 __all__ = [
     "FIGURES",
@@ -55,7 +57,8 @@ FIGURES = {
     "dislocations.png": "The crystal's isosurface with the dislocation lines, coloured by character.",
     "prtf.png": "Phase-retrieval transfer function of each reflection against |q|.",
     "history.png": "Per-iteration metrics of the best phasing run of each reflection.",
-    "runs.png": "Final metric of every random start of each reflection; kept runs filled, failed runs crossed.",
+    "runs.png": "The ranking metric (e.g. free_nll: negative log-likelihood per measured voxel, free: held-out "
+                "voxels) of every random start of each reflection; kept runs filled, failed runs crossed.",
 }
 
 _OUTSIDE = (0.86, 0.86, 0.86)
@@ -317,39 +320,37 @@ def plot_slices(fields, support, grid, path=None, *, names, units, signed=True, 
 
 def plot_amplitude(results, path=None):
     """Central slices of the mean normalised amplitude with the support outline."""
-    g = results["grid"]
-    return plot_slices([results["amplitude"]], results["support"], g, path,
+    return plot_slices([results.amplitude], results.support, results.grid, path,
                        names=["amplitude"], units=["normalised"], signed=False, outline=True,
                        title="Mean amplitude (support outlined)",
-                       limits=[(0.0, float(np.percentile(np.asarray(results["amplitude"])[results["support"]], 99.5))
+                       limits=[(0.0, float(np.percentile(np.asarray(results.amplitude)[results.support], 99.5))
                                 or 1.0)])
 
 
 def plot_strain(results, path=None):
     """Central slices of the six strain components."""
-    from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components
+    from braggstrain.strain.components import STRAIN_COMPONENTS
 
-    tf = results["tensor"]
-    comps = strain_components(tf.strain)
-    return plot_slices(list(comps), tf.support & results["support"], results["grid"], path,
+    comps = [results.strain(c) for c in STRAIN_COMPONENTS]
+    return plot_slices(comps, results.tensor.support & results.support, results.grid, path,
                        names=[f"ε_{c}" for c in STRAIN_COMPONENTS], units=[""] * 6, signed=True,
                        title="Strain tensor (sample frame, tensile positive)")
 
 
 def plot_rotation(results, path=None):
     """Central slices of the three lattice-rotation components, degrees."""
-    tf = results["tensor"]
-    return plot_slices(list(tf.rotation), tf.support & results["support"], results["grid"], path,
+    tf = results.tensor
+    return plot_slices(list(tf.rotation), tf.support & results.support, results.grid, path,
                        names=["ω_x", "ω_y", "ω_z"], units=["°"] * 3, signed=True, scale_to=180.0 / np.pi,
                        title="Lattice rotation (axial vector, sample frame)")
 
 
 def plot_derived(results, path=None):
     """Hydrostatic strain, von Mises equivalent strain and tensor residual."""
-    tf = results["tensor"]
+    tf = results.tensor
     mean_g = float(np.mean(np.linalg.norm(np.asarray(tf.g_vectors, float), axis=1)))
     return plot_slices([tf.hydrostatic, tf.von_mises, np.asarray(tf.residual) / mean_g],
-                       tf.support & results["support"], results["grid"], path,
+                       tf.support & results.support, results.grid, path,
                        names=["tr(ε)/3", "von Mises strain", "residual / mean |G|"], units=["", "", ""],
                        signed=[True, False, False],
                        title="Derived maps (residual shown strain-equivalent: rad/Å ÷ Å⁻¹)")
@@ -361,16 +362,14 @@ def plot_uncertainty(results, path=None):
     Returns None (no figure) when no voxel has a finite σ; the report then
     says why (``TensorField.uncertainty_basis``).
     """
-    from braggstrain.io.results import STRAIN_COMPONENTS, strain_components
-
-    tf = results["tensor"]
-    sup = tf.support & results["support"]
+    tf = results.tensor
+    sup = tf.support & results.support
     deg = 180.0 / np.pi
     rows = [np.asarray(c, float) for c in strain_components(tf.strain_uncertainty)]
     rows += [np.asarray(v, float) * deg for v in tf.rotation_uncertainty]
     if not any(np.isfinite(v[sup]).any() for v in rows):
         return None
-    return plot_slices(rows, sup, results["grid"]["voxel_size"], path,
+    return plot_slices(rows, sup, results.grid.voxel_size, path,
                        names=[f"σ(ε_{c})" for c in STRAIN_COMPONENTS] + [f"σ(ω_{c})" for c in "xyz"],
                        units=[""] * 6 + ["°"] * 3, signed=False,
                        title="One-σ uncertainty of strain (dimensionless) and rotation (degrees)")
@@ -379,14 +378,14 @@ def plot_uncertainty(results, path=None):
 def plot_displacements(results, path=None):
     """Central slices of each reflection's displacement along G, Å."""
     rows, names = [], []
-    for x in results["reflections"]:
-        if x.get("displacement") is None:
+    for x in results.reflections:
+        if x.displacement is None:
             continue
-        rows.append(x["displacement"])
-        names.append(f"u_G for {format_hkl(x['hkl'])}")
+        rows.append(x.displacement)
+        names.append(f"u_G for {format_hkl(x.hkl)}")
     if not rows:
         return None
-    return plot_slices(rows, results["support"], results["grid"], path, names=names,
+    return plot_slices(rows, results.support, results.grid, path, names=names,
                        units=["Å"] * len(rows), signed=True,
                        title="Displacement along each G vector, u_G = −φ/|G|")
 
@@ -404,15 +403,15 @@ def _colours(n):
 
 def plot_prtf(results, path=None):
     """PRTF of each reflection against |q| (Å⁻¹), with the 1/e threshold."""
-    refl = [x for x in results["reflections"] if x.get("prtf") is not None]
+    refl = [x for x in results.reflections if x.prtf is not None]
     if not refl:
         return None
     fig = _figure(6.4, 4.2)
     ax = fig.add_subplot(111)
     for x, c in zip(refl, _colours(len(refl))):
-        p = x["prtf"]
+        p = x.prtf
         res = p.get("resolution", np.nan)
-        lab = f"{x['name']} {format_hkl(x['hkl'])}"
+        lab = f"{x.name} {format_hkl(x.hkl)}"
         lab += f": resolution {res / 10.0:.1f} nm" if np.isfinite(res) else ": stays above 1/e"
         ax.plot(p["q"], p["values"], "-o", ms=2.5, lw=1.4, color=c, label=lab)
     ax.axhline(np.exp(-1), color="0.3", ls="--", lw=1)
@@ -432,30 +431,11 @@ def plot_prtf(results, path=None):
 
 _SKIP_HISTORY = ("checkpoint", "stage")
 
-#: What each phasing metric is and its unit (axis labels of the history and
-#: runs figures, one definition).
-METRIC_LABELS = {
-    "amplitude_error": ("amplitude error", "Σ(|Ψ|−√I)² / ΣI (dimensionless)"),
-    "free_amplitude_error": ("free amplitude error", "the same over the held-out voxels (dimensionless)"),
-    "support_size": ("support size", "voxels"),
-    "nll": ("nll", "Poisson negative log-likelihood per voxel (nats)"),
-    "free_nll": ("free nll", "Poisson negative log-likelihood per held-out voxel (nats)"),
-    "background": ("background", "counts per voxel"),
-    "sharpness": ("sharpness", "N·Σ|ρ|⁴ / (Σ|ρ|²)², higher is more concentrated (dimensionless)"),
-}
-
-
-def metric_label(key, long=False):
-    """Axis label of a phasing metric: its name, and with ``long`` its meaning and unit."""
-    name, unit = METRIC_LABELS.get(key, (key.replace("_", " "), ""))
-    return f"{name}: {unit}" if long and unit else (unit or name)
-
-
 def _stage_starts(refl):
     """Iterations where a new stage of the phasing plan starts (every reflection's)."""
     starts = set()
     for x in refl:
-        st = x.get("history", {}).get("stage")
+        st = x.history.get("stage")
         if st is not None and len(st) > 1:
             starts |= {int(b) + 1 for b in np.nonzero(np.diff(np.asarray(st, float)))[0]}
     return sorted(starts)
@@ -467,10 +447,10 @@ def plot_histories(results, path=None):
     A metric that stayed zero everywhere (e.g. the background when none was
     fitted) gets no panel; dashed lines mark where each stage of the
     phasing plan starts, numbered at the top."""
-    refl = results["reflections"]
+    refl = results.reflections
     keys = []
     for x in refl:
-        for k, v in x.get("history", {}).items():
+        for k, v in x.history.items():
             if k in keys or k in _SKIP_HISTORY:
                 continue
             vals = np.asarray(v, float)
@@ -488,7 +468,7 @@ def plot_histories(results, path=None):
         ax = fig.add_subplot(nrow, ncol, m + 1)
         positive = True
         for x, c in zip(refl, cols):
-            h = x.get("history", {})
+            h = x.history
             if key not in h:
                 continue
             y = np.asarray(h[key], float)
@@ -496,7 +476,7 @@ def plot_histories(results, path=None):
             chk = h.get("checkpoint")
             if chk is not None and len(chk) == len(y) and len(y) != max(len(v) for v in h.values()):
                 it = np.asarray(chk, float)
-            ax.plot(it, y, lw=1.2, color=c, label=f"{x['name']} {format_hkl(x['hkl'])}",
+            ax.plot(it, y, lw=1.2, color=c, label=f"{x.name} {format_hkl(x.hkl)}",
                     marker="o" if len(y) < 30 else None, ms=3)
             fin = y[np.isfinite(y)]
             positive &= bool(fin.size) and bool(np.all(fin > 0)) and fin.max() / fin.min() > 20
@@ -523,45 +503,32 @@ def plot_histories(results, path=None):
     return fig
 
 
-_RANK_KEYS = ("free_llk", "free_nll", "llk", "nll", "amplitude_error", "free_amplitude_error")
-
-
-def _rank_key(runs):
-    cols = []
-    for m in runs:
-        for k, v in m.items():
-            if k not in cols and isinstance(v, (int, float, np.number)) and not isinstance(v, bool):
-                cols.append(k)
-    for k in _RANK_KEYS:
-        if k in cols and any(np.isfinite(float(m.get(k, np.nan))) for m in runs):
-            return k
-    rest = [k for k in cols if k not in ("run", "seed", "iterations", "elapsed")]
-    return rest[0] if rest else None
+#: Columns of the runs table (results.h5, /reflections/<name>/runs) that
+#: :func:`plot_runs` reads, besides each reflection's ranking metric.
+RUN_COLUMNS = ("status", "kept")
 
 
 def plot_runs(results, path=None):
-    """Final metric of every random start, per reflection."""
-    refl = results["reflections"]
-    if all(_rank_key(x.get("run_metrics") or []) is None for x in refl):
+    """Each reflection's ranking metric for every random start (the ensemble's own ranking)."""
+    refl = [x for x in results.reflections if any(x.ranking_metric in m for m in x.run_metrics)]
+    if not refl:
         return None
     fig = _figure(6.4, 1.0 + 0.55 * max(len(refl), 1) + 1.2)
     ax = fig.add_subplot(111)
     labels = []
-    key_used = set()
+    metrics = []
     for j, x in enumerate(refl):
-        runs = x.get("run_metrics") or []
-        labels.append(f"{x['name']} {format_hkl(x['hkl'])}")
-        key = _rank_key(runs)
-        if key is None:
-            continue
-        key_used.add(key)
+        runs = x.run_metrics
+        labels.append(f"{x.name} {format_hkl(x.hkl)}")
+        key = x.ranking_metric
+        if key not in metrics:
+            metrics.append(key)
         vals = np.array([float(m.get(key, np.nan)) for m in runs])
-        ok = np.array([str(m.get("status", "ok")) == "ok" for m in runs])
-        kept = np.array([bool(m.get("kept", False)) for m in runs])
+        ok = np.array([str(m["status"]) == "ok" for m in runs])
+        kept = np.array([bool(m["kept"]) for m in runs])
         jit = (np.arange(len(runs)) - (len(runs) - 1) / 2) * min(0.08, 0.6 / max(len(runs), 1))
         yy = j + jit
-        ax.scatter(vals[ok & kept], yy[ok & kept], s=36, color="C0", zorder=3,
-                   label="kept" if j == 0 or not ax.get_legend_handles_labels()[1] else None)
+        ax.scatter(vals[ok & kept], yy[ok & kept], s=36, color="C0", zorder=3)
         ax.scatter(vals[ok & ~kept], yy[ok & ~kept], s=36, facecolor="white", edgecolor="C0", zorder=3)
         bad = ~ok & np.isfinite(vals)
         ax.scatter(vals[bad], yy[bad], s=40, marker="x", color="C3", zorder=3)
@@ -576,10 +543,11 @@ def plot_runs(results, path=None):
     ax.set_yticklabels(labels, fontsize=8)
     ax.set_ylim(-0.6, len(refl) - 0.4)
     ax.invert_yaxis()
-    ax.set_xlabel("\n".join(metric_label(k, long=True) for k in sorted(key_used)) + " (lower is better)",
-                  fontsize=9)
+    ax.set_xlabel("\n".join(metric_label(k, long=True) for k in metrics), fontsize=9)
     ax.grid(axis="x", alpha=0.3)
-    ax.set_title("Final metric of every random start")
+    higher = [k for k in metrics if RANKING_METRICS.get(k)]
+    ax.set_title("Final ranking metric of every random start ("
+                 + ("higher" if higher and len(higher) == len(metrics) else "lower") + " is better)")
     if path is not None:
         _save(fig, path)
     return fig
@@ -594,9 +562,8 @@ def make_figures(results, out_dir):
 
     Parameters
     ----------
-    results : dict
-        A results bundle (:class:`braggstrain.outputs.Results`) or what
-        :func:`braggstrain.outputs.read_results` returns.
+    results : braggstrain.io.results.Results
+        What the pipeline built or :func:`braggstrain.io.results.read_results` returns.
     out_dir : str or Path
         Folder (created if missing).
 
@@ -607,10 +574,12 @@ def make_figures(results, out_dir):
         ``history.png`` and ``runs.png`` are left out when no reflection has
         a displacement map, a PRTF, a history or run metrics.
     """
+    from braggstrain.io.results import Results
     from braggstrain.report.dislocations import plot_dislocations
-    from braggstrain.io.results import check_results
 
-    r = check_results(results)
+    if not isinstance(results, Results):
+        raise InputError(f"results: expected braggstrain.io.results.Results, got {type(results).__name__}")
+    r = results
     out_dir = Path(out_dir)
     out_dir.mkdir(parents=True, exist_ok=True)
     makers = {
@@ -628,7 +597,7 @@ def make_figures(results, out_dir):
     for name in FIGURES:
         path = out_dir / name
         if name == "dislocations.png":
-            plot_dislocations(r["dislocations"], r["support"], r["grid"], path)
+            plot_dislocations(r.dislocations, r.support, r.grid, path)
             written.append(path)
             continue
         fig = makers[name](r, path)

@@ -20,6 +20,7 @@ import numpy as np
 from braggstrain.geometry.crystal import format_hkl
 from braggstrain.errors import InputError
 from braggstrain.io.files import write_atomic
+from braggstrain.phasing.ensemble import METRIC_LABELS, metric_label
 
 __all__ = ["strain_statistics", "write_report", "CAUTIONS"]
 
@@ -155,19 +156,12 @@ def strain_statistics(tensor, mask=None):
     return rows
 
 
-def _best_run(runs):
-    from braggstrain.report.figures import _rank_key
-
-    ok = [m for m in runs if str(m.get("status", "ok")) == "ok"]
-    kept = [m for m in ok if m.get("kept")]
-    pool = kept or ok
-    if not pool:
-        return None, None
-    key = _rank_key(pool)
-    if key is None:
-        return pool[0], None
-    return min(pool, key=lambda m: (np.inf if not np.isfinite(float(m.get(key, np.nan)))
-                                    else float(m.get(key)))), key
+#: Columns of the runs table (results.h5, /reflections/<name>/runs) that the
+#: reflections table shows for each reflection's best run, besides ``status``
+#: (failed runs are counted) and ``rank`` or, in layout-1 files, the ranking
+#: metric (:meth:`braggstrain.io.results.ReflectionResult.best_run`).
+RUN_COLUMNS = ("nll", "free_nll", "amplitude_error", "free_amplitude_error", "support_size", "sharpness",
+               "background")
 
 
 # --------------------------------------------------------------------------
@@ -175,43 +169,30 @@ def _best_run(runs):
 # --------------------------------------------------------------------------
 
 def _reflection_section(r):
-    from braggstrain.report.figures import METRIC_LABELS
-
-    refl = r["reflections"]
-    metric_cols = []
-    bests = []
-    for x in refl:
-        best, _ = _best_run(x["run_metrics"])
-        bests.append(best)
-        if best:
-            for k, v in best.items():
-                if (k not in metric_cols and k not in ("run", "seed", "kept", "status", "message")
-                        and isinstance(v, (int, float, np.number)) and not isinstance(v, bool)):
-                    metric_cols.append(k)
-    # a metric that is zero for every reflection (e.g. no background fitted) says nothing
-    metric_cols = [k for k in metric_cols
-                   if any(b and np.isfinite(float(b.get(k, np.nan))) and float(b.get(k)) != 0 for b in bests)]
+    refl = r.reflections
+    bests = [x.best_run() for x in refl]
+    # a metric that is zero or absent for every reflection (e.g. no background fitted) says nothing
+    metric_cols = [k for k in RUN_COLUMNS
+                   if any(b and np.isfinite(float(b.get(k, np.nan))) and float(b.get(k, np.nan)) != 0 for b in bests)]
     header = ["reflection", "hkl", "|G| (Å⁻¹)", "max counts", "oversampling (frame, row, column)", "runs", "kept",
-              "PRTF resolution (nm)", "shift (voxels)", "twin"]
+              "ranked by", "PRTF resolution (nm)", "shift (voxels)", "twin"]
     rows = []
     for x in refl:
-        res = x["prtf"]["resolution"] if x["prtf"] is not None else np.nan
-        rows.append([_e(x["name"]), _e(format_hkl(x["hkl"])), _num(np.linalg.norm(x["g_vector"])),
-                     _num(x["max_counts"], "{:.3g}"),
-                     ", ".join(_num(v, "{:.2f}") for v in x["oversampling"]), str(x["runs"]), str(x["kept"]),
-                     _num(res / 10.0, "{:.1f}"), ", ".join(_num(v, "{:.2f}") for v in x["shift_vox"]),
-                     "yes" if x["twin"] else "no"])
-    out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1), css="compact")]
+        res = x.prtf["resolution"] if x.prtf is not None else np.nan
+        rows.append([_e(x.name), _e(format_hkl(x.hkl)), _num(np.linalg.norm(x.g_vector)),
+                     _num(x.max_counts, "{:.3g}"),
+                     ", ".join(_num(v, "{:.2f}") for v in x.oversampling), str(x.runs), str(x.kept),
+                     _e(x.ranking_metric), _num(res / 10.0, "{:.1f}"),
+                     ", ".join(_num(v, "{:.2f}") for v in x.shift_vox), "yes" if x.twin else "no"])
+    out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1, 7), css="compact")]
     if metric_cols:
-        units = {"elapsed": "s"}
-        mh = ["reflection"] + [METRIC_LABELS.get(k, (k.replace("_", " "),))[0]
-                               + (f" ({units[k]})" if k in units else "") for k in metric_cols]
-        mrows = [[_e(x["name"])] + [_num(b.get(k)) if b else "—" for k in metric_cols] for x, b in zip(refl, bests)]
-        meaning = "; ".join(f"{METRIC_LABELS[k][0]}: {METRIC_LABELS[k][1]}" for k in metric_cols if k in METRIC_LABELS)
-        out.append(_table(mh, mrows, caption="Final metrics of the best kept random start", text_cols=(0,),
-                          css="compact"))
+        mh = ["reflection"] + [METRIC_LABELS.get(k, (k.replace("_", " "),))[0] for k in metric_cols]
+        mrows = [[_e(x.name)] + [_num(b.get(k)) if b else "—" for k in metric_cols] for x, b in zip(refl, bests)]
+        meaning = "; ".join(metric_label(k, long=True) for k in metric_cols)
+        out.append(_table(mh, mrows, caption="Final metrics of the best random start (the one the ensemble ranked "
+                                             "first by its ranking metric)", text_cols=(0,), css="compact"))
         out.append(f'<p class="meta">{_e(meaning)}.</p>')
-    failed = sum(1 for x in refl for m in x["run_metrics"] if str(m.get("status", "ok")) != "ok")
+    failed = sum(1 for x in refl for m in x.run_metrics if str(m["status"]) != "ok")
     if failed:
         out.append(f"<p>{failed} random start(s) failed (support collapsed or exploded, or diverged) and were left "
                    f"out.</p>")
@@ -219,14 +200,14 @@ def _reflection_section(r):
 
 
 def _tensor_section(r):
-    tf = r["tensor"]
+    tf = r.tensor
     trusted = np.asarray(tf.trusted, bool)
     res = np.asarray(tf.residual, float)
     rt = res[trusted & np.isfinite(res)]
     rs = res[np.asarray(tf.support, bool) & np.isfinite(res)]
     mean_g = float(np.mean(np.linalg.norm(np.asarray(tf.g_vectors, float), axis=1)))
-    vs = r["grid"]["voxel_size"]
-    vol_nm3 = float(np.count_nonzero(r["support"]) * np.prod(vs) / 1000.0)
+    vs = r.grid.voxel_size
+    vol_nm3 = float(np.count_nonzero(r.support) * np.prod(vs) / 1000.0)
     rms_t = float(np.sqrt(np.mean(rt ** 2))) if rt.size else np.nan
     rms_s = float(np.sqrt(np.mean(rs ** 2))) if rs.size else np.nan
     items = [
@@ -239,13 +220,13 @@ def _tensor_section(r):
         ("crystal voxels (support) / trusted", f"{int(np.count_nonzero(tf.support))} / {int(trusted.sum())}"),
         ("crystal volume (nm³)", _num(vol_nm3, "{:.4g}")),
         ("voxel size x, y, z (nm)", ", ".join(_num(v / 10.0, "{:.3g}") for v in vs)),
-        ("grid shape", _e(" × ".join(str(n) for n in r["grid"]["shape"]))),
+        ("grid shape", _e(" × ".join(str(n) for n in r.grid.shape))),
         ("grid origin x, y, z (nm): position of the voxel at index n//2",
-         ", ".join(_num(v / 10.0, "{:.4g}") for v in r["grid"]["origin"])),
+         ", ".join(_num(v / 10.0, "{:.4g}") for v in r.grid.origin)),
     ]
     out = ["<h2>Strain tensor</h2>", _table(["quantity", "value"], [[_e(a), b] for a, b in items],
                                               text_cols=(0, 1))]
-    stats = strain_statistics(tf, np.asarray(tf.support, bool) & np.asarray(r["support"], bool))
+    stats = strain_statistics(tf, np.asarray(tf.support, bool) & r.support)
     header = ["quantity", "unit", "voxels", "mean", "std"] + [f"p{p}" for p in _PERCENTILES] + ["median σ"]
     rows = [[_e(s["name"]), _e(s["unit"]), str(s["voxels"]), _num(s["mean"], "{:.3e}"), _num(s["std"], "{:.3e}")]
             + [_num(s[f"p{p}"], "{:.3e}") for p in _PERCENTILES] + [_num(s["sigma"], "{:.2e}")]
@@ -259,7 +240,7 @@ def _tensor_section(r):
 
 def _error_bars(tf):
     """The statement of what σ includes (or why there is none)."""
-    basis = getattr(tf, "uncertainty_basis", "") or "not recorded in this results file"
+    basis = tf.uncertainty_basis or "not recorded in this results file"
     sig = np.asarray(tf.strain_uncertainty, float)[:, :, np.asarray(tf.support, bool)]
     text = [f"<p>{_e(basis)}.</p>"]
     if not np.isfinite(sig).any():
@@ -309,10 +290,10 @@ def _value(v):
 
 
 def _registration_section(r):
-    reg = r["registration"]
+    reg = r.registration
     if not reg:
         return ""
-    names = [x["name"] for x in r["reflections"]]
+    names = r.names
     J = len(names)
     per, rest = {}, {}
     for k, v in reg.items():
@@ -331,7 +312,7 @@ def _registration_section(r):
 
 
 def _mean_lattice_section(r):
-    ml = r["mean_lattice"]
+    ml = r.mean_lattice
     if not ml:
         return ""
     return ("<h2>Mean lattice</h2>\n<p>Homogeneous deformation of the whole crystal from its measured peak "
@@ -342,7 +323,7 @@ def _mean_lattice_section(r):
 def _dislocation_section(r):
     from braggstrain.defects.lines import dislocations_to_records
 
-    lines = r["dislocations"]
+    lines = r.dislocations
     out = ["<h2>Dislocations</h2>"]
     if not lines:
         out.append("<p>No dislocation line was found (no phase vortex line in the trusted part of the "
@@ -393,7 +374,7 @@ def _figure_section(paths):
 
 
 def _provenance_section(r):
-    prov = r["provenance"]
+    prov = r.provenance
     out = ["<h2>Provenance</h2>"]
     items = [("command", _e(prov.get("command") or "—")), ("created", _e(prov.get("created") or "—"))]
     out.append(_table(["item", "value"], [[_e(a), b] for a, b in items], text_cols=(0, 1)))
@@ -441,9 +422,8 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
 
     Parameters
     ----------
-    results : dict
-        A results bundle (:class:`braggstrain.outputs.Results`) or what
-        :func:`braggstrain.outputs.read_results` returns.
+    results : braggstrain.io.results.Results
+        What the pipeline built or :func:`braggstrain.io.results.read_results` returns.
     out_dir : str or Path
         Folder for the page (created if missing).
     figures : list of paths, optional
@@ -458,10 +438,12 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
     -------
     Path
     """
+    from braggstrain.io.results import Results
     from braggstrain.report.figures import make_figures
-    from braggstrain.io.results import check_results
 
-    r = check_results(results)
+    if not isinstance(results, Results):
+        raise InputError(f"results: expected braggstrain.io.results.Results, got {type(results).__name__}")
+    r = results
     out_dir = Path(out_dir)
     if "/" in name or not name.endswith(".html"):
         raise InputError(f"name: expected a plain file name ending in .html, got {name!r}")
@@ -473,13 +455,13 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
         if not p.is_file():
             raise InputError(f"figures: {p} does not exist; expected PNG files to embed")
     heading = title or "Strain, rotation and dislocations of one crystal"
-    n_lines = len(r["dislocations"])
-    refl_text = ", ".join(f"{x['name']} {format_hkl(x['hkl'])}" for x in r["reflections"])
-    summary = (f"<p>{len(r['reflections'])} reflections ({_e(refl_text)}); condition number of the G set "
-               f"{_num(r['tensor'].condition_number, '{:.3f}')}; {n_lines} dislocation line"
+    n_lines = len(r.dislocations)
+    refl_text = ", ".join(f"{x.name} {format_hkl(x.hkl)}" for x in r.reflections)
+    summary = (f"<p>{len(r.reflections)} reflections ({_e(refl_text)}); condition number of the G set "
+               f"{_num(r.tensor.condition_number, '{:.3f}')}; {n_lines} dislocation line"
                f"{'s' if n_lines != 1 else ''}. Arrays are in the sample frame (x, y, z), lengths in nm in "
                f"the figures and Å in the results file; strain is dimensionless and tensile positive.</p>")
-    meta = _e(" · ".join(v for v in (r["provenance"].get("created"), r["provenance"].get("command")) if v))
+    meta = _e(" · ".join(v for v in (r.provenance.get("created"), r.provenance.get("command")) if v))
     body = [
         f"<h1>{_e(heading)}</h1>",
         f'<p class="meta">{meta}</p>' if meta else "",

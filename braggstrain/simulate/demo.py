@@ -282,7 +282,7 @@ def _coverage(estimate, truth, sigma, mask):
 
 
 def compare_to_truth(results, truth_path, as_text=True):
-    """Compare a results bundle with the simulator's ground truth.
+    """Compare :class:`~braggstrain.io.results.Results` with the simulator's ground truth.
 
     The reconstruction has no absolute position and may be the twin of the
     crystal (its point inversion, with the same strain), so the truth is
@@ -308,10 +308,10 @@ def compare_to_truth(results, truth_path, as_text=True):
     from braggstrain.strain.fields import trusted_for_gradients
 
     truth = read_truth(truth_path)
-    tf = results["tensor"]
+    tf = results.tensor
     sup = np.asarray(tf.support, bool)
     shape = sup.shape
-    grid = Grid.of(results["grid"], shape)
+    grid = results.grid
     vs = grid.voxel_size
     pos = grid.coordinates()
     com_r = np.array([pos[i][sup].mean() for i in range(3)])
@@ -336,7 +336,7 @@ def compare_to_truth(results, truth_path, as_text=True):
                 core |= np.linalg.norm(rel - xi.reshape(3, 1, 1, 1) * along, axis=0) < 3 * vs.max()
         # the support eroded by one voxel, at any amplitude: the comparison
         # judges the strain wherever the crystal is, cores excepted
-        trusted = trusted_for_gradients(np.asarray(results["amplitude"], float), sup,
+        trusted = trusted_for_gradients(np.asarray(results.amplitude, float), sup,
                                         amplitude_threshold=0.0) & ~core
         rms, rms_truth, mean_err, cover = {}, {}, {}, {}
         for (i, k), lab in zip(STRAIN_PAIRS, STRAIN_COMPONENTS):
@@ -374,7 +374,7 @@ def compare_to_truth(results, truth_path, as_text=True):
         xi = np.asarray(ln["line"], float)
         b_true = np.asarray(ln["burgers"], float)
         found = []
-        for d in results["dislocations"]:
+        for d in results.dislocations:
             pts = np.asarray(d.points, float)
             tp = (-pts if invert else pts) + shift  # result points in truth coordinates
             rel = tp - p
@@ -397,7 +397,7 @@ def compare_to_truth(results, truth_path, as_text=True):
         lines_out.append({"burgers_true": b_true.tolist(), "found": found})
     out = {"dice": float(dice), "twin": bool(invert), "strain_rms": rms, "strain_rms_truth": rms_truth,
            "strain_mean_error": mean_err, "strain_rms_all": total, "trusted_voxels": int(trusted.sum()),
-           "coverage": cover, "uncertainty_basis": getattr(tf, "uncertainty_basis", ""), "lines": lines_out,
+           "coverage": cover, "uncertainty_basis": tf.uncertainty_basis, "lines": lines_out,
            "truth_strain": np.stack([np.stack([samp(truth["strain"][i, k]) for k in range(3)]) for i in range(3)]),
            "compared": trusted}
     if not as_text:

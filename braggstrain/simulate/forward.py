@@ -2,7 +2,7 @@
 coherent Bragg diffraction they give on a real rocking scan.
 
 Everything here makes data of our own for tests and the demo. Conventions
-(DESIGN.md): lengths in Å, reciprocal lengths in Å⁻¹ with 2π included, the
+(docs/design.md): lengths in Å, reciprocal lengths in Å⁻¹ with 2π included, the
 complex object of a crystal near reflection G is ρ(r) = s(r)·exp(−i G·u(r)),
 the far field is numpy's forward FFT. Real-space arrays made here have axes
 0, 1, 2 along sample-frame x, y, z and their origin at index n//2 on each axis.
@@ -450,7 +450,7 @@ class DislocationLoop(_Field):
     Burgers' formula, u = b Ω/(4π) (Hirth & Lothe, Theory of Dislocations,
     2nd ed., 1982, ch. 4, first term of Burgers' formula; the overall sign
     depends on how Ω is signed and is fixed here so that the circulation
-    convention of DESIGN.md holds), with Ω the solid angle the loop
+    convention of docs/design.md holds), with Ω the solid angle the loop
     subtends at r. The two line-integral (elastic) terms of that formula are
     left out: they are smooth and small away from the core, and the loop's
     topology, a circulation b around its line, is carried by the Ω term.
@@ -571,7 +571,7 @@ class SimulatedScan:
 
 
 def detector_frame_grid(linear_map, shape):
-    """Real-space basis conjugate to a detector-frame q map (METHODS.md).
+    """Real-space basis conjugate to a detector-frame q map (docs/methods.md).
 
     With q ≈ M·n for index offsets n = (frame, row, column), the DFT of an
     N₀×N₁×N₂ array has real-space voxel positions r = T·m (m integer index
@@ -593,7 +593,7 @@ def simulate_scan(instrument, crystal, hkl, shape, field_, *, rocking_circle, n_
     conjugate to the detector's local linear q map at the peak
     (:func:`detector_frame_grid`), ``supersample`` times finer per axis to
     keep the faceted edges from aliasing, and its far field is the forward
-    FFT (DESIGN.md), so A(n) = Σ ρ(r) exp(−i q(n)·r) with q(n) = M·n. The
+    FFT (docs/design.md), so A(n) = Σ ρ(r) exp(−i q(n)·r) with q(n) = M·n. The
     window of ``window`` pixels around the peak pixel and ``n_frames`` frames
     holds the signal; the rest of the detector sees background only.
 

@@ -1,6 +1,6 @@
 """Fields of one reflection: phase gradient, displacement along G, strain along G.
 
-Conventions (DESIGN.md): the complex object of a crystal near reflection G is
+Conventions (docs/design.md): the complex object of a crystal near reflection G is
 ρ(r) = s(r)·exp(−i G·u(r)), so the phase φ = arg ρ gives the displacement
 along G as u_G = ĝ·u = −φ/|G| (Å), and ∇φ = −Dᵀ G with D_ik = ∂u_i/∂x_k.
 Arrays have axes 0, 1, 2 along sample-frame x, y, z, the origin at index

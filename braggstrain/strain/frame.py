@@ -8,7 +8,7 @@ position of index n//2; G in the sample frame; support):
     For a reconstruction phased in the detector frame (the prepared array).
     Its voxels sit on the real-space grid conjugate to the detector's linear
     q map M: the voxel at index offset m from n//2 lies at r = T·m with
-    T = 2π M⁻ᵀ diag(1/N₀, 1/N₁, 1/N₂) (METHODS.md), in the lab frame at the
+    T = 2π M⁻ᵀ diag(1/N₀, 1/N₁, 1/N₂) (docs/methods.md), in the lab frame at the
     peak; Rᵀ (R = R_s of the sample circles at the centre frame, lab ←
     sample) takes it to the sample frame. The object is resampled onto an
     orthonormal grid with ``scipy.ndimage.affine_transform`` (one affine map
@@ -21,7 +21,7 @@ position of index n//2; G in the sample frame; support):
     into the sample frame when the grid is in the lab frame (none when it is
     already in the sample frame).
 
-Phase reference: with the far field the forward FFT (DESIGN.md), a
+Phase reference: with the far field the forward FFT (docs/design.md), a
 reconstruction of data whose array centre sits at Q_c is
 ρ_rec(r) = ρ(r)·exp(−i (Q_c − G)·r), ρ = s·exp(−i G·u). Both routes multiply
 the resampled object by exp(+i (Q_ref − G)·r) evaluated analytically on the

@@ -1,6 +1,6 @@
 """Several reflections of one crystal: registration and the full strain tensor.
 
-Conventions (DESIGN.md): ρ_j(r) = s(r)·exp(−i G_j·u(r)) for reflection j,
+Conventions (docs/design.md): ρ_j(r) = s(r)·exp(−i G_j·u(r)) for reflection j,
 so ∂_k φ_j = −Σ_i G_ji ∂u_i/∂x_k = −(G D)_jk with the displacement gradient
 D_ik = ∂u_i/∂x_k; strain ε = (D + Dᵀ)/2 (tensile positive), rotation
 ω = (D − Dᵀ)/2 given as its axial vector (radians). Arrays have axes 0, 1, 2
