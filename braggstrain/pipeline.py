@@ -18,6 +18,7 @@ The stages are the plain functions of their modules; this module only
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import inspect
 import os
 import platform
@@ -45,6 +46,7 @@ from braggstrain.io.prepared import read_prepared, write_prepared
 __all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "STAGES",
            "estimate_output_bytes", "check_output_folder"]
 
+#: The stages in the order they run (the report orders its timing table by it).
 STAGES = ("prepare", "grid", "phase", "frame", "spread", "register", "tensor", "defects", "outputs")
 
 # Keys of the option tables that are the pipeline's own (not a stage function's).
@@ -272,7 +274,7 @@ def _phase_to_tree(ens, voxel):
     best = ens.best
     hist = {}
     h = best.history
-    for k in getattr(h, "__dataclass_fields__", {}):
+    for k in (f.name for f in dataclasses.fields(h)):
         val = getattr(h, k)
         if isinstance(val, (list, np.ndarray)) and len(val) and not isinstance(val[0], str):
             try:
@@ -623,6 +625,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     from braggstrain.prepare import scan as prp
     from braggstrain.prepare import regrid as rgd
     from braggstrain.strain import tensor as tns
+    from braggstrain.strain.lattice import mean_lattice_strain
+    from braggstrain.strain.registration import register
     from braggstrain.phasing import ensemble
 
     say = log or (lambda *a, **k: None)
@@ -801,7 +805,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     with run.timed("register"):
         rt = run.cached("register", "all", k_reg)
         if rt is None:
-            reg, report = tns.register([p["sample"] for p in per_refl], return_report=True, **reg_kw)
+            reg, report = register([p["sample"] for p in per_refl], return_report=True, **reg_kw)
             rt = {"objects": [_sample_to_tree(o) for o in reg], "report": _plain(report)}
             run.save("register", "all", k_reg, rt)
     registered = [_tree_to_sample(t) for t in rt["objects"]]
@@ -819,7 +823,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
             common_support = np.logical_and.reduce([o.support for o in registered])
             cov, source = _gradient_covariance(per_refl, rt["report"], common_support, common_vs,
-                                               int(te_opts.get("order", 2)), tns)
+                                               int(te_opts.get("order", 2)))
             with warnings.catch_warnings(record=True) as caught:
                 warnings.simplefilter("always")
                 tf = tns.strain_tensor([o.obj for o in registered], G, common_vs,
@@ -839,7 +843,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         ramp = np.asarray(p["phase"]["ramp"], float)
         g_meas.append(pr.rotation.T @ (pr.q_center + pr.linear_map @ ramp))
     try:
-        ml = tns.mean_lattice_strain(np.array(g_meas), g_ref, lattice_parameter=crystal.lattice_parameters[0])
+        ml = mean_lattice_strain(np.array(g_meas), g_ref, lattice_parameter=crystal.lattice_parameters[0])
         mean_lattice = _plain(ml)
     except TensorError as e:
         mean_lattice = {"error": str(e)}
@@ -925,13 +929,14 @@ def _spread_samples(tree, data, intensity, mask, g_ref, so, fr_opts, n_rep, rep_
     return out
 
 
-def _gradient_covariance(per_refl, reg_report, support, voxel_size, order, tns):
+def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
     """Per-reflection phase-gradient covariance from the kept runs and replicas,
     on the common grid: C_j = C_runs/K + C_replicas (docs/strain.md).
 
     Returns (covariance (J, 3, 3, *grid) or None, a sentence saying what it holds).
     """
     from braggstrain.strain.fields import phase_gradient_covariance
+    from braggstrain.strain.registration import apply_registration
 
     covs, parts = [], set()
     for j, p in enumerate(per_refl):
@@ -940,7 +945,7 @@ def _gradient_covariance(per_refl, reg_report, support, voxel_size, order, tns):
 
         def common(arr):
             o = SampleObject(arr, so.voxel_size, so.g_vector, so.support, so.origin, so.hkl, {})
-            return tns.apply_registration(o, reg_report, j).obj
+            return apply_registration(o, reg_report, j).obj
 
         C = np.zeros((3, 3) + support.shape)
         have = False

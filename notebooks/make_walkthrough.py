@@ -41,7 +41,7 @@ from braggstrain.geometry.instrument import Circle, Detector, Diffractometer
 from braggstrain.simulate import forward
 from braggstrain.prepare import scan as prepare
 from braggstrain.strain import frame
-from braggstrain.strain import tensor
+from braggstrain.strain import registration, tensor
 from braggstrain.defects import lines as defects
 from braggstrain.io.scans import Scan
 from braggstrain.phasing import ensemble, Stage
@@ -129,14 +129,14 @@ for j, s in enumerate(scans):
 md("""
 ## 4. Strain tensor and dislocations
 
-`tensor.register` brings the four reflections onto one grid (testing each
+`registration.register` brings the four reflections onto one grid (testing each
 against its twin); `tensor.strain_tensor` solves the displacement gradient
 per voxel by least squares; `defects.find_dislocations` follows the phase
 vortices and solves the Burgers vector.
 """)
 
 code("""
-reg = tensor.register(objects)
+reg = registration.register(objects)
 G = np.array([o.g_vector for o in reg])
 tf = tensor.strain_tensor([o.obj for o in reg], G, reg[0].voxel_size,
                           support=np.logical_and.reduce([o.support for o in reg]), labels=[str(h) for h in hkls])

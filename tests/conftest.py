@@ -117,3 +117,56 @@ def assert_runs_columns_recorded(path, new=False):
                 used.add("rank")
             assert used <= cols, (name, used - cols)
             assert not {"llk", "free_llk"} & cols
+
+
+# ---------------------------------------------------------------------------
+# Several reflections of one crystal, written directly as ρ_j = s·exp(−i G_j·u)
+# (tests of strain.tensor, strain.registration, strain.lattice)
+# ---------------------------------------------------------------------------
+
+N = 48
+H = 40.0  # Å
+# RMS strain / rotation error allowed. Measured on these checks: 1e-10 to
+# 7e-7 for analytic fields on one grid, 1.2e-6 after registration (one
+# linear interpolation of each object); 2e-5 leaves a margin of about 15.
+TOL = 2e-5
+
+
+@pytest.fixture(scope="module")
+def pt():
+    from braggstrain.geometry.crystal import Crystal
+
+    return Crystal("Pt").oriented_by((1, 1, 1), (0.2, 0.1, 1.0), (1, -1, 0), (1, 0, 0))
+
+
+@pytest.fixture(scope="module")
+def grid():
+    from braggstrain.simulate import forward as fw
+
+    coords = fw.grid_coordinates((N,) * 3, H)
+    R = (N // 2 - 4) * H
+    support = fw.ellipsoid((N,) * 3, H, (R, 0.93 * R, 0.87 * R))
+    return coords, support
+
+
+def gs(pt, hkls):
+    import numpy as np
+
+    return np.array([pt.g_sample(h) for h in hkls])
+
+
+def objects(support, u, G, offsets=None):
+    import numpy as np
+
+    from braggstrain.simulate import forward as fw
+
+    objs = [fw.complex_object(support, u, g) for g in G]
+    if offsets is not None:
+        objs = [(o * np.exp(1j * c)).astype(np.complex64) for o, c in zip(objs, offsets)]
+    return objs
+
+
+def rms(a, mask):
+    import numpy as np
+
+    return float(np.sqrt(np.mean(a[..., mask] ** 2)))

@@ -446,7 +446,7 @@ def small_case():
 
 
 def test_unregistered_objects_raise(small_case):
-    # Input handling (the bad-input check), no outside source.
+    # Input handling: each bad input is named in the message (no outside source).
     cr, sup, gs, objs = small_case
     cropped = [objs[0], objs[1][:-2], objs[2], objs[3]]
     with pytest.raises(InputError, match=r"objects\[1\].*not registered onto one grid"):

@@ -32,7 +32,8 @@ from braggstrain.io.results import Results, read_results, write_results
 from braggstrain.io.vtk import export_vtk
 from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components, strain_from_components
 from braggstrain.report.html import CAUTIONS, strain_statistics, write_report
-from braggstrain.strain.tensor import mean_lattice_strain, strain_tensor
+from braggstrain.strain.lattice import mean_lattice_strain
+from braggstrain.strain.tensor import strain_tensor
 
 from conftest import assert_runs_columns_recorded  # noqa: E402
 

@@ -16,46 +16,19 @@ import pytest
 from scipy.spatial.transform import Rotation
 
 from braggstrain.simulate import forward as fw
+from braggstrain.strain import registration as R
+from braggstrain.phasing.metrics import twin
 from braggstrain.strain import tensor as T
-from braggstrain.geometry.crystal import Crystal
 from braggstrain.errors import TensorError
 from braggstrain.strain.objects import SampleObject
-from braggstrain.phasing.metrics import twin
 from braggstrain.strain.components import split_gradient
+from braggstrain.strain.lattice import mean_lattice_strain
+from braggstrain.strain.registration import register
 
-N = 48
-H = 40.0  # Å
-TOL = 2e-5  # RMS strain / rotation error allowed by issue 5
+from conftest import H, TOL, gs as _gs, objects as _objects, rms as _rms
+
 SET3 = [(1, 1, 1), (-1, 1, 1), (0, 0, 2)]
 SET4 = [(1, 1, 1), (-1, 1, 1), (1, -1, 1), (1, 1, -1)]
-
-
-@pytest.fixture(scope="module")
-def pt():
-    return Crystal("Pt").oriented_by((1, 1, 1), (0.2, 0.1, 1.0), (1, -1, 0), (1, 0, 0))
-
-
-@pytest.fixture(scope="module")
-def grid():
-    coords = fw.grid_coordinates((N,) * 3, H)
-    R = (N // 2 - 4) * H
-    support = fw.ellipsoid((N,) * 3, H, (R, 0.93 * R, 0.87 * R))
-    return coords, support
-
-
-def _gs(pt, hkls):
-    return np.array([pt.g_sample(h) for h in hkls])
-
-
-def _objects(support, u, G, offsets=None):
-    objs = [fw.complex_object(support, u, g) for g in G]
-    if offsets is not None:
-        objs = [(o * np.exp(1j * c)).astype(np.complex64) for o, c in zip(objs, offsets)]
-    return objs
-
-
-def _rms(a, mask):
-    return float(np.sqrt(np.mean(a[..., mask] ** 2)))
 
 
 def _distance_to_line(coords, point, line):
@@ -307,10 +280,10 @@ def test_apply_registration_moves_a_companion_with_its_object(pt, smooth_case):
     moved = SampleObject(np.roll(objs[1], (2, -1, 1), axis=(0, 1, 2)), H, G[1],
                          np.roll(sos[1].support, (2, -1, 1), axis=(0, 1, 2)), np.zeros(3), SET3[1])
     sos[1] = moved
-    sos[2] = SampleObject(T.twin(objs[2]), H, G[2], T.twin(objs[2]).__abs__() > 0.5, np.zeros(3), SET3[2])
-    reg, rep = T.register(sos, return_report=True)
+    sos[2] = SampleObject(twin(objs[2]), H, G[2], twin(objs[2]).__abs__() > 0.5, np.zeros(3), SET3[2])
+    reg, rep = R.register(sos, return_report=True)
     for j in range(3):
-        again = T.apply_registration(sos[j], rep, j)
+        again = R.apply_registration(sos[j], rep, j)
         np.testing.assert_allclose(again.obj, reg[j].obj, atol=1e-6)
         assert np.array_equal(again.support, reg[j].support)
 
@@ -345,140 +318,10 @@ def test_derived_maps_analytic():
 # registration
 # --------------------------------------------------------------------------
 
-RH = 50.0  # Å, voxel of the registration tests
-SHIFTS = [np.zeros(3), np.array([0.3, -1.45, 0.7]), np.array([-2.2, 0.55, 0.15]), np.array([1.05, 0.8, -0.35])]
-TWINS = [False, True, False, True]
-
-
-def _shifted_object(pt, hkl, field_, shift_vox, make_twin, voxel=RH, n=N, phase=0.0):
-    # A truncated octahedron with a substrate facet (not centrosymmetric, so
-    # amplitudes can tell the twin), shifted by a known sub-voxel amount and
-    # drawn with partial-volume amplitudes (5³ sub-samples per voxel).
-    s = np.asarray(shift_vox, float) * RH
-    coords = fw.grid_coordinates((n,) * 3, voxel) - s[:, None, None, None]
-    amp = fw.truncated_octahedron((n,) * 3, voxel, 1900.0, truncation=0.7,
-                                  flat=([0, 0, -1.0], 400.0), center=s, supersample=5)
-    g = pt.g_sample(hkl)
-    obj = fw.complex_object(amp, field_.displacement(coords), g) * np.exp(1j * phase)
-    if make_twin:
-        obj = twin(obj, periodic=False)
-    return SampleObject(obj, voxel, g, np.abs(obj) >= 0.5, hkl=hkl)
-
-
-@pytest.fixture(scope="module")
-def reg_case(pt):
-    f = fw.UniformStrain([[1e-3, 2e-4, -1e-4], [2e-4, -5e-4, 3e-4], [-1e-4, 3e-4, 2e-4]]) \
-        + fw.InterfaceGradient([0, 0, -1], 400.0, 2e-3, 300.0)
-    objs = [_shifted_object(pt, h, f, s, t, phase=0.7 * j)
-            for j, (h, s, t) in enumerate(zip(SET4, SHIFTS, TWINS))]
-    return f, objs
-
-
-def test_twin_operator_on_a_grid():
-    # conj ρ(−r) about index n//2, twice gives back the object (away from
-    # the unpaired index 0 of an even axis, which a grid leaves empty).
-    rng = np.random.default_rng(1)
-    a = (rng.normal(size=(6, 7, 8)) + 1j * rng.normal(size=(6, 7, 8))).astype(np.complex64)
-    t = twin(a, periodic=False)
-    assert t[3 + 1, 3 - 2, 4 + 3] == np.conj(a[3 - 1, 3 + 2, 4 - 3])
-    assert not t[0].any() and not t[:, :, 0].any() and t[1:, 0, 1:].all()
-    np.testing.assert_array_equal(twin(t, periodic=False)[1:, :, 1:], a[1:, :, 1:])
-    # the periodic twin differs only there: index 0 maps onto itself
-    np.testing.assert_array_equal(twin(a)[1:, :, 1:], t[1:, :, 1:])
-    assert twin(a)[0, 0, 0] == np.conj(a[0, 6, 0])  # axis 1 has odd length 7
-
-
-def test_register_recovers_shifts_and_twins(pt, reg_case):
-    f, objs = reg_case
-    out, rep = T.register(objs, return_report=True)
-    assert rep.overlap_measure == "Dice"
-    for j in range(len(objs)):
-        # the object was moved by +s, so registering moves it by −s
-        np.testing.assert_allclose(rep.shifts_voxels[j], -SHIFTS[j], atol=0.1)
-        np.testing.assert_allclose(rep.shifts_angstrom[j], -SHIFTS[j] * RH, atol=0.1 * RH)
-        assert rep.twins[j] == TWINS[j]
-        assert rep.overlap[j] > 0.9
-        meta = out[j].meta["registration"]
-        assert meta["twin"] == TWINS[j] and meta["overlap_dice"] == rep.overlap[j]
-        assert out[j].shape == objs[0].shape and np.all(out[j].voxel_size == RH)
-    assert [d for d in rep.twin_decided_by[1:]] == ["amplitude"] * 3
-    # and the registered set gives the analytic strain
-    tf = T.strain_tensor(out, [o.g_vector for o in out], RH, displacement=False)
-    eps, _ = split_gradient(f.gradient(fw.grid_coordinates(out[0].shape, RH)))
-    assert _rms(tf.strain - eps, tf.trusted) < TOL
-
-
-def test_register_twin_by_phase_consistency(pt, grid):
-    # A centrosymmetric ellipsoid: the amplitudes of object and twin are the
-    # same, so with four reflections the twin choices must come from the
-    # phases (the twinned set is inconsistent, docs/design.md twin note), and
-    # for a field that is not odd in r the twin is a different object.
-    coords, support = grid
-    f = fw.InterfaceGradient([0.0, 0.0, -1.0], 500.0, 2e-3, 200.0)
-    G = _gs(pt, SET4)
-    objs = _objects(support, f.displacement(coords), G)
-    twins = [False, True, True, False]
-    sos = [SampleObject(twin(o, periodic=False) if t else o, H, g, support, hkl=h)
-           for o, g, h, t in zip(objs, G, SET4, twins)]
-    out, rep = T.register(sos, return_report=True)
-    assert rep.twins == twins
-    assert rep.twin_decided_by[1:] == ["residual"] * 3
-
-
-def test_register_resamples_a_coarser_grid(pt, reg_case):
-    # One reflection reconstructed on 60 Å voxels, 40³: resampled onto the
-    # finest (50 Å) grid and aligned.
-    f, objs = reg_case
-    coarse = _shifted_object(pt, SET4[2], f, SHIFTS[2], False, voxel=60.0, n=40)
-    out, rep = T.register([objs[0], objs[1], coarse, objs[3]], return_report=True)
-    assert tuple(rep.shape) == objs[0].shape and np.all(rep.voxel_size == RH)
-    np.testing.assert_allclose(rep.shifts_voxels[2], -SHIFTS[2], atol=0.15)
-    assert rep.twins == TWINS[:2] + [False, True]
-    assert rep.overlap[2] > 0.9
-
-
-def test_register_refuses_poor_overlap(pt, reg_case):
-    f, objs = reg_case
-    small = fw.ellipsoid((N,) * 3, RH, (250.0, 250.0, 250.0))
-    g = pt.g_sample(SET4[1])
-    bad = SampleObject(small.astype(np.complex64), RH, g, small, hkl=SET4[1])
-    with pytest.raises(TensorError, match=r"\(-1 1 1\) \(Dice 0\.\d+\).*expected Dice ≥ 0\.7"):
-        T.register([objs[0], bad, objs[2]])
-
 
 # --------------------------------------------------------------------------
 # absolute versus relative strain
 # --------------------------------------------------------------------------
-
-def test_mean_lattice_exact_numbers(pt):
-    # Reciprocal lattice b_i·a_j = 2π δ_ij (Ashcroft & Mermin, Solid State
-    # Physics, 1976, ch. 5): deforming the lattice by F = I + D₀ maps every G
-    # to F⁻ᵀG. Exact synthetic numbers in, D₀ out.
-    hkls = [(1, 1, 1), (-1, 1, 1), (2, 0, 0), (0, 2, -2)]
-    Gr = _gs(pt, hkls)
-    D0 = np.array([[1.2e-3, 3e-4, -2e-4], [-1e-4, -4e-4, 5e-4], [2e-4, 1e-4, 7e-4]])
-    Gm = Gr @ np.linalg.inv(np.eye(3) + D0)  # rows: (F⁻ᵀ G)ᵀ = Gᵀ F⁻¹
-    ml = T.mean_lattice_strain(Gm, Gr, lattice_parameter=pt.lattice_parameters[0])
-    np.testing.assert_allclose(ml.displacement_gradient, D0, atol=1e-14)
-    np.testing.assert_allclose(ml.strain, 0.5 * (D0 + D0.T), atol=1e-14)
-    assert ml.residual < 1e-13
-    a = pt.lattice_parameters[0]
-    assert ml.lattice_parameter == pytest.approx(a * np.linalg.det(np.eye(3) + D0) ** (1 / 3), rel=1e-14)
-    # first order: G_meas ≈ (I − D₀ᵀ) G_ref, error O(|D₀|²)
-    first = Gr @ (np.eye(3) - D0)
-    assert np.abs(first - Gm).max() < 10 * np.abs(D0).max() ** 2 * np.abs(Gr).max()
-
-
-def test_mean_lattice_isotropic_expansion_sign(pt):
-    # Bragg's law: a lattice expanded by ε has d' = d(1 + ε), so |G| falls
-    # by 1/(1 + ε); that must come out as tensile strain +ε and a = a₀(1 + ε).
-    a0 = pt.lattice_parameters[0]
-    Gr = _gs(pt, [(1, 1, 1), (-1, 1, 1), (0, 0, 2)])
-    eps = 1e-3
-    ml = T.mean_lattice_strain(Gr / (1 + eps), Gr, lattice_parameter=a0)
-    np.testing.assert_allclose(ml.strain, eps * np.eye(3), atol=1e-15)
-    assert ml.lattice_parameter == pytest.approx(a0 * (1 + eps), rel=1e-14)
-    np.testing.assert_allclose(ml.lattice_parameter_per_reflection, a0 * (1 + eps), rtol=1e-14)
 
 
 def test_uniform_gradient_is_added(pt, smooth_case):
@@ -521,6 +364,6 @@ def test_bad_input(pt, grid):
     with pytest.raises(TensorError, match=r"objects\[0\] \(1 1 1\): voxel size .* differs from voxel_size"):
         T.strain_tensor(so, G3, 2 * H)
     with pytest.raises(TensorError, match="g_measured"):
-        T.mean_lattice_strain(G3[:2], G3)
+        mean_lattice_strain(G3[:2], G3)
     with pytest.raises(TensorError, match="SampleObject"):
-        T.register([obj, obj])
+        register([obj, obj])

@@ -46,7 +46,6 @@ __all__ = [
     "modulus_step_model",
     "support_step",
     "intensity_of",
-    "masked_modulus",
     "poisson_sum_field",
     "poisson_sum_model",
     "masked_magnitude",
@@ -276,33 +275,6 @@ def threshold_real(values, fraction, support):
         support[i] = inside
         count += 1 if inside else 0
     return count
-
-
-def masked_modulus(psi, amplitude, mask):
-    """Modulus projection of a far field leaving masked voxels free.
-
-    Convenience wrapper over :func:`modulus_step` for any shape.
-
-    Parameters
-    ----------
-    psi : ndarray of complex
-        Far field, any shape.
-    amplitude : ndarray of float
-        Measured amplitude sqrt(I), same shape (values >= 0).
-    mask : ndarray of bool or None
-        True where a voxel was not measured; there psi is returned unchanged.
-
-    Returns
-    -------
-    ndarray of complex64
-        The projected far field (a new array).
-    """
-    out = np.ascontiguousarray(psi, dtype=np.complex64).copy()
-    amp = np.ascontiguousarray(amplitude, dtype=np.float32).copy()
-    if mask is not None:
-        amp[np.asarray(mask, dtype=bool)] = -1.0
-    modulus_step(out.reshape(-1), amp.reshape(-1), np.float32(1.0))
-    return out
 
 
 def warm_up():
