@@ -77,8 +77,10 @@ def test_a_distant_spot_does_not_stretch_the_crop(scenes, tmp_path):
     frames[20:25, 10:14, 150:154] += 300
     p = _prepare(replace(scan, frames=frames), crop="auto")
     assert np.array_equal(p.crop, ref.crop)
-    path = pr.write_prepared(p, tmp_path / "p.h5")
-    assert pr.read_prepared(path).crop_choice == p.crop_choice
+    from braggstrain.io.prepared import read_prepared, write_prepared
+
+    path = write_prepared(p, tmp_path / "p.h5")
+    assert read_prepared(path).crop_choice == p.crop_choice
 
 
 def test_choose_crop_limits_and_errors():

@@ -17,7 +17,7 @@ from braggstrain.config import load_config
 from braggstrain.io.frames import describe_frames
 from braggstrain.io.sources import read_spec_scan
 from braggstrain.pipeline import _scan_for
-from braggstrain.prepare.scan import read_prepared
+from braggstrain.io.prepared import read_prepared
 
 from conftest import small_toml
 
