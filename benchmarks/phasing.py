@@ -45,6 +45,7 @@ import numpy as np
 
 def crystal_intensity(n):
     """Intensity of an invented faceted crystal with a smooth phase on an n^3 grid."""
+    from braggstrain.phasing.metrics import far_field
     from braggstrain.simulate import forward
 
     shape = (n, n, n)
@@ -113,16 +114,16 @@ def main(argv=None):
     if n < 16:
         ap.error("--size: expected at least 16")
 
-    from braggstrain.phasing import FFTBackend, Stage, default_threads, reconstruct
+    from braggstrain.phasing import FFTBackend, PhasingStage, default_threads, reconstruct
 
     threads = args.threads or default_threads()
     print(f"size {n}^3, threads {threads}, cores {default_threads()}, "
           f"OMP_WAIT_POLICY={os.environ.get('OMP_WAIT_POLICY')}", flush=True)
     intensity = crystal_intensity(n)
-    plan = [Stage("HIO", args.iterations, 0.9, "shrinkwrap", 20, (3.0, 1.0), 0.15)]
+    plan = [PhasingStage("HIO", args.iterations, 0.9, "shrinkwrap", 20, (3.0, 1.0), 0.15)]
 
     # warm up: kernels compiled/loaded, FFTW wisdom for this size gathered
-    reconstruct(crystal_intensity(16), plan=[Stage("HIO", 2, 0.9, "shrinkwrap", 1)], seed=0,
+    reconstruct(crystal_intensity(16), plan=[PhasingStage("HIO", 2, 0.9, "shrinkwrap", 1)], seed=0,
                 threads=threads, raise_on_failure=False)
     for effort in ("FFTW_ESTIMATE", "FFTW_MEASURE"):
         fft = FFTBackend(intensity.shape, threads=threads, effort=effort)

@@ -44,7 +44,7 @@ from braggstrain.strain import frame
 from braggstrain.strain import registration, tensor
 from braggstrain.defects import lines as defects
 from braggstrain.io.scans import Scan
-from braggstrain.phasing import ensemble, Stage
+from braggstrain.phasing import ensemble, PhasingStage
 """)
 
 md("""
@@ -113,9 +113,9 @@ the detector-frame grid).
 """)
 
 code("""
-plan = [Stage("HIO", 160, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
-        Stage("RAAR", 100, 0.8, "shrinkwrap", 20, (1.5, 1.0), 0.2),
-        Stage("ER", 40, None, "shrinkwrap", 20, (1.0, 1.0), 0.2)]
+plan = [PhasingStage("HIO", 160, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
+        PhasingStage("RAAR", 100, 0.8, "shrinkwrap", 20, (1.5, 1.0), 0.2),
+        PhasingStage("ER", 40, None, "shrinkwrap", 20, (1.0, 1.0), 0.2)]
 objects = []
 for j, s in enumerate(scans):
     p = prepare.prepare_scan(s, crop=(48, 48, 48))

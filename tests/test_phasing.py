@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from braggstrain.errors import BraggStrainError, ConfigError, InputError, PhasingError
-from braggstrain.phasing import (OversamplingWarning, Stage, default_plan, plan_from_config,
+from braggstrain.phasing import (OversamplingWarning, PhasingStage, default_plan, plan_from_config,
                                  plan_to_config, reconstruct)
 from braggstrain.phasing import fft as pfft
 from braggstrain.phasing import kernels as K
@@ -30,7 +30,7 @@ from braggstrain.prepare.oversampling import estimate_oversampling
 
 from test_phasing_helpers import clean_intensity, crystal
 
-SHORT = [Stage("HIO", 40, 0.9, "shrinkwrap", 20, (2.0, 1.0), 0.15), Stage("ER", 20, None, "none")]
+SHORT = [PhasingStage("HIO", 40, 0.9, "shrinkwrap", 20, (2.0, 1.0), 0.15), PhasingStage("ER", 20, None, "none")]
 
 
 # --------------------------------------------------------------------- FFT
@@ -85,7 +85,7 @@ def test_reconstruct_same_with_both_backends():
     # used because it is contractive: HIO amplifies rounding differences
     # (~1e-7 per FFT) to per-cent level within tens of iterations.
     inten = clean_intensity(32)
-    plan = [Stage("ER", 30, None, "shrinkwrap", 15, (2.0, 1.0), 0.15)]
+    plan = [PhasingStage("ER", 30, None, "shrinkwrap", 15, (2.0, 1.0), 0.15)]
     a = reconstruct(inten, plan=plan, seed=3, threads=1, fft_backend="pyfftw")
     b = reconstruct(inten, plan=plan, seed=3, threads=1, fft_backend="scipy")
     assert (a.fft_backend, b.fft_backend) == ("pyfftw", "scipy")
@@ -313,7 +313,7 @@ def test_plan_from_config_round_trip_through_toml():
     average = true
     """
     plan = plan_from_config(tomllib.loads(text)["plan"])
-    assert plan[0] == Stage("HIO", 300, 0.85, "shrinkwrap", 25, (3.0, 1.0), 0.12)
+    assert plan[0] == PhasingStage("HIO", 300, 0.85, "shrinkwrap", 25, (3.0, 1.0), 0.12)
     assert plan[1].sigma == (1.5, 1.0) and plan[1].feedback == 0.0 and plan[1].average
     assert plan_from_config(plan_to_config(plan)) == plan
     assert plan_from_config(plan_to_config(default_plan())) == default_plan()
@@ -411,12 +411,12 @@ def test_undersampled_axis_warns_with_axis_and_ratio():
 
 def test_collapsing_and_exploding_supports_stop_with_a_status():
     inten = clean_intensity(32)
-    collapse = [Stage("HIO", 60, 0.9, "shrinkwrap", 10, (0.5, 0.5), 0.98)]
+    collapse = [PhasingStage("HIO", 60, 0.9, "shrinkwrap", 10, (0.5, 0.5), 0.98)]
     with pytest.raises(PhasingError, match="collapsed"):
         reconstruct(inten, plan=collapse, seed=0)
     rec = reconstruct(inten, plan=collapse, seed=0, raise_on_failure=False)
     assert rec.status == "support collapsed" and not rec.ok and not rec.obj.any()
-    explode = [Stage("HIO", 60, 0.9, "shrinkwrap", 10, (6.0, 6.0), 0.001)]
+    explode = [PhasingStage("HIO", 60, 0.9, "shrinkwrap", 10, (6.0, 6.0), 0.001)]
     with pytest.raises(PhasingError, match="exploded"):
         reconstruct(inten, plan=explode, seed=0)
 

@@ -4,12 +4,12 @@ import numpy as np
 import pytest
 
 from braggstrain.errors import InputError, PhasingError
-from braggstrain.phasing import Stage, align, ensemble, prtf, reconstruct, twin
+from braggstrain.phasing import PhasingStage, align, ensemble, prtf, reconstruct, twin
 from braggstrain.phasing.metrics import far_field
 
 from test_phasing_helpers import clean_intensity, crystal, error_to_truth, noisy_intensity
 
-SHORT = [Stage("HIO", 60, 0.9, "shrinkwrap", 20, (2.0, 1.0), 0.15), Stage("ER", 20, None, "none")]
+SHORT = [PhasingStage("HIO", 60, 0.9, "shrinkwrap", 20, (2.0, 1.0), 0.15), PhasingStage("ER", 20, None, "none")]
 
 
 class SerialExecutor:
@@ -87,7 +87,7 @@ def test_runs_are_identical_on_every_executor():
 
 def test_ensemble_failures_are_reported():
     inten = clean_intensity(32)
-    collapse = [Stage("HIO", 30, 0.9, "shrinkwrap", 10, (0.5, 0.5), 0.98)]
+    collapse = [PhasingStage("HIO", 30, 0.9, "shrinkwrap", 10, (0.5, 0.5), 0.98)]
     with pytest.raises(PhasingError, match="no run succeeded.*support collapsed"):
         ensemble(inten, runs=2, keep=1, plan=collapse, seed=1, executor=SerialExecutor())
     with pytest.raises(InputError, match="executor"):
@@ -113,8 +113,8 @@ def test_separate_processes_reproduce_a_run(tmp_path):
     np.save(tmp_path / "intensity.npy", clean_intensity(48))
     code = (
         "import sys, numpy as np\n"
-        "from braggstrain.phasing import reconstruct, Stage\n"
-        "plan = [Stage('HIO', 60, 0.9, 'shrinkwrap', 20, (2.0, 1.0), 0.15)]\n"
+        "from braggstrain.phasing import reconstruct, PhasingStage\n"
+        "plan = [PhasingStage('HIO', 60, 0.9, 'shrinkwrap', 20, (2.0, 1.0), 0.15)]\n"
         "rec = reconstruct(np.load(sys.argv[1]), plan=plan, seed=4, threads=2)\n"
         "np.save(sys.argv[2], rec.obj)\n"
     )
@@ -159,7 +159,7 @@ class _OneBadRun:
         out = []
         for data, stages, opts, run, wisdom in tasks:
             if run == 1:
-                stages = [Stage("HIO", 30, 0.9, "shrinkwrap", 10, (2.0, 1.0), 0.15)]
+                stages = [PhasingStage("HIO", 30, 0.9, "shrinkwrap", 10, (2.0, 1.0), 0.15)]
             out.append(fn((data, stages, opts, run, wisdom)))
         return out
 

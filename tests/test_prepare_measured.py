@@ -16,7 +16,7 @@ import pytest
 from scipy import ndimage
 
 from braggstrain.errors import ScanFileError
-from braggstrain.phasing import Stage, reconstruct
+from braggstrain.phasing import PhasingStage, reconstruct
 from braggstrain.prepare import scan as pr
 from braggstrain.prepare.measured import fit_rocking_step, monitor_scale, sum_repeats
 
@@ -127,8 +127,8 @@ def test_repeats_are_aligned_and_summed(weak_repeats):
 def test_summed_repeats_phase_as_well_as_one_long_scan(weak_repeats):
     # a reconstruction's far-field amplitude against the truth's, over three seeds
     # (a rate over seeds, not one lucky start)
-    plan = [Stage("HIO", 300, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
-            Stage("ER", 100, None, "shrinkwrap", 20, (1.0, 1.0), 0.2)]
+    plan = [PhasingStage("HIO", 300, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
+            PhasingStage("ER", 100, None, "shrinkwrap", 20, (1.0, 1.0), 0.2)]
     summed, _ = sum_repeats(weak_repeats["reps"])
     errors = {}
     for name, s in (("sum", summed), ("single", weak_repeats["single"])):

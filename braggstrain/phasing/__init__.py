@@ -2,12 +2,12 @@
 
 Entry points: :func:`reconstruct` (one random start) and :func:`ensemble`
 (many starts, ranked, aligned and averaged).  The plan of stages is plain
-data (:class:`Stage`, :func:`plan_from_config`, :func:`default_plan`) that a
+data (:class:`PhasingStage`, :func:`plan_from_config`, :func:`default_plan`) that a
 pipeline TOML file can hold.  See docs/phasing.md.
 """
 
 from braggstrain.phasing.fft import FFTBackend, default_threads, export_wisdom, import_wisdom, load_wisdom, save_wisdom
-from braggstrain.phasing.schedule import Stage, default_plan, options_from_config, plan_from_config, plan_to_config
+from braggstrain.phasing.schedule import PhasingStage, default_plan, options_from_config, plan_from_config, plan_to_config
 from braggstrain.phasing.coherence import CoherenceSettings
 from braggstrain.phasing.engine import History, Metrics, OversamplingWarning, Reconstruction, reconstruct
 from braggstrain.phasing.ensemble import EnsembleResult, RunSummary, ensemble
@@ -21,7 +21,7 @@ __all__ = [
     "RunSummary",
     "History",
     "Metrics",
-    "Stage",
+    "PhasingStage",
     "default_plan",
     "plan_from_config",
     "plan_to_config",

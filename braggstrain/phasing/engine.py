@@ -159,7 +159,7 @@ class Reconstruction:
     threads : int
     elapsed : float
         Wall time of the run (s).
-    plan : list of Stage
+    plan : list of PhasingStage
     timings : dict
         Wall time (s) of ``setup`` (plans, start), ``iterations`` (the loop)
         and ``finish`` (final figures, centring).
@@ -668,7 +668,7 @@ def reconstruct(intensity, mask=None, *, support=None, start=None, plan=None, se
         :attr:`Reconstruction.obj` (centred, phase ramp removed): a previous
         result to refine, or, in a test, the true object (the noise floor of
         a plan: how far its stages take the truth on noisy data).
-    plan : list of Stage or dict, optional
+    plan : list of PhasingStage or dict, optional
         Stages to run (see :mod:`braggstrain.phasing.schedule`); default
         :func:`default_plan`.
     seed : int, optional

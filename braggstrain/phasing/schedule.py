@@ -13,7 +13,7 @@ In a pipeline file the plan is an array of tables, for example::
     threshold = 0.15
 
 and :func:`plan_from_config` turns the list of such tables into
-:class:`Stage` objects, rejecting unknown keys and bad values with a
+:class:`PhasingStage` objects, rejecting unknown keys and bad values with a
 :class:`~braggstrain.errors.ConfigError` that names the stage and the key.
 """
 
@@ -25,7 +25,7 @@ from dataclasses import asdict, dataclass, fields
 from braggstrain.errors import ConfigError, did_you_mean
 
 __all__ = [
-    "Stage",
+    "PhasingStage",
     "ALGORITHMS",
     "SUPPORT_RULES",
     "default_plan",
@@ -41,7 +41,7 @@ _DEFAULT_BETA = {"ER": 0.0, "HIO": 0.9, "RAAR": 0.8}
 
 
 @dataclass(frozen=True)
-class Stage:
+class PhasingStage:
     """One stage of a phasing plan.
 
     Parameters
@@ -114,7 +114,7 @@ class Stage:
         return d
 
 
-STAGE_KEYS = tuple(f.name for f in fields(Stage))
+STAGE_KEYS = tuple(f.name for f in fields(PhasingStage))
 
 
 def _is_int(v):
@@ -190,7 +190,7 @@ def _check_stage(stage, where):
         raise ConfigError(f"{where}: key 'average': expected true or false, got {stage.average!r}")
 
 
-def default_plan() -> list[Stage]:
+def default_plan() -> list[PhasingStage]:
     """The plan used when none is given: 1000 iterations in four stages.
 
     1. HIO (beta 0.9) with a shrink-wrap (threshold 0.15) whose blur narrows
@@ -206,25 +206,25 @@ def default_plan() -> list[Stage]:
     starts at 1e5 peak counts it stays below 6.5 %.
     """
     return [
-        Stage("HIO", 400, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
-        Stage("RAAR", 300, 0.8, "shrinkwrap", 20, (1.5, 1.0), 0.2),
-        Stage("RAAR", 100, 0.9, "none", 20, (1.0, 1.0), 0.2),
-        Stage("ER", 200, None, "shrinkwrap", 50, (1.0, 1.0), 0.2),
+        PhasingStage("HIO", 400, 0.9, "shrinkwrap", 20, (3.0, 1.5), 0.15),
+        PhasingStage("RAAR", 300, 0.8, "shrinkwrap", 20, (1.5, 1.0), 0.2),
+        PhasingStage("RAAR", 100, 0.9, "none", 20, (1.0, 1.0), 0.2),
+        PhasingStage("ER", 200, None, "shrinkwrap", 50, (1.0, 1.0), 0.2),
     ]
 
 
-def plan_from_config(stages) -> list[Stage]:
+def plan_from_config(stages) -> list[PhasingStage]:
     """Build and validate a plan from a list of dicts (e.g. TOML tables).
 
     Parameters
     ----------
-    stages : list of dict or Stage
-        One mapping per stage with keys among those of :class:`Stage`;
-        missing keys take the defaults of :class:`Stage`.
+    stages : list of dict or PhasingStage
+        One mapping per stage with keys among those of :class:`PhasingStage`;
+        missing keys take the defaults of :class:`PhasingStage`.
 
     Returns
     -------
-    list of Stage
+    list of PhasingStage
 
     Raises
     ------
@@ -237,7 +237,7 @@ def plan_from_config(stages) -> list[Stage]:
     out = []
     for i, st in enumerate(stages):
         where = f"plan[{i}]"
-        if isinstance(st, Stage):
+        if isinstance(st, PhasingStage):
             out.append(st)
             continue
         if not isinstance(st, dict):
@@ -247,7 +247,7 @@ def plan_from_config(stages) -> list[Stage]:
                 raise ConfigError(f"{where}: unknown key '{key}'{did_you_mean(key, STAGE_KEYS)}; "
                                   f"known keys: {', '.join(STAGE_KEYS)}")
         try:
-            out.append(Stage(**st))
+            out.append(PhasingStage(**st))
         except ConfigError as exc:
             raise ConfigError(str(exc).replace("stage:", f"{where}:", 1)) from None
     if not out:
