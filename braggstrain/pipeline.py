@@ -13,6 +13,10 @@ The stages are the plain functions of their modules; this module only
   Dask cluster (``scheduler="local"`` starts a ``LocalCluster``, any other
   value is a scheduler address). Each random start is one task, reproducible
   from (seed, reflection, run), so every executor gives identical results.
+
+Why one module of about 630 lines: it is the wiring of every stage, in one
+place by design; the stages, the file formats and the checkpoint
+conversions live in their packages.
 """
 
 from __future__ import annotations
@@ -37,9 +41,10 @@ from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, c
 from braggstrain.errors import (BraggStrainError, ConfigError, InputError, OutputError, ReflectionError,
                                 ScanFileError, TensorError, did_you_mean)
 from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_METRIC, DEFAULT_RUNS
-from braggstrain.strain.objects import SampleObject
+from braggstrain.io.checkpoints import (dislocation_to_tree, file_digest, hash_inputs, load_tree, plain_tree,
+                                        sample_to_tree, save_tree, tree_to_dislocation, tree_to_sample,
+                                        tree_to_tensor)
 from braggstrain.io.arrays import split_dataset
-from braggstrain.io.checkpoints import file_digest, hash_inputs, load_tree, save_tree
 from braggstrain.io.dislocations import write_dislocation_table
 from braggstrain.io.prepared import read_prepared, write_prepared
 
@@ -233,32 +238,6 @@ class PipelineRun:
 # conversions between stage outputs and checkpoint trees
 # ---------------------------------------------------------------------------
 
-def _sample_to_tree(so):
-    return {"obj": so.obj, "voxel_size": so.voxel_size, "g_vector": so.g_vector, "support": so.support,
-            "origin": so.origin, "hkl": list(so.hkl) if so.hkl is not None else None, "meta": _plain(so.meta)}
-
-
-def _tree_to_sample(t):
-    return SampleObject(t["obj"], t["voxel_size"], t["g_vector"], t["support"], t["origin"],
-                        tuple(t["hkl"]) if t["hkl"] is not None else None, t.get("meta", {}))
-
-
-def _plain(v):
-    """Convert a nested structure to checkpoint-storable plain values."""
-    if isinstance(v, dict):
-        return {str(k): _plain(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_plain(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return v
-    if isinstance(v, (np.integer, np.floating, np.bool_)):
-        return v.item()
-    if v is None or isinstance(v, (bool, int, float, str)):
-        return v
-    if hasattr(v, "__dataclass_fields__"):
-        return {k: _plain(getattr(v, k)) for k in v.__dataclass_fields__}
-    return str(v)
-
 
 def _real_voxel(data):
     """Edge (Å) of the cube with the volume of one real-space voxel of the
@@ -285,7 +264,7 @@ def _phase_to_tree(ens, voxel):
     kept = {int(v) for v in ens.kept}
     rank = {int(run): k for k, run in enumerate(ens.ranking)}
     for r in ens.runs:
-        m = _plain(r.metrics)
+        m = plain_tree(r.metrics)
         m.update({"run": r.run, "seed": r.seed, "status": r.status, "iterations": r.iterations,
                   "elapsed": r.elapsed, "message": r.message, "kept": int(r.run) in kept,
                   "rank": rank.get(int(r.run), -1)})
@@ -298,7 +277,7 @@ def _phase_to_tree(ens, voxel):
     return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
             "kept_objects": ens.kept_objects,
             "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
-            "alignment": _plain(ens.alignment), "history": hist, "seed": int(ens.seed), "metric": ens.metric,
+            "alignment": plain_tree(ens.alignment), "history": hist, "seed": int(ens.seed), "metric": ens.metric,
             "prtf": {"q": 2 * np.pi * f / voxel, "values": np.asarray(pr.values, float),
                      "resolution": voxel / (2 * res_f) if np.isfinite(res_f) and res_f > 0 else float("nan"),
                      "voxel_A": voxel}}
@@ -774,9 +753,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                                              ramp=tree["ramp"], **fr_opts)
                     so.hkl = h
                     so.meta["name"] = name
-                    ft = _sample_to_tree(so)
+                    ft = sample_to_tree(so)
                     run.save("frame", name, k_frame, ft)
-            so = _tree_to_sample(ft)
+            so = tree_to_sample(ft)
             # -- spread: the kept runs and Poisson replicas on the sample-frame grid of `so`
             k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter, REPLICA_RAAR_FRACTION)
             with run.timed("spread"):
@@ -806,9 +785,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         rt = run.cached("register", "all", k_reg)
         if rt is None:
             reg, report = register([p["sample"] for p in per_refl], return_report=True, **reg_kw)
-            rt = {"objects": [_sample_to_tree(o) for o in reg], "report": _plain(report)}
+            rt = {"objects": [sample_to_tree(o) for o in reg], "report": plain_tree(report)}
             run.save("register", "all", k_reg, rt)
-    registered = [_tree_to_sample(t) for t in rt["objects"]]
+    registered = [tree_to_sample(t) for t in rt["objects"]]
     grid = registered[0].grid  # the common grid: every position below is on it
     common_vs = grid.voxel_size
     G = np.array([o.g_vector for o in registered])
@@ -831,10 +810,10 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                                        covariance_source=source, **te_opts)
             for w in caught:
                 say(f"  warning: {w.message}")
-            tt = _plain(tf)
+            tt = plain_tree(tf)
             tt["warnings"] = [str(w.message) for w in caught]
             run.save("tensor", "all", k_ten, tt)
-    tfield = _tree_to_tensor(tt)
+    tfield = tree_to_tensor(tt)
 
     # -- mean lattice from the peak positions
     g_meas = []
@@ -844,7 +823,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
         g_meas.append(pr.rotation.T @ (pr.q_center + pr.linear_map @ ramp))
     try:
         ml = mean_lattice_strain(np.array(g_meas), g_ref, lattice_parameter=crystal.lattice_parameters[0])
-        mean_lattice = _plain(ml)
+        mean_lattice = plain_tree(ml)
     except TensorError as e:
         mean_lattice = {"error": str(e)}
 
@@ -859,9 +838,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             if dt is None:
                 lines = dfx.find_dislocations([o.obj for o in registered], [o.hkl for o in registered], G,
                                               support=tfield.support, crystal=crystal, grid=grid, **de_opts)
-                dt = {"lines": [_disl_to_tree(d) for d in lines]}
+                dt = {"lines": [dislocation_to_tree(d) for d in lines]}
                 run.save("defects", "all", k_def, dt)
-            dislocations = [_tree_to_dislocation(d) for d in dt["lines"]]
+            dislocations = [tree_to_dislocation(d) for d in dt["lines"]]
 
     # -- outputs
     results = _bundle(cfg, crystal, per_refl, registered, rt["report"], tfield, dislocations, mean_lattice,
@@ -936,6 +915,7 @@ def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
     Returns (covariance (J, 3, 3, *grid) or None, a sentence saying what it holds).
     """
     from braggstrain.strain.fields import phase_gradient_covariance
+    from braggstrain.strain.objects import SampleObject
     from braggstrain.strain.registration import apply_registration
 
     covs, parts = [], set()
@@ -964,64 +944,6 @@ def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
             return None, ""
         covs.append(C)
     return np.stack(covs).astype(np.float32), " and ".join(sorted(parts)) + " (per reflection)"
-
-
-def _tree_to_tensor(t):
-    from braggstrain.strain.tensor import TensorField
-
-    kw = {}
-    for k in TensorField.__dataclass_fields__:
-        if k in t:
-            v = t[k]
-            if k == "reference":
-                v = tuple(int(x) for x in v)
-            elif k == "labels":
-                v = list(v)
-            elif k in ("condition_number",):
-                v = float(v)
-            kw[k] = v
-    return TensorField(**kw)
-
-
-def _disl_to_tree(d):
-    """A Dislocation as a checkpoint tree (hkl-keyed dicts become pair lists)."""
-    t = {}
-    for k in d.__dataclass_fields__:
-        v = getattr(d, k)
-        if k in ("windings", "agreement"):
-            v = [[list(int(x) for x in h), (None if n is None else float(n))] for h, n in v.items()]
-        elif k in ("visible_in", "invisible_in", "slip_planes"):
-            v = [list(int(x) for x in h) for h in v]
-        elif k == "ends_at_surface" and v is not None:
-            v = [bool(e) for e in v]
-        t[k] = _plain(v)
-    return t
-
-
-def _tree_to_dislocation(t):
-    from braggstrain.defects.lines import Dislocation
-
-    kw = {}
-    for k in Dislocation.__dataclass_fields__:
-        if k not in t:
-            continue
-        v = t[k]
-        if k == "windings":
-            v = {tuple(int(x) for x in h): (None if n is None else int(round(n))) for h, n in v}
-        elif k == "agreement":
-            v = {tuple(int(x) for x in h): float(n) for h, n in v}
-        elif k in ("visible_in", "invisible_in", "slip_planes"):
-            v = [tuple(int(x) for x in h) for h in v]
-        elif k == "ends_at_surface" and v is not None:
-            v = tuple(bool(e) for e in v)
-        elif k in ("points", "directions", "local_character_deg"):
-            v = np.asarray(v, float)
-        elif k in ("burgers", "burgers_sample", "burgers_fit") and v is not None:
-            v = np.asarray(v, float)
-        elif k == "notes":
-            v = list(v)
-        kw[k] = v
-    return Dislocation(**kw)
 
 
 def _versions():

@@ -1,4 +1,4 @@
-"""Plain-data trees in HDF5, for stage checkpoints.
+"""Plain-data trees in HDF5, for stage checkpoints, and the stage outputs as trees.
 
 A tree is a dict whose values are numpy arrays, numbers, strings, booleans,
 None, lists, tuples or dicts of the same. It is stored as HDF5 groups,
@@ -17,7 +17,8 @@ import numpy as np
 from braggstrain.errors import BraggStrainError
 from braggstrain.io.files import atomic_path, mark_version, nbytes_of, open_versioned
 
-__all__ = ["save_tree", "load_tree", "hash_inputs", "file_digest"]
+__all__ = ["save_tree", "load_tree", "hash_inputs", "file_digest", "plain_tree", "sample_to_tree", "tree_to_sample",
+           "tree_to_tensor", "dislocation_to_tree", "tree_to_dislocation"]
 
 _KIND = "__kind__"
 #: Version marker of a checkpoint file (:mod:`braggstrain.io.files`); the
@@ -155,3 +156,94 @@ def hash_inputs(*parts):
 
     text = json.dumps(_canon([CHECKPOINT_FORMAT, __version__, *parts]), sort_keys=True, default=str)
     return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+# --------------------------------------------------------------------------
+# stage outputs <-> checkpoint trees
+# --------------------------------------------------------------------------
+
+def sample_to_tree(so):
+    return {"obj": so.obj, "voxel_size": so.voxel_size, "g_vector": so.g_vector, "support": so.support,
+            "origin": so.origin, "hkl": list(so.hkl) if so.hkl is not None else None, "meta": plain_tree(so.meta)}
+
+
+def tree_to_sample(t):
+    from braggstrain.strain.objects import SampleObject
+
+    return SampleObject(t["obj"], t["voxel_size"], t["g_vector"], t["support"], t["origin"],
+                        tuple(t["hkl"]) if t["hkl"] is not None else None, t.get("meta", {}))
+
+
+def plain_tree(v):
+    """Convert a nested structure to checkpoint-storable plain values."""
+    if isinstance(v, dict):
+        return {str(k): plain_tree(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [plain_tree(x) for x in v]
+    if isinstance(v, np.ndarray):
+        return v
+    if isinstance(v, (np.integer, np.floating, np.bool_)):
+        return v.item()
+    if v is None or isinstance(v, (bool, int, float, str)):
+        return v
+    if hasattr(v, "__dataclass_fields__"):
+        return {k: plain_tree(getattr(v, k)) for k in v.__dataclass_fields__}
+    return str(v)
+
+
+def tree_to_tensor(t):
+    from braggstrain.strain.tensor import TensorField
+
+    kw = {}
+    for k in TensorField.__dataclass_fields__:
+        if k in t:
+            v = t[k]
+            if k == "reference":
+                v = tuple(int(x) for x in v)
+            elif k == "labels":
+                v = list(v)
+            elif k in ("condition_number",):
+                v = float(v)
+            kw[k] = v
+    return TensorField(**kw)
+
+
+def dislocation_to_tree(d):
+    """A Dislocation as a checkpoint tree (hkl-keyed dicts become pair lists)."""
+    t = {}
+    for k in d.__dataclass_fields__:
+        v = getattr(d, k)
+        if k in ("windings", "agreement"):
+            v = [[list(int(x) for x in h), (None if n is None else float(n))] for h, n in v.items()]
+        elif k in ("visible_in", "invisible_in", "slip_planes"):
+            v = [list(int(x) for x in h) for h in v]
+        elif k == "ends_at_surface" and v is not None:
+            v = [bool(e) for e in v]
+        t[k] = plain_tree(v)
+    return t
+
+
+def tree_to_dislocation(t):
+    from braggstrain.defects.lines import Dislocation
+
+    kw = {}
+    for k in Dislocation.__dataclass_fields__:
+        if k not in t:
+            continue
+        v = t[k]
+        if k == "windings":
+            v = {tuple(int(x) for x in h): (None if n is None else int(round(n))) for h, n in v}
+        elif k == "agreement":
+            v = {tuple(int(x) for x in h): float(n) for h, n in v}
+        elif k in ("visible_in", "invisible_in", "slip_planes"):
+            v = [tuple(int(x) for x in h) for h in v]
+        elif k == "ends_at_surface" and v is not None:
+            v = tuple(bool(e) for e in v)
+        elif k in ("points", "directions", "local_character_deg"):
+            v = np.asarray(v, float)
+        elif k in ("burgers", "burgers_sample", "burgers_fit") and v is not None:
+            v = np.asarray(v, float)
+        elif k == "notes":
+            v = list(v)
+        kw[k] = v
+    return Dislocation(**kw)

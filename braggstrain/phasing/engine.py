@@ -4,6 +4,10 @@
 the stages of a plan.  Internally everything is in FFT order (origin at
 index 0) so no shift is needed per iteration; the result is returned in the
 user layout (crystal centred at index n//2).
+
+Why one module of about 700 lines: the data validation, the loop and the
+final figures of a run share its private state (_Data, _Options and the
+buffers of one FFT backend); split, they would pass it around.
 """
 
 from __future__ import annotations

@@ -17,6 +17,9 @@ Three parts:
 * diffraction: :func:`complex_object` (whose far field is
   :func:`braggstrain.phasing.metrics.far_field`) and, for a whole rocking
   scan on an instrument, :func:`simulate_scan`.
+
+Why one module of about 700 lines: shapes, displacement fields and the scan
+simulation are the simulator's three parts, each short and used together.
 """
 
 from __future__ import annotations

@@ -16,6 +16,10 @@ Recipes, 3rd ed., 2007, §15.4).
 Registration (:mod:`braggstrain.strain.registration`) brings the reflections
 onto one grid first; the mean lattice from the peak positions is in
 :mod:`braggstrain.strain.lattice`.
+
+Why one module of about 610 lines: the solve, its uncertainty, the
+displacement with its branch correction and the outlier check share one
+weighted least-squares system per voxel.
 """
 
 from __future__ import annotations
