@@ -10,17 +10,11 @@ from scipy import ndimage as ndi
 
 from braggstrain.strain import fields
 from braggstrain.simulate import forward as fw
-from braggstrain.geometry.crystal import Crystal
 from braggstrain.errors import InputError
 from braggstrain.strain.objects import SampleObject
 
 N = 48
 H = 40.0  # Å
-
-
-@pytest.fixture(scope="module")
-def pt():
-    return Crystal("Pt").oriented_by((1, 1, 1), (0.2, 0.1, 1.0), (1, -1, 0), (1, 0, 0))
 
 
 @pytest.fixture(scope="module")
