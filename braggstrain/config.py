@@ -213,7 +213,7 @@ SCHEMA = _Table(
         direction_tolerance_deg=_Spec(NUM, 2.0, check=_positive,
                                       doc="largest angle between Q at the peak and the declared G, degrees"),
     ),
-    prepare=_Spec(dict, {}, doc="options of braggstrain.prepare.prepare_scan"),
+    prepare=_Spec(dict, {}, doc="options of braggstrain.prepare.scan.prepare_scan"),
     phasing=_Spec(dict, {}, doc="ensemble size, seed and plan of phase retrieval"),
     frame=_Spec(dict, {}, doc="route to the sample frame"),
     tensor=_Spec(dict, {}, doc="registration and tensor options"),

@@ -362,7 +362,7 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
     support : bool ndarray
         The crystal on the common grid (union of the SampleObjects' supports
         if None).
-    crystal : braggstrain.crystal.Crystal
+    crystal : braggstrain.geometry.crystal.Crystal
         The lattice and its translations and slip planes; its own orientation
         is not used.
     grid : Grid, optional
@@ -398,7 +398,7 @@ def find_dislocations(objects, hkls=None, g_vectors=None, voxel_size=None, suppo
         windings and ``burgers=None``.
     """
     if crystal is None:
-        raise InputError("crystal: expected a braggstrain.crystal.Crystal (lattice and its translations)")
+        raise InputError("crystal: expected a braggstrain.geometry.crystal.Crystal (lattice and its translations)")
     arrays, hk, G, grid, support = _gather(objects, hkls, g_vectors, voxel_size, support, grid)
     vs = grid.voxel_size
     _check_registered(arrays, support)

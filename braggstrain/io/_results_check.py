@@ -141,7 +141,7 @@ def _check_tensor(tf, shape):
     from braggstrain.strain.tensor import TensorField
 
     if not isinstance(tf, TensorField):
-        raise InputError(f"results['tensor']: expected a braggstrain.tensor.TensorField, got {type(tf).__name__}")
+        raise InputError(f"results['tensor']: expected a braggstrain.strain.tensor.TensorField, got {type(tf).__name__}")
     checks = {"strain": (3, 3), "rotation": (3,), "residual": (), "strain_uncertainty": (3, 3),
               "rotation_uncertainty": (3,), "support": (), "trusted": ()}
     for name, lead in checks.items():
@@ -207,7 +207,7 @@ def _check(results):
     lines = results.get("dislocations") or []
     for k, d in enumerate(lines):
         if not isinstance(d, Dislocation):
-            raise InputError(f"results['dislocations'][{k}]: expected a braggstrain.defects.Dislocation, "
+            raise InputError(f"results['dislocations'][{k}]: expected a braggstrain.defects.lines.Dislocation, "
                              f"got {type(d).__name__}")
     out["dislocations"] = list(lines)
     for key in ("registration", "mean_lattice", "provenance"):

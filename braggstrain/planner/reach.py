@@ -254,8 +254,8 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
 
     Parameters
     ----------
-    crystal : :class:`braggstrain.crystal.Crystal`
-    instrument : :class:`braggstrain.instrument.Diffractometer`
+    crystal : :class:`braggstrain.geometry.crystal.Crystal`
+    instrument : :class:`braggstrain.geometry.instrument.Diffractometer`
     hkls : Miller indices of the reflections
     options : :class:`PlanOptions`
 

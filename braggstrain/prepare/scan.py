@@ -197,7 +197,7 @@ class PreparedScan:
     rocking_circle : str
     rocking_step : float
         Degrees per raw frame.
-    instrument : braggstrain.instrument.Diffractometer
+    instrument : braggstrain.geometry.instrument.Diffractometer
     hkl : tuple or None
     source : str
         The scan's file.

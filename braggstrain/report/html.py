@@ -108,7 +108,7 @@ def strain_statistics(tensor, mask=None):
 
     Parameters
     ----------
-    tensor : braggstrain.tensor.TensorField
+    tensor : braggstrain.strain.tensor.TensorField
     mask : bool array, optional
         Voxels to use (default: the tensor's support); NaN voxels are left
         out.
@@ -365,7 +365,7 @@ def _figure_section(paths):
         p = Path(p)
         data = p.read_bytes()
         if not data.startswith(b"\x89PNG\r\n\x1a\n"):
-            raise InputError(f"{p}: expected a PNG figure (made by braggstrain.figures.make_figures)")
+            raise InputError(f"{p}: expected a PNG figure (made by braggstrain.report.figures.make_figures)")
         cap = FIGURES.get(p.name, p.stem.replace("_", " "))
         b64 = base64.b64encode(data).decode("ascii")
         out.append(f'<figure id="fig-{_e(p.stem)}"><img alt="{_e(cap)}" src="data:image/png;base64,{b64}">'
@@ -428,7 +428,7 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
         Folder for the page (created if missing).
     figures : list of paths, optional
         PNG figures to embed; made with
-        :func:`braggstrain.figures.make_figures` into ``out_dir`` when None.
+        :func:`braggstrain.report.figures.make_figures` into ``out_dir`` when None.
     name : str
         File name of the page.
     title : str, optional

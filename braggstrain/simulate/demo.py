@@ -1,7 +1,7 @@
 """Simulating the experiment a pipeline file describes (wiring only).
 
 :func:`simulate_experiment` reads the ``[simulate]`` table through
-:mod:`braggstrain.config`, calls :func:`braggstrain.forward.simulate_scan`
+:mod:`braggstrain.config`, calls :func:`braggstrain.simulate.forward.simulate_scan`
 once per reflection, writes the scan files where the pipeline file expects
 them, a copy of the pipeline file, and ``truth.h5``: the ground truth on a
 sample-frame grid.

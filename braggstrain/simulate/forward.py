@@ -602,8 +602,8 @@ def simulate_scan(instrument, crystal, hkl, shape, field_, *, rocking_circle, n_
 
     Parameters
     ----------
-    instrument : braggstrain.instrument.Diffractometer
-    crystal : braggstrain.crystal.Crystal (with its orientation)
+    instrument : braggstrain.geometry.instrument.Diffractometer
+    crystal : braggstrain.geometry.crystal.Crystal (with its orientation)
     hkl : 3 ints
     shape : object with ``density(coords, edge_width)`` (e.g. :class:`Polyhedron`)
     field_ : displacement field (``displacement(coords)``), or None

@@ -531,7 +531,7 @@ def reflection_field(obj, g_vector=None, voxel_size=None, support=None, *, remov
                      amplitude_threshold=GRADIENT_AMPLITUDE_THRESHOLD, order=2, smooth=0.0):
     """All fields of one reflection (see :class:`ReflectionField`).
 
-    ``obj`` may be a :class:`~braggstrain.objects.SampleObject`, whose G,
+    ``obj`` may be a :class:`~braggstrain.strain.objects.SampleObject`, whose G,
     voxel size and support are then used unless given here.
     """
     if isinstance(obj, SampleObject):

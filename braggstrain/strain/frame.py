@@ -1,6 +1,6 @@
 """Reconstructions onto an orthonormal sample-frame grid.
 
-Two routes, both returning a :class:`~braggstrain.objects.SampleObject`
+Two routes, both returning a :class:`~braggstrain.strain.objects.SampleObject`
 (axes 0, 1, 2 along sample x, y, z; voxel size in Å; origin = sample-frame
 position of index n//2; G in the sample frame; support):
 
@@ -16,7 +16,7 @@ position of index n//2; G in the sample frame; support):
 
 ``"orthogonal"`` — :func:`orthogonal_to_sample`
     For a reconstruction phased on the orthogonal q grid of
-    :func:`braggstrain.regrid.regrid`: voxel 2π/(N Δq) per axis along the
+    :func:`braggstrain.prepare.regrid.regrid`: voxel 2π/(N Δq) per axis along the
     grid's axes (discrete Fourier transform sampling), then the rotation
     into the sample frame when the grid is in the lab frame (none when it is
     already in the sample frame).
@@ -231,7 +231,7 @@ def orthogonal_to_sample(recon, gridded, *, support=None, support_threshold=0.25
     recon : complex (N0, N1, N2)
         Reconstruction of ``gridded.intensity`` (same shape, crystal centred,
         same phasing convention as :func:`detector_to_sample`).
-    gridded : braggstrain.regrid.GriddedIntensity
+    gridded : braggstrain.prepare.regrid.GriddedIntensity
     support, support_threshold, g_vector, order, margin
         As in :func:`detector_to_sample`.
     ramp : 3 floats, optional
@@ -264,7 +264,7 @@ def orthogonal_to_sample(recon, gridded, *, support=None, support_threshold=0.25
 def to_sample_frame(recon, data, **options):
     """Dispatch on the data's kind: a :class:`~braggstrain.prepare.PreparedScan`
     takes the ``"detector"`` route, a
-    :class:`~braggstrain.regrid.GriddedIntensity` the ``"orthogonal"`` one;
+    :class:`~braggstrain.prepare.regrid.GriddedIntensity` the ``"orthogonal"`` one;
     ``options`` are those of :func:`detector_to_sample` /
     :func:`orthogonal_to_sample`."""
     from braggstrain.prepare.regrid import GriddedIntensity

@@ -170,7 +170,7 @@ def register(objects, *, voxel_size=None, reference=0, min_overlap=0.7, upsample
         raise TensorError("objects: expected at least one SampleObject")
     for j, o in enumerate(objects):
         if not isinstance(o, SampleObject):
-            raise TensorError(f"objects[{j}]: expected a braggstrain.objects.SampleObject, got {type(o).__name__}")
+            raise TensorError(f"objects[{j}]: expected a braggstrain.strain.objects.SampleObject, got {type(o).__name__}")
         if not o.support.any():
             raise TensorError(f"objects[{j}] {_label(o, j)}: empty support")
     J = len(objects)

@@ -244,7 +244,7 @@ def _check_inputs(objects, g_vectors, voxel_size, support, weights, labels):
             if a.shape != shape0:
                 raise TensorError(
                     f"objects[{j}]: grid shape {a.shape} differs from objects[0] {shape0}; expected all "
-                    f"reflections on one common grid (use braggstrain.tensor.register first)")
+                    f"reflections on one common grid (use braggstrain.strain.tensor.register first)")
     G = np.asarray(g_vectors, dtype=float) if g_vectors is not None else None
     if G is None or G.ndim != 2 or G.shape[1] != 3 or not np.all(np.isfinite(G)):
         shape = None if G is None else G.shape
