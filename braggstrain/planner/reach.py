@@ -1,12 +1,10 @@
 """Reachability: the angles that put each reflection in the Bragg condition, or the reason none does.
 
-The Bragg condition R_s(θ)·G = k(p(θ) − b̂) (three equations, p the scattered
-direction of the chosen pixel) is solved for the free circles by damped
-Newton steps from random starts, batched over all reflections and starts
-(:class:`_Geometry`), with the instrument's own rotations
-(:func:`braggstrain.geometry.rotation.axis_rotation`), so a solution here is
-a solution of :meth:`braggstrain.geometry.instrument.Diffractometer.solve_bragg`'s
-equations.
+The Bragg condition R_s(θ)·G = k(p(θ) − b̂) is solved by the project's one
+Bragg-angle solver (:class:`braggstrain.geometry.bragg.BraggSolver`, which
+:meth:`braggstrain.geometry.instrument.Diffractometer.solve_bragg` uses too);
+this module adds the planner's rules: circle limits with room for the
+rocking range, the substrate, and the reason a reflection cannot be reached.
 """
 
 from __future__ import annotations
@@ -17,157 +15,11 @@ import numpy as np
 
 from braggstrain.errors import InputError
 from braggstrain.geometry.crystal import HC_KEV_ANGSTROM
-from braggstrain.geometry.rotation import axis_rotation, axis_vector
+from braggstrain.geometry.bragg import CONVERGED as _CONVERGED, BraggSolver
 from braggstrain.planner.options import PlanOptions, ReflectionPlan
 
 __all__ = ["reach"]
 
-_CONVERGED = 1e-9  # Å⁻¹, |Q − G| accepted as the Bragg condition (as solve_bragg)
-
-
-class _Geometry:
-    """The diffractometer as vectors and index lists, for the batched solver.
-
-    Uses the instrument's own rotations (:func:`braggstrain.geometry.rotation.axis_rotation`,
-    outermost circle first) and pixel direction, so a solution here is a
-    solution of :meth:`Diffractometer.solve_bragg`'s equations.
-    """
-
-    def __init__(self, instrument, options):
-        self.ins = instrument
-        self.names = [c.name for c in instrument.circles]
-        self.ns = len(instrument.sample_circles)
-        self.specs = [c.axis for c in instrument.circles]
-        self.axes = np.array([axis_vector(s) for s in self.specs])
-        self.limits = np.radians(np.array([c.limits for c in instrument.circles], float))
-        self.k = instrument.k
-        b = instrument.beam
-        self.beam = axis_vector(b)
-        pix = instrument.detector.direct_beam if options.pixel is None else options.pixel
-        self.pixel = (float(pix[0]), float(pix[1]))
-        self.p0 = instrument.pixel_directions(np.array([self.pixel[0]]), np.array([self.pixel[1]]))[:, 0]
-        free = list(options.free) if options.free is not None else [n for n in self.names if n not in options.fixed_deg]
-        self.free = [self.names.index(n) for n in free]
-        self.x_fixed = np.zeros(len(self.names))
-        for n, v in options.fixed_deg.items():
-            self.x_fixed[self.names.index(n)] = math.radians(float(v))
-        home = np.zeros(len(self.names))
-        for n, v in options.home_deg.items():
-            home[self.names.index(n)] = math.radians(float(v))
-        self.home = np.clip(home, self.limits[:, 0], self.limits[:, 1])
-        self.home[[i for i in range(len(self.names)) if i not in self.free]] = \
-            self.x_fixed[[i for i in range(len(self.names)) if i not in self.free]]
-        self.normal = None
-        if options.surface_normal is not None:
-            n = np.asarray(options.surface_normal, float)
-            self.normal = n / np.linalg.norm(n)
-        self.rock = None if options.rocking_circle is None else self.names.index(options.rocking_circle)
-        self.rock_half = math.radians(options.rocking_range_deg / 2)
-
-    def forward(self, X, G, want_jac=True):
-        """Residual f = R_s G − k(p − b̂), scattered direction p, R_s and,
-        optionally, ∂f/∂θ for the free circles.
-
-        X : (N, n_circles) radians; G : (N, 3) Å⁻¹."""
-        N = X.shape[0]
-        cum = np.broadcast_to(np.eye(3), (N, 3, 3))
-        cols = {}
-        for i in range(self.ns):
-            if want_jac and i in self.free:
-                cols[i] = cum @ self.axes[i]  # axis in the lab after the outer circles
-            cum = cum @ axis_rotation(self.specs[i], X[:, i])
-        Rs = cum
-        Q = np.einsum("nij,nj->ni", Rs, G)
-        cum = np.broadcast_to(np.eye(3), (N, 3, 3))
-        for i in range(self.ns, len(self.names)):
-            if want_jac and i in self.free:
-                cols[i] = cum @ self.axes[i]
-            cum = cum @ axis_rotation(self.specs[i], X[:, i])
-        p = cum @ self.p0
-        f = Q - self.k * (p - self.beam)
-        if not want_jac:
-            return f, p, Rs
-        J = np.empty((N, 3, len(self.free)))
-        for c, i in enumerate(self.free):
-            # d(R v)/dθ_i = A_i × (R v), A_i the circle's axis in the lab frame.
-            J[:, :, c] = np.cross(cols[i], Q) if i < self.ns else -self.k * np.cross(cols[i], p)
-        return f, p, Rs, J
-
-    def solve(self, G, X0, bounded, pull=False, frozen=None, iterations=60):
-        """Damped Newton (minimum-norm steps) from the starts X0, batched.
-
-        ``bounded``: keep the free circles inside their limits (projected
-        steps); else wrap them to (−π, π]. ``pull``: with more than three free
-        circles, also step along the solution family toward home (the
-        projection of the way home onto the null space of ∂f/∂θ).
-
-        Returns X, |f| (Å⁻¹), p (scattered directions) and R_s of the final
-        points. ``frozen`` (N, n_free) bool holds some free circles of each
-        point at their starting angle (a slice through a solution family)."""
-        X = X0.copy()
-        fr = self.free
-        lo, hi = self.limits[fr, 0], self.limits[fr, 1]
-        pull = pull and len(fr) > 3
-        eye = np.eye(3)
-        active = np.arange(X.shape[0])
-        for it in range(iterations):
-            if active.size == 0:
-                break
-            pulling = pull and it < iterations - 8
-            Xa = X[active]
-            f, p, Rs, J = self.forward(Xa, G[active])
-            if frozen is not None:
-                J = np.where(frozen[active][:, None, :], 0.0, J)
-            fn = np.linalg.norm(f, axis=1)
-            if not pulling:
-                keep = fn > 1e-13
-                active, Xa, f, J = active[keep], Xa[keep], f[keep], J[keep]
-                if active.size == 0:
-                    break
-            Jt = np.swapaxes(J, 1, 2)
-            M = J @ Jt + 1e-12 * eye
-            step = -np.einsum("nij,nj->ni", Jt, np.linalg.solve(M, f[..., None])[..., 0])
-            norm = np.linalg.norm(step, axis=1, keepdims=True)
-            step *= np.minimum(1.0, 0.4 / np.maximum(norm, 1e-300))
-            if pulling:
-                d = self.home[fr] - Xa[:, fr]
-                d = (d + np.pi) % (2 * np.pi) - np.pi
-                Jd = np.einsum("nij,nj->ni", J, d)
-                proj = d - np.einsum("nij,nj->ni", Jt, np.linalg.solve(M, Jd[..., None])[..., 0])
-                step += 0.5 * proj
-            Xf = Xa[:, fr] + step
-            Xf = np.clip(Xf, lo, hi) if bounded else (Xf + np.pi) % (2 * np.pi) - np.pi
-            X[active[:, None], np.array(fr)[None, :]] = Xf
-        f, p, Rs = self.forward(X, G, want_jac=False)
-        return X, np.linalg.norm(f, axis=1), p, Rs
-
-    def in_limits(self, X):
-        """For angles X (P, n_circles), the representation x + 2πn of each
-        angle inside its limits nearest home (else the one nearest the
-        limits); returns (angles, ok (P,), violation (P, n_circles), radians).
-        The rocking circle must leave half the rocking range to each limit."""
-        lo, hi = self.limits[:, 0], self.limits[:, 1]
-        cands = X[..., None] + 2 * np.pi * np.arange(-2, 3)
-        inside = (cands >= lo[:, None] - 1e-12) & (cands <= hi[:, None] + 1e-12)
-        dist = np.where(inside, np.abs(cands - self.home[:, None]), np.inf)
-        viol_c = np.where(cands < lo[:, None], lo[:, None] - cands, np.maximum(cands - hi[:, None], 0.0))
-        pick = np.where(inside.any(-1), np.argmin(dist, -1), np.argmin(viol_c, -1))
-        out = np.take_along_axis(cands, pick[..., None], -1)[..., 0]
-        viol = np.take_along_axis(viol_c, pick[..., None], -1)[..., 0]
-        if self.rock is not None:
-            i = self.rock
-            v = np.maximum(0.0, np.maximum(lo[i] + self.rock_half - out[:, i], out[:, i] - (hi[i] - self.rock_half)))
-            viol[:, i] = np.maximum(viol[:, i], v)
-        return out, np.all(viol <= 1e-12, axis=1), viol
-
-    def surface_angles(self, Rs, p):
-        """Incidence and exit angles (radians) to the substrate for R_s (P, 3, 3)
-        and scattered directions p (P, 3); NaN without a substrate."""
-        if self.normal is None:
-            nan = np.full(p.shape[0], np.nan)
-            return nan, nan.copy()
-        n = Rs @ self.normal
-        return np.arcsin(np.clip(-n @ self.beam, -1, 1)), np.arcsin(np.clip(np.einsum("ij,ij->i", p, n), -1, 1))
 
 
 def _free_names(instrument, options):
@@ -264,7 +116,9 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
     list of :class:`ReflectionPlan` (weights not yet set)
     """
     _validate_options(instrument, options)
-    geo = _Geometry(instrument, options)
+    geo = BraggSolver(instrument, free=options.free, fixed_deg=options.fixed_deg, home_deg=options.home_deg,
+                      pixel=options.pixel, surface_normal=options.surface_normal,
+                      rocking_circle=options.rocking_circle, rocking_range_deg=options.rocking_range_deg)
     k = geo.k
     out = []
     todo = []
@@ -284,45 +138,10 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
             todo.append(rp)
     if not todo:
         return out
-    rng = np.random.default_rng(options.seed)
+    G = np.array([r.g_sample for r in todo])
+    X, res, P, R, idx = geo.solve_batch(G, options.starts, options.seed)
     nc = len(geo.names)
     fr = geo.free
-    # Starts per reflection: n_unb ignoring the limits (pulled toward home),
-    # n_bnd inside the limits, and with more than three free circles n_cut
-    # that hold all but three free circles at random angles within their
-    # limits (or at home) and solve the three (slices through the solution
-    # family).
-    n_free = len(fr)
-    n_unb = max(int(options.starts) // 2, 1)
-    n_bnd = max(int(options.starts) - int(options.starts) // 2, 1)
-    n_cut = 2 * n_bnd * (n_free - 3)
-    n_st = n_unb + n_bnd + n_cut
-    lo, hi = geo.limits[fr, 0], geo.limits[fr, 1]
-    G = np.repeat(np.array([r.g_sample for r in todo]), n_st, axis=0)
-    Xr = np.tile(geo.x_fixed, (len(todo), n_st, 1))
-    Xr[:, :n_unb, fr] = rng.uniform(-np.pi, np.pi, size=(len(todo), n_unb, n_free))
-    Xr[:, n_unb:, fr] = rng.uniform(lo, hi, size=(len(todo), n_bnd + n_cut, n_free))
-    Xr[:, n_unb, fr] = geo.home[fr]
-    X0 = Xr.reshape(-1, nc)
-    idx = np.arange(G.shape[0]).reshape(len(todo), n_st)
-    unb, bnd, cut = (idx[:, :n_unb].ravel(), idx[:, n_unb:n_unb + n_bnd].ravel(),
-                     idx[:, n_unb + n_bnd:].ravel())
-    X = np.empty_like(X0)
-    res = np.empty(G.shape[0])
-    P = np.empty((G.shape[0], 3))
-    R = np.empty((G.shape[0], 3, 3))
-    X[unb], res[unb], P[unb], R[unb] = geo.solve(G[unb], X0[unb], bounded=False, pull=True)
-    X[bnd], res[bnd], P[bnd], R[bnd] = geo.solve(G[bnd], X0[bnd], bounded=True)
-    if cut.size:
-        held = np.argsort(rng.random((cut.size, n_free)), axis=1)[:, : n_free - 3]
-        frozen = np.zeros((cut.size, n_free), bool)
-        np.put_along_axis(frozen, held, True, axis=1)
-        # half the held circles sit at home (e.g. a detector arm kept in its plane)
-        at_home = frozen & (rng.random(frozen.shape) < 0.5)
-        Xcut = X0[cut]
-        Xcut[:, fr] = np.where(at_home, geo.home[fr], Xcut[:, fr])
-        X0[cut] = Xcut
-        X[cut], res[cut], P[cut], R[cut] = geo.solve(G[cut], X0[cut], bounded=False, frozen=frozen)
     conv = res <= _CONVERGED
     Xc, ok, viol = geo.in_limits(X)
     ai, af = geo.surface_angles(R, P)
@@ -331,8 +150,8 @@ def reach(crystal, instrument, hkls, options=PlanOptions()):
         clear = (ai >= min_i - 1e-12) & (af >= min_f - 1e-12)
         margin = np.minimum(ai - min_i, af - min_f)
     else:
-        clear = np.ones(G.shape[0], bool)
-        margin = np.zeros(G.shape[0])
+        clear = np.ones(X.shape[0], bool)
+        margin = np.zeros(X.shape[0])
     travel = np.abs(Xc - geo.home).sum(1)
     viol_sum = viol.sum(1)
     free_names = [geo.names[i] for i in fr]
