@@ -30,12 +30,15 @@ import pytest
 from scipy import ndimage
 from scipy.spatial.transform import Rotation
 
-from braggstrain.defects.lines import find_dislocations, write_dislocation_table
+from braggstrain.defects.lines import find_dislocations
+from braggstrain.io.dislocations import write_dislocation_table
 from braggstrain.geometry.crystal import Crystal
-from braggstrain.io.results import export_vtk, read_results, write_results
+from braggstrain.io.results import read_results, write_results
+from braggstrain.io.vtk import export_vtk
 from braggstrain.simulate import forward as fw
 from braggstrain.strain.objects import SampleObject
-from braggstrain.strain.tensor import register, strain_tensor
+from braggstrain.strain.registration import register
+from braggstrain.strain.tensor import strain_tensor
 
 VS = 10.0                                   # voxel edge, Å
 SHAPE = (40, 36, 31)                        # non-cubic
@@ -113,8 +116,8 @@ def _run(tmp_path, twin_reference=False):
                   mean_lattice={}, provenance={})
     path = write_results(tmp_path / "results.h5", bundle)
     vtk = export_vtk(path, tmp_path / "vtk")
-    write_dislocation_table(read_results(path)["dislocations"], tmp_path / "dislocations.csv")
-    write_dislocation_table(read_results(path)["dislocations"], tmp_path / "dislocations.json")
+    write_dislocation_table(read_results(path).dislocations, tmp_path / "dislocations.csv")
+    write_dislocation_table(read_results(path).dislocations, tmp_path / "dislocations.json")
     if twin_reference:  # the reconstruction is the twin: the line is inverted about the reference's origin
         p0 = 2 * ORIGIN - p0
     return dict(path=path, vtk=vtk, p0=p0, xi=xi, report=report, lines=lines, dir=tmp_path)
@@ -284,9 +287,9 @@ def test_older_results_files_get_the_origin_on_reading(straight, tmp_path):
         del f["dislocations"].attrs["points_frame"]
         true_pts = f["dislocations/line_001/points"][()]
         f["dislocations/line_001/points"][...] = true_pts - origin
-    (d,) = read_results(old)["dislocations"]
+    (d,) = read_results(old).dislocations
     np.testing.assert_allclose(d.points, true_pts, atol=1e-9)
-    (d,) = read_results(straight["path"])["dislocations"]  # a new file is read as written
+    (d,) = read_results(straight["path"]).dislocations  # a new file is read as written
     np.testing.assert_allclose(d.points, true_pts, atol=1e-9)
 
 
@@ -297,26 +300,26 @@ def test_figures_and_report_place_the_lines_with_the_grid(straight, tmp_path):
     from braggstrain.report.html import write_report
 
     r = read_results(straight["path"])
-    (d,) = r["dislocations"]
-    g = r["grid"]
+    (d,) = r.dislocations
+    g = r.grid
     # dislocation figure: the crystal's surface and the line in one frame (nm)
-    fig = plot_dislocations(r["dislocations"], r["support"], g, tmp_path / "lines.png")
+    fig = plot_dislocations(r.dislocations, r.support, g, tmp_path / "lines.png")
     ax = fig.axes[0]
     p = d.points / 10.0
     for k, lim in enumerate((ax.get_xlim(), ax.get_ylim(), ax.get_zlim())):
         assert lim[0] <= p[:, k].min() and p[:, k].max() <= lim[1]
-    inside = positions(r["support"].shape, VS, g["origin"])[:, r["support"]] / 10.0  # (3, N) nm
+    inside = positions(r.support.shape, VS, g.origin)[:, r.support] / 10.0  # (3, N) nm
     for k, lim in enumerate((ax.get_xlim(), ax.get_ylim(), ax.get_zlim())):
         assert lim[0] <= inside[k].min() and inside[k].max() <= lim[1]
         assert lim[1] - lim[0] <= np.ptp(inside[k]) + 5 * VS / 10.0  # the crystal and 2 voxels around it
-    verts, _ = _isosurface(r["support"], Grid.of(g), 1)  # the surface drawn
+    verts, _ = _isosurface(r.support, Grid.of(g), 1)  # the surface drawn
     np.testing.assert_allclose(verts.mean(axis=0), inside.mean(axis=1), atol=0.5)  # nm
     # slice figures: each plane's title gives the cut's sample-frame position
     fig = plot_amplitude(r, tmp_path / "amp.png")
-    c = central_index(r["support"])
+    c = central_index(r.support)
     titles = [a.get_title() for a in fig.axes if a.get_title()]
     for k, name in enumerate("xyz"):
-        want = (g["origin"][k] + (c[k] - r["support"].shape[k] // 2) * VS) / 10.0
+        want = (g.origin[k] + (c[k] - r.support.shape[k] // 2) * VS) / 10.0
         assert any(t.endswith(f"{name} = {want:.0f} nm") for t in titles), titles
     # report: the line's centre, in nm on the grid
     html = write_report(r, tmp_path).read_text(encoding="utf-8")
