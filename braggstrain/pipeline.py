@@ -14,9 +14,11 @@ The stages are the plain functions of their modules; this module only
   value is a scheduler address). Each random start is one task, reproducible
   from (seed, reflection, run), so every executor gives identical results.
 
-Why one module of about 630 lines: it is the wiring of every stage, in one
-place by design; the stages, the file formats and the checkpoint
-conversions live in their packages.
+Why one module of about 1000 lines: it is the wiring of every stage, in
+one place by design, with the checks made before any work (the
+instrument against the scan files, the output folder and the space a run
+needs) beside the wiring that feeds them; the stages, the file formats and
+the checkpoint conversions live in their packages.
 """
 
 from __future__ import annotations

@@ -14,7 +14,7 @@ import numpy as np
 
 from braggstrain.errors import InputError
 
-__all__ = ["GRID_AXES", "GZIP", "KNOWN_UNITS", "HISTORY_UNITS", "as_plain", "put_plain", "get_plain", "plain",
+__all__ = ["Trail", "raw_node", "GRID_AXES", "GZIP", "KNOWN_UNITS", "HISTORY_UNITS", "as_plain", "put_plain", "get_plain", "plain",
            "dataset", "mask", "run_table", "read_run_table"]
 
 GRID_AXES = "x, y, z (sample frame; array index i along x, j along y, k along z; origin at index n//2)"
@@ -226,3 +226,54 @@ def read_run_table(g):
         for i in range(n):
             rows[i][c] = vals[i]
     return rows
+
+
+class Trail:
+    """Wraps an open file so every group, dataset and attribute read is
+    remembered: a read that fails then names what it was reading."""
+
+    def __init__(self, node, trail=None):
+        self._node = node
+        self._trail = trail if trail is not None else self
+        if trail is None:
+            self.last = "/"
+
+    def _wrap(self, obj):
+        import h5py
+
+        if isinstance(obj, (h5py.Group, h5py.Dataset)):
+            return Trail(obj, self._trail)
+        return obj
+
+    def __getitem__(self, key):
+        self._trail.last = (self._node.name.rstrip("/") + "/" + key) if isinstance(key, str) else self._node.name
+        if isinstance(key, str):
+            return self._wrap(self._node[key])
+        return self._node[key]
+
+    def __contains__(self, key):
+        self._trail.last = self._node.name.rstrip("/") + "/" + str(key)
+        return key in self._node
+
+    def __iter__(self):
+        return iter(self._node)
+
+    def __len__(self):
+        return len(self._node)
+
+    def items(self):
+        self._trail.last = self._node.name
+        return [(k, self._wrap(v)) for k, v in self._node.items()]
+
+    @property
+    def attrs(self):
+        self._trail.last = self._node.name + " (attributes)"
+        return self._node.attrs
+
+    def __getattr__(self, name):
+        return getattr(self._node, name)
+
+
+def raw_node(node):
+    """The h5py object inside a :class:`Trail` (or ``node`` itself)."""
+    return node._node if isinstance(node, Trail) else node

@@ -26,6 +26,11 @@ of the voxel at index n//2 on each axis, and every position written
 from that one grid (:class:`braggstrain.strain.grid.Grid`); lengths in Å, angles in radians
 inside the file unless an attribute says otherwise; strain is
 dimensionless, tensile positive.
+
+Why one module of about 650 lines: the object, its writer and its reader
+(of both layouts, damaged files named by the field being read) are one
+file format; the plain-value conventions are in :mod:`braggstrain.io.hdf5`
+and the checks in :mod:`braggstrain.io._results_check`.
 """
 
 from __future__ import annotations
@@ -41,7 +46,8 @@ from braggstrain.io.files import atomic_path, file_version, mark_version, nbytes
 from braggstrain.io._results_check import _check
 from braggstrain.io.hdf5 import (GRID_AXES as _GRID_AXES, HISTORY_UNITS as _HISTORY_UNITS,
                                  dataset as _dataset, get_plain as _get, mask as _mask, plain as _plain,
-                                 put_plain as _put, read_run_table as _read_run_table, run_table as _run_table)
+                                 put_plain as _put, raw_node, read_run_table as _read_run_table,
+                                 run_table as _run_table, Trail)
 from braggstrain.phasing.ensemble import DEFAULT_METRIC, RANKING_METRICS
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.components import (STRAIN_COMPONENTS, STRAIN_PAIRS, gradient_from, strain_components,
@@ -498,7 +504,7 @@ def read_results(path):
     """
     path = Path(path)
     f = open_versioned(path, RESULTS_FORMAT, (1, RESULTS_VERSION), legacy=_LEGACY)
-    trail = _Trail(f)
+    trail = Trail(f)
     try:
         with f:
             return _read_all(trail, path, file_version(f, _LEGACY[2]))
@@ -508,52 +514,6 @@ def read_results(path):
         first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
         raise InputError(f"{path}: damaged: cannot read '{trail.last}' ({first}); expected a readable "
                          f"results file (rerun the pipeline with --resume to write it again)") from None
-
-
-class _Trail:
-    """Wraps an open file so every group, dataset and attribute read is
-    remembered: a read that fails then names what it was reading."""
-
-    def __init__(self, node, trail=None):
-        self._node = node
-        self._trail = trail if trail is not None else self
-        if trail is None:
-            self.last = "/"
-
-    def _wrap(self, obj):
-        import h5py
-
-        if isinstance(obj, (h5py.Group, h5py.Dataset)):
-            return _Trail(obj, self._trail)
-        return obj
-
-    def __getitem__(self, key):
-        self._trail.last = (self._node.name.rstrip("/") + "/" + key) if isinstance(key, str) else self._node.name
-        if isinstance(key, str):
-            return self._wrap(self._node[key])
-        return self._node[key]
-
-    def __contains__(self, key):
-        self._trail.last = self._node.name.rstrip("/") + "/" + str(key)
-        return key in self._node
-
-    def __iter__(self):
-        return iter(self._node)
-
-    def __len__(self):
-        return len(self._node)
-
-    def items(self):
-        self._trail.last = self._node.name
-        return [(k, self._wrap(v)) for k, v in self._node.items()]
-
-    @property
-    def attrs(self):
-        self._trail.last = self._node.name + " (attributes)"
-        return self._node.attrs
-
-    def __getattr__(self, name):
-        return getattr(self._node, name)
 
 
 def update_provenance(path, values):
@@ -584,10 +544,6 @@ def update_provenance(path, values):
                     del p["other"]
                 _put(p, "other", other, "results['provenance']")
     return path
-
-
-def _raw(node):
-    return node._node if isinstance(node, _Trail) else node
 
 
 def _read_all(f, path, version):
@@ -635,14 +591,14 @@ def _read_all(f, path, version):
     legacy_metric = _phasing_metric(out["provenance"]["pipeline_text"]) if version == 1 else None
     out["reflections"] = [_read_reflection(_need(rg, name, path), path, legacy_metric) for name in order]
     dg = _need(f, "dislocations", path)
-    out["dislocations"] = read_dislocations_h5(_raw(dg))
+    out["dislocations"] = read_dislocations_h5(raw_node(dg))
     if "points_frame" not in dg.attrs:
         # written before the line points were put on the grid (issue 17): they were
         # computed with the origin taken as zero, i.e. relative to the voxel at n//2
         for d in out["dislocations"]:
             d.points = d.points + grid.origin
     for key in ("registration", "mean_lattice"):
-        out[key] = _get(_raw(f[key])) if key in f else {}
+        out[key] = _get(raw_node(f[key])) if key in f else {}
     return Results(**out)
 
 
@@ -650,9 +606,9 @@ def _read_provenance(p):
     prov = {"pipeline_text": _text(p["pipeline_text"][()]) if "pipeline_text" in p else "",
             "command": _text(p.attrs.get("command")), "created": _text(p.attrs.get("created"))}
     for key in ("versions", "seeds", "timings"):
-        prov[key] = _get(_raw(p[key])) if key in p else {}
+        prov[key] = _get(raw_node(p[key])) if key in p else {}
     if "other" in p:
-        prov.update(_get(_raw(p["other"])))
+        prov.update(_get(raw_node(p["other"])))
     return prov
 
 
@@ -687,7 +643,7 @@ def _read_reflection(g, path, legacy_metric=None):
          "phase": _need(g, "phase", path)[()],
          "displacement": g["displacement"][()] if "displacement" in g else None,
          "support": _need(g, "support", path)[()].astype(bool),
-         "run_metrics": _read_run_table(_raw(g["runs"])) if "runs" in g else [],
+         "run_metrics": _read_run_table(raw_node(g["runs"])) if "runs" in g else [],
          "prtf": None,
          "history": {k: v[()] for k, v in g["history"].items()} if "history" in g else {}}
     if "prtf" in g:

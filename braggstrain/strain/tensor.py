@@ -17,9 +17,11 @@ Registration (:mod:`braggstrain.strain.registration`) brings the reflections
 onto one grid first; the mean lattice from the peak positions is in
 :mod:`braggstrain.strain.lattice`.
 
-Why one module of about 610 lines: the solve, its uncertainty, the
-displacement with its branch correction and the outlier check share one
-weighted least-squares system per voxel.
+Why one module of about 800 lines: the solve, its uncertainty (the
+least-squares covariance, the pooled excess residual and the spread of
+kept runs and Poisson replicas, all propagated through the same solve),
+the displacement with its branch correction and the outlier check share
+one weighted least-squares system per voxel.
 """
 
 from __future__ import annotations
