@@ -48,11 +48,12 @@ def soft_crystal(n, edge=0.6, phase_span=4.5):
     """Complex object (complex64, centred at n//2) of the soft-edged test crystal."""
     import scipy.ndimage
 
+    from braggstrain.geometry.rotation import rotation_from_rotvec
     from braggstrain.simulate import forward
 
     shape = (n, n, n)
     vs = 10.0
-    rot = forward.rotation_matrix(np.array([0.3, -0.2, 0.45]))
+    rot = rotation_from_rotvec(np.array([0.3, -0.2, 0.45]))
     dens = forward.truncated_octahedron(shape, vs, size=0.5 * n * vs, truncation=0.7,
                                         supersample=2, rotation=rot)
     dens = scipy.ndimage.gaussian_filter(dens.astype(np.float64), edge)
@@ -74,9 +75,9 @@ def gap_mask(n):
 
 def gaussian_coherence_kernel(sigmas, rotvec=(0.0, 0.0, 0.0), half_width=6):
     """Normalised Gaussian exp(-q^T C^-1 q / 2), C = R diag(sigma^2) R^T."""
-    from braggstrain.simulate import forward
+    from braggstrain.geometry.rotation import rotation_from_rotvec
 
-    R = forward.rotation_matrix(np.asarray(rotvec, float))
+    R = rotation_from_rotvec(np.asarray(rotvec, float))
     C = R @ np.diag(np.broadcast_to(np.asarray(sigmas, float), (3,)) ** 2) @ R.T
     d = np.arange(-half_width, half_width + 1)
     g = np.stack(np.meshgrid(d, d, d, indexing="ij"), -1).astype(float)
@@ -106,13 +107,12 @@ def main(argv=None):
     from scipy.ndimage import convolve
 
     from braggstrain.phasing import complex_error, default_plan, ensemble, reconstruct
-    from braggstrain.phasing.metrics import remove_phase_ramp
-    from braggstrain.simulate import forward
+    from braggstrain.phasing.metrics import far_field, remove_phase_ramp
 
     n = args.size
     obj = soft_crystal(n, args.edge, args.phase_span)
     mask = gap_mask(n)
-    clean = np.abs(forward.far_field(obj).astype(np.complex128)) ** 2
+    clean = np.abs(far_field(obj).astype(np.complex128)) ** 2
     amp = np.abs(obj)
     print(f"crystal {n}^3: {int((amp > 0.2 * amp.max()).sum())} voxels above 20 % of the "
           f"maximum density, edge {args.edge} voxel, phase span inside "

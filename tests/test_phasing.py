@@ -261,9 +261,9 @@ def test_principal_widths_of_a_rotated_gaussian():
     # 2006, section 2.3): its principal widths and axes are the square roots
     # of the eigenvalues and the eigenvectors of C, whatever the rotation.
     from braggstrain.phasing.coherence import kernel_principal_widths
-    from braggstrain.simulate.forward import rotation_matrix
+    from braggstrain.geometry.rotation import rotation_from_rotvec
 
-    R = rotation_matrix(np.array([0.5, 0.3, -0.6]))
+    R = rotation_from_rotvec(np.array([0.5, 0.3, -0.6]))
     sig = np.array([1.2, 0.9, 0.7])
     C = R @ np.diag(sig ** 2) @ R.T
     d = np.arange(-7, 8)
