@@ -286,7 +286,7 @@ def test_disk_full_while_saving_a_figure(sim, earlier, capsys, monkeypatch):
     assert {k: v for k, v in after.items() if k != name} == {k: v for k, v in before.items() if k != name}
     from braggstrain.io.results import read_results
 
-    assert read_results(earlier / "results.h5")["reflections"]
+    assert read_results(earlier / "results.h5").reflections
     assert not _partials(earlier)
 
 
@@ -307,7 +307,7 @@ def test_not_enough_space_is_refused_up_front(sim, tmp_path, capsys, no_phasing,
 def test_space_estimate_bounds_a_real_run(sim, earlier):
     from braggstrain.pipeline import estimate_output_bytes
 
-    from braggstrain.prepare.scan import read_prepared
+    from braggstrain.io.prepared import read_prepared
 
     cfg = load_config(sim / "pipeline.toml")
     prepared = [read_prepared(p) for p in sorted((earlier / "checkpoints").glob("prepare-*.h5"))]
@@ -568,15 +568,18 @@ def test_report_items(earlier, tmp_path, capsys):
 
 
 def test_history_figure_has_no_empty_panel_and_marks_the_stages():
+    from types import SimpleNamespace
+
     from braggstrain.report.figures import plot_histories, plot_runs
 
     it = np.arange(300)
     hist = {"amplitude_error": np.exp(-it / 50.0) + 0.01, "support_size": 5000 - 3 * it,
             "stage": (it >= 120).astype(float) + (it >= 250), "checkpoint": np.arange(0, 300, 20.0),
             "free_nll": np.linspace(9, 3, 15), "background": np.zeros(15)}
-    refl = [{"name": "a", "hkl": (1, 1, 1), "history": hist,
-             "run_metrics": [{"run": 0, "free_nll": 3.0, "kept": True, "status": "ok"}]}]
-    fig = plot_histories({"reflections": refl})
+    # the figures ask only these of a Results and its ReflectionResult
+    refl = [SimpleNamespace(name="a", hkl=(1, 1, 1), history=hist, ranking_metric="free_nll",
+                            run_metrics=[{"run": 0, "free_nll": 3.0, "kept": True, "status": "ok"}])]
+    fig = plot_histories(SimpleNamespace(reflections=refl))
     titles = [ax.get_title() for ax in fig.axes]
     assert "background" not in titles and len(fig.axes) == 3, titles
     for ax in fig.axes:
@@ -584,7 +587,7 @@ def test_history_figure_has_no_empty_panel_and_marks_the_stages():
         assert xs == [120.0, 250.0], (ax.get_title(), xs)
         assert ax.get_ylabel() and ax.get_xlabel() == "iteration"
     assert [ax.get_ylabel() for ax in fig.axes if ax.get_title() == "support size"] == ["voxels"]
-    fig = plot_runs({"reflections": refl})
+    fig = plot_runs(SimpleNamespace(reflections=refl))
     assert "negative log-likelihood" in fig.axes[0].get_xlabel()
 
 
@@ -615,7 +618,7 @@ def test_atomic_write_fails_on_a_full_disk_reported_only_on_release(tmp_path):
 def test_atomic_write_refuses_what_cannot_fit(tmp_path, monkeypatch):
     from types import SimpleNamespace
 
-    import braggstrain.io.scans as sc
+    import braggstrain.io.files as sc
     from braggstrain.errors import OutputError
 
     monkeypatch.setattr(sc.shutil, "disk_usage", lambda p: SimpleNamespace(total=10**9, used=10**9, free=2 * 10**5))

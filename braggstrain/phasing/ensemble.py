@@ -82,7 +82,7 @@ METRIC_LABELS = {
                  "negative log-likelihood per measured voxel (free: held-out voxels), nats"),
     "amplitude_error": ("amplitude error", "Σ(|Ψ|−√I)² / ΣI over the constrained voxels (dimensionless)"),
     "free_amplitude_error": ("free amplitude error", "Σ(|Ψ|−√I)² / ΣI over the held-out voxels (dimensionless)"),
-    "support_size": ("support size", "voxels in the final support"),
+    "support_size": ("support size", "voxels"),
     "background": ("background", "flat background, counts per voxel"),
     "sharpness": ("sharpness", "N·Σ|ρ|⁴ / (Σ|ρ|²)², higher is more concentrated (dimensionless)"),
 }

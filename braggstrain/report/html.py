@@ -175,22 +175,23 @@ def _reflection_section(r):
     metric_cols = [k for k in RUN_COLUMNS
                    if any(b and np.isfinite(float(b.get(k, np.nan))) and float(b.get(k, np.nan)) != 0 for b in bests)]
     header = ["reflection", "hkl", "|G| (Å⁻¹)", "max counts", "oversampling (frame, row, column)", "runs", "kept",
-              "ranked by", "PRTF resolution (nm)", "shift (voxels)", "twin"]
+              "PRTF resolution (nm)", "shift (voxels)", "twin"]
     rows = []
     for x in refl:
         res = x.prtf["resolution"] if x.prtf is not None else np.nan
         rows.append([_e(x.name), _e(format_hkl(x.hkl)), _num(np.linalg.norm(x.g_vector)),
                      _num(x.max_counts, "{:.3g}"),
                      ", ".join(_num(v, "{:.2f}") for v in x.oversampling), str(x.runs), str(x.kept),
-                     _e(x.ranking_metric), _num(res / 10.0, "{:.1f}"),
+                     _num(res / 10.0, "{:.1f}"),
                      ", ".join(_num(v, "{:.2f}") for v in x.shift_vox), "yes" if x.twin else "no"])
-    out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1, 7), css="compact")]
+    out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1), css="compact")]
     if metric_cols:
-        mh = ["reflection"] + [METRIC_LABELS.get(k, (k.replace("_", " "),))[0] for k in metric_cols]
-        mrows = [[_e(x.name)] + [_num(b.get(k)) if b else "—" for k in metric_cols] for x, b in zip(refl, bests)]
+        mh = ["reflection", "ranked by"] + [METRIC_LABELS.get(k, (k.replace("_", " "),))[0] for k in metric_cols]
+        mrows = [[_e(x.name), _e(x.ranking_metric)] + [_num(b.get(k)) if b else "—" for k in metric_cols]
+                 for x, b in zip(refl, bests)]
         meaning = "; ".join(metric_label(k, long=True) for k in metric_cols)
-        out.append(_table(mh, mrows, caption="Final metrics of the best random start (the one the ensemble ranked "
-                                             "first by its ranking metric)", text_cols=(0,), css="compact"))
+        out.append(_table(mh, mrows, caption="Final metrics of the best kept random start (the one the ensemble ranked "
+                                             "first by its ranking metric)", text_cols=(0, 1), css="compact"))
         out.append(f'<p class="meta">{_e(meaning)}.</p>')
     failed = sum(1 for x in refl for m in x.run_metrics if str(m["status"]) != "ok")
     if failed:
