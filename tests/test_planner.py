@@ -92,19 +92,47 @@ def test_angles_agree_with_xrayutilities_four_circle(pt_oriented):
             assert r.exit_deg == pytest.approx(r.angles_deg["tt"] - r.angles_deg["omega"], abs=1e-6)
 
 
-def test_solution_of_instrument_solver_is_among_planned(pt_oriented):
-    # Reference: braggstrain.geometry.instrument.Diffractometer.solve_bragg (scipy
-    # least_squares from random starts, least Σ|θ| among solutions, which is
-    # the planner's rule for home = 0).
+def _least_squares_setting(dif, g, free, fixed, starts=12, seed=0):
+    """Reference solver: scipy.optimize.least_squares from random starts
+    within the limits, the exact solution of least Σ|θ| (home = 0)."""
+    from scipy.optimize import least_squares
+
+    lims = np.radians([dif.circle(n).limits for n in free])
+    base = {c.name: float(fixed.get(c.name, 0.0)) for c in dif.circles}
+    pixel = dif.detector.direct_beam
+
+    def resid(x):
+        a = dict(base, **{n: v for n, v in zip(free, np.degrees(x))})
+        return dif.sample_rotation(a) @ g - dif.q_lab_of_pixel(pixel[0], pixel[1], a)
+
+    rng = np.random.default_rng(seed)
+    best = None
+    for _ in range(starts):
+        x0 = rng.uniform(lims[:, 0] + 1e-9, lims[:, 1] - 1e-9)
+        r = least_squares(resid, x0, bounds=(lims[:, 0], lims[:, 1]), xtol=1e-15, ftol=1e-15, gtol=1e-15)
+        if np.linalg.norm(r.fun) <= 1e-9 and (best is None or np.abs(r.x).sum() < np.abs(best).sum()):
+            best = r.x
+    return None if best is None else dict(base, **{n: float(v) for n, v in zip(free, np.degrees(best))})
+
+
+def test_planned_settings_match_an_independent_solver(pt_oriented):
+    # Reference: scipy.optimize.least_squares on the same three equations
+    # (R_s·G = Q_lab of the pixel); the planner finds that setting among its
+    # solutions, and its choice travels no more from home (0°).
     dif = four_circle()
     opt = P.PlanOptions(g_max=3.3, free=("omega", "phi", "tt"), fixed_deg={"chi": 0.0}, surface_normal=None)
     res = P.plan(pt_oriented, dif, opt)
     for r in res.reflections[::5]:
-        ref = dif.solve_bragg(r.g_sample, free=["omega", "phi", "tt"], fixed={"chi": 0.0}, starts=12)
+        ref = _least_squares_setting(dif, r.g_sample, ["omega", "phi", "tt"], {"chi": 0.0})
+        assert ref is not None
         sols = np.array([[s[c] for c in res.circles] for s in r.solutions])
         d = np.abs((sols - [ref[c] for c in res.circles] + 180) % 360 - 180).max(axis=1)
         assert d.min() < 1e-5
         assert sum(abs(v) for v in r.angles_deg.values()) <= sum(abs(v) for v in ref.values()) + 1e-6
+        # the instrument's solve_bragg is the same solver with the same rule
+        sb = dif.solve_bragg(r.g_sample, free=["omega", "phi", "tt"], fixed={"chi": 0.0})
+        np.testing.assert_allclose([sb[c] for c in res.circles], [r.angles_deg[c] for c in res.circles],
+                                   atol=1e-6)
 
 
 # ---------------------------------------------------------------------------

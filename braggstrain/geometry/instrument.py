@@ -7,7 +7,8 @@ are made once (from the pipeline file or a scan file) and then asked:
 * :meth:`Diffractometer.pixel_q` — Q of every pixel for per-frame angles, in
   the sample or the lab frame (xrayutilities' ``QConversion`` is the engine);
 * :meth:`Diffractometer.solve_bragg` — circle angles that put a G in the
-  Bragg condition on a chosen pixel;
+  Bragg condition on a chosen pixel (the one solver of
+  :mod:`braggstrain.geometry.bragg`);
 * :meth:`Diffractometer.linear_map` — the local linear map from (frame, row,
   column) steps to q steps at the peak.
 
@@ -28,36 +29,17 @@ from typing import Mapping
 import numpy as np
 
 from braggstrain.geometry.crystal import wavelength
+from braggstrain.geometry.rotation import axis_rotation, axis_vector, rotation_about
 from braggstrain.errors import GeometryError, InputError
 
-__all__ = ["Circle", "Detector", "Diffractometer", "axis_rotation", "AXES"]
-
-AXES = {"x": np.array([1.0, 0, 0]), "y": np.array([0, 1.0, 0]), "z": np.array([0, 0, 1.0])}
-
+__all__ = ["Circle", "Detector", "Diffractometer"]
 
 def _check_axis(spec, where):
-    if not isinstance(spec, str) or len(spec) != 2 or spec[0] not in AXES or spec[1] not in "+-":
-        raise InputError(f"{where}: axis '{spec}': expected one of x+, x-, y+, y-, z+, z-")
+    try:
+        axis_vector(spec)
+    except InputError:
+        raise InputError(f"{where}: axis '{spec}': expected one of x+, x-, y+, y-, z+, z-") from None
     return spec
-
-
-def axis_rotation(spec, angle_rad):
-    """Rotation matrices about a lab axis ('x+', 'z-', ...) for angles (radians).
-
-    Returns an array of shape (..., 3, 3) for an array of angles."""
-    a = np.asarray(angle_rad, dtype=float)
-    if spec[1] == "-":
-        a = -a
-    c, s = np.cos(a), np.sin(a)
-    o, z = np.ones_like(a), np.zeros_like(a)
-    ax = spec[0]
-    if ax == "x":
-        m = [[o, z, z], [z, c, -s], [z, s, c]]
-    elif ax == "y":
-        m = [[c, z, s], [z, o, z], [-s, z, c]]
-    else:
-        m = [[c, -s, z], [s, c, z], [z, z, o]]
-    return np.moveaxis(np.array(m), (0, 1), (-2, -1))
 
 
 @dataclass(frozen=True)
@@ -163,10 +145,6 @@ class Detector:
         }
 
 
-def _sign_axis(spec):
-    return AXES[spec[0]] * (1.0 if spec[1] == "+" else -1.0)
-
-
 class Diffractometer:
     """A diffractometer: sample circles, detector circles, beam, energy, detector.
 
@@ -257,7 +235,7 @@ class Diffractometer:
         d = self.detector
         qc = xu.experiment.QConversion([c.axis for c in self.sample_circles],
                                        [c.axis for c in self.detector_circles],
-                                       list(_sign_axis(self.beam)), en=self.energy_kev * 1000.0)
+                                       list(axis_vector(self.beam)), en=self.energy_kev * 1000.0)
         qc.init_area(d.row_direction, d.column_direction, cch1=float(d.direct_beam[0]),
                      cch2=float(d.direct_beam[1]), Nch1=int(d.shape[0]), Nch2=int(d.shape[1]),
                      distance=float(d.distance), pwidth1=float(d.pixel_size[0]),
@@ -301,13 +279,13 @@ class Diffractometer:
         d = self.detector
         rows = np.asarray(rows, float)
         cols = np.asarray(cols, float)
-        e1 = _sign_axis(d.row_direction)
-        e2 = _sign_axis(d.column_direction)
-        b = _sign_axis(self.beam)
+        e1 = axis_vector(d.row_direction)
+        e2 = axis_vector(d.column_direction)
+        b = axis_vector(self.beam)
         P = (d.distance * b[:, None] + (rows.ravel() - d.direct_beam[0]) * d.pixel_size[0] * e1[:, None]
              + (cols.ravel() - d.direct_beam[1]) * d.pixel_size[1] * e2[:, None])
         if d.rotation_deg:
-            P = _rotation_about(b, np.radians(d.rotation_deg)) @ P
+            P = rotation_about(b, np.radians(d.rotation_deg)) @ P
         if detector_angles is not None:
             R = np.eye(3)
             for c in self.detector_circles:
@@ -319,11 +297,18 @@ class Diffractometer:
     def q_lab_of_pixel(self, row, col, detector_angles):
         """Q_lab of one pixel (own computation), Å⁻¹."""
         p = self.pixel_directions(np.array([row]), np.array([col]), detector_angles)[:, 0]
-        return self.k * (p - _sign_axis(self.beam))
+        return self.k * (p - axis_vector(self.beam))
 
     # -- Bragg condition -------------------------------------------------
     def solve_bragg(self, g_sample, free, fixed=None, pixel=None, starts=64, seed=0):
         """Angles that put G (sample frame, Å⁻¹) in the Bragg condition on a pixel.
+
+        Solved by the project's one Bragg solver
+        (:class:`braggstrain.geometry.bragg.BraggSolver`); of the settings
+        within the circles' limits, the one with the least travel Σ|θ| from
+        0° (clipped into the limits) is returned. With more than three free
+        circles the solutions form a family and this is the member nearest
+        0°, so round-off cannot move the choice along the family.
 
         Parameters
         ----------
@@ -333,7 +318,8 @@ class Diffractometer:
             one detector circle when the detector stays in a plane)
         fixed : mapping name → degrees for every other circle (default 0)
         pixel : (row, column) that must see Q = G (default: the direct-beam pixel)
-        starts : number of random starting points within the circles' limits
+        starts : number of random starting points
+        seed : seed of the starting points
 
         Returns
         -------
@@ -343,7 +329,7 @@ class Diffractometer:
         ------
         GeometryError if no solution within the limits reaches |Q − G| < 1e-9 Å⁻¹.
         """
-        from scipy.optimize import least_squares
+        from braggstrain.geometry.bragg import CONVERGED, BraggSolver
 
         g = np.asarray(g_sample, float).reshape(3)
         fixed = dict(fixed or {})
@@ -352,47 +338,23 @@ class Diffractometer:
             self.circle(n)
         if len(set(free) & set(fixed)):
             raise InputError("solve_bragg: a circle is both free and fixed")
+        if len(free) < 3:
+            raise InputError(f"solve_bragg: free = {free}: expected at least three free circles "
+                             f"(the Bragg condition is three equations)")
         if np.linalg.norm(g) > 2 * self.k:
             raise GeometryError(f"|G| = {np.linalg.norm(g):.4f} Å⁻¹ exceeds 2k = {2 * self.k:.4f} Å⁻¹: "
                                 f"unreachable at {self.energy_kev:g} keV")
-        pixel = self.detector.direct_beam if pixel is None else pixel
-        names = [c.name for c in self.circles]
-        base = {n: float(fixed.get(n, 0.0)) for n in names}
-        lims = np.array([self.circle(n).limits for n in free], float)
-
-        def resid(x):
-            a = dict(base)
-            a.update({n: v for n, v in zip(free, np.degrees(x))})
-            Rs = self.sample_rotation(a)
-            q = self.q_lab_of_pixel(pixel[0], pixel[1], a)
-            return Rs @ g - q
-
-        rng = np.random.default_rng(seed)
-        best = None
-        found = 0
-        lo, hi = np.radians(lims[:, 0]), np.radians(lims[:, 1])
-        for i in range(int(starts)):
-            x0 = rng.uniform(lo, hi) if i else np.clip(np.zeros(len(free)), lo, hi)
-            x0 = np.clip(x0, lo + 1e-9, hi - 1e-9)
-            try:
-                r = least_squares(resid, x0, bounds=(lo, hi), xtol=1e-15, ftol=1e-15, gtol=1e-15)
-            except ValueError:
-                continue
-            cost = np.linalg.norm(r.fun)
-            # prefer exact solutions, then the one with the smallest circle travel
-            score = (cost > 1e-9, np.sum(np.abs(r.x)))
-            if best is None or score < best[0]:
-                best = (score, r)
-            found += cost <= 1e-9
-            if found >= 6:
-                break
-        if best is None or np.linalg.norm(best[1].fun) > 1e-9:
-            res = np.inf if best is None else np.linalg.norm(best[1].fun)
+        solver = BraggSolver(self, free=free, fixed_deg=fixed, pixel=pixel)
+        X, res, _, _, _ = solver.solve_batch(g[None], starts, seed)
+        Xc, ok, _ = solver.in_limits(X)
+        good = np.flatnonzero(ok & (res <= CONVERGED))
+        if good.size == 0:
+            best = float(res.min()) if res.size else np.inf
             raise GeometryError(f"no angles of circles {free} within their limits put G = {np.round(g, 5)} Å⁻¹ "
-                                f"in the Bragg condition (best |Q − G| = {res:.2e} Å⁻¹)")
-        out = dict(base)
-        out.update({n: float(v) for n, v in zip(free, np.degrees(best[1].x))})
-        return out
+                                f"in the Bragg condition (best |Q − G| = {best:.2e} Å⁻¹)")
+        travel = np.abs(Xc[good] - solver.home).sum(axis=1)
+        x = Xc[good[int(np.argmin(travel))]]
+        return {n: float(np.degrees(v)) for n, v in zip(solver.names, x)}
 
     # -- linear map -------------------------------------------------------
     def linear_map(self, angles, rocking_circle, rocking_step_deg, pixel):
@@ -454,10 +416,3 @@ class Diffractometer:
         return cls([Circle(n, a, tuple(l)) for n, a, l in d["sample_circles"]],
                    [Circle(n, a, tuple(l)) for n, a, l in d["detector_circles"]],
                    Detector(**det), d["energy_kev"], d.get("beam", "y+"))
-
-
-def _rotation_about(axis, angle):
-    k = np.asarray(axis, float)
-    k = k / np.linalg.norm(k)
-    K = np.array([[0, -k[2], k[1]], [k[2], 0, -k[0]], [-k[1], k[0], 0]])
-    return np.eye(3) + np.sin(angle) * K + (1 - np.cos(angle)) * K @ K
