@@ -96,7 +96,7 @@ def describe_reflection(cfg, i):
     from braggstrain.prepare.scan import prepare_scan, summarize_prepared
 
     r = cfg["reflection"][i]
-    name = r["name"] or f"reflection[{i}]"
+    name = r["name"]  # defaulted and checked by the schema
     opts = prepare_options(cfg)
     scan, _ = _scan_for(cfg, i, r, opts)
     lines = [f"reflection  {name} {tuple(r['hkl'])} of {cfg.get('_source')}"]
@@ -184,7 +184,7 @@ def cmd_inspect(args):
     path = str(args.file)
     if path.lower().endswith(".toml"):
         cfg = load_config(path)
-        names = [r["name"] or f"reflection[{i}]" for i, r in enumerate(cfg["reflection"])]
+        names = [r["name"] for r in cfg["reflection"]]
         if args.reflection is not None:
             if args.reflection not in names:
                 raise InputError(f"{path}: reflection '{args.reflection}' not found; expected one of {names}")

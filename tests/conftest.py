@@ -170,3 +170,37 @@ def rms(a, mask):
     import numpy as np
 
     return float(np.sqrt(np.mean(a[..., mask] ** 2)))
+
+
+# The invented results bundle of tests/results_bundle.py, built once per
+# session for the tests of io/results, io/vtk and report/.
+@pytest.fixture(scope="session")
+def bundle():
+    from results_bundle import _bundle
+
+    return _bundle()
+
+
+@pytest.fixture(scope="session")
+def results_file(bundle, tmp_path_factory):
+    from braggstrain.io.results import write_results
+
+    return write_results(tmp_path_factory.mktemp("res") / "results.h5", bundle)
+
+
+@pytest.fixture(scope="session")
+def figures(results_file, tmp_path_factory):
+    # made from the file read back, as `braggstrain report RESULTS` does
+    from braggstrain.io.results import read_results
+    from braggstrain.report.figures import make_figures
+
+    return make_figures(read_results(results_file), tmp_path_factory.mktemp("fig"))
+
+
+@pytest.fixture(scope="session")
+def loop_and_lines():
+    """A loop and two straight lines in one crystal (tests/defect_cases.py),
+    traced once per session."""
+    from defect_cases import loop_and_lines_case
+
+    return loop_and_lines_case()

@@ -1,4 +1,5 @@
-"""Tests of braggstrain.defects.lines on analytic dislocation fields.
+"""Tests of braggstrain.defects.lines (line tracing, Burgers vectors, character)
+on analytic dislocation fields (tests/defect_cases.py).
 
 Test objects are ρ_j = s·exp(−i G_j·u) built directly from textbook
 displacement fields (no phase retrieval unless said so):
@@ -22,9 +23,7 @@ Burgers vectors are physical: Pt a = 3.92 Å, |½⟨110⟩| = a/√2 = 2.77 Å.
 
 from __future__ import annotations
 
-import csv
 import json
-import os
 import warnings
 
 import h5py
@@ -32,111 +31,44 @@ import numpy as np
 import pytest
 from scipy import ndimage
 from scipy.spatial import cKDTree
-from scipy.spatial.transform import Rotation
 
 from braggstrain.phasing.metrics import far_field
 from braggstrain.simulate import forward as fw
 from braggstrain.geometry.crystal import Crystal
-from braggstrain.defects.burgers import format_lattice_vector, solve_burgers
-from braggstrain.defects.lines import BurgersWarning, Dislocation, find_dislocations
-from braggstrain.defects.vortices import vortex_map
+from braggstrain.defects.lines import BurgersWarning, find_dislocations
 from braggstrain.io.dislocations import read_dislocations_h5, write_dislocation_table, write_dislocations_h5
 from braggstrain.errors import InputError
 from braggstrain.strain.objects import SampleObject
 
-VS = 30.0  # voxel edge, Å
-HKLS = [(1, 1, 1), (-1, 1, 1), (2, 0, 0), (0, 0, 2)]
-U_TILT = Rotation.from_rotvec(np.radians(17.0) * np.array([0.3, 0.8, 0.5]) / np.linalg.norm([0.3, 0.8, 0.5])).as_matrix()
+from defect_cases import B_TRUE, HKLS, U_TILT, VS, _angle_deg, _line_direction, _objects, _perp_dist, _pt  # noqa: E402
 
 
-def _pt(U=U_TILT):
-    return Crystal("Pt").with_orientation(U)
 
 
-def _plane_normal(cr, p):
-    n = cr.U @ cr.B @ np.asarray(p, float)
-    return n / np.linalg.norm(n)
 
 
-def _objects(field, support, gs):
-    u = field.displacement(fw.grid_coordinates(support.shape, VS))
-    return [fw.complex_object(support, u, g) for g in gs]
 
 
-def _angle_deg(a, b):
-    c = abs(np.dot(a, b)) / (np.linalg.norm(a) * np.linalg.norm(b))
-    return float(np.degrees(np.arccos(np.clip(c, 0.0, 1.0))))
 
 
-def _perp_dist(points, p0, xi):
-    r = points - p0
-    return np.linalg.norm(r - np.outer(r @ xi, xi), axis=1)
+
+
 
 
 # --------------------------------------------------------------------------
 # vortex map
 # --------------------------------------------------------------------------
 
-def test_vortex_map_screw_along_z_matches_an_unwrapped_circuit():
-    # Screw along +z with b = a[001] (a lattice translation of fcc): Hirth &
-    # Lothe eq. 3-2, u_z = bθ/2π. Reflection (111): h·b = 1, so every z-layer
-    # has one plaquette of winding n = −1 about +z at the line (docs/design.md);
-    # (002): h·b = 2, total −2 per layer (a double vortex may show as two
-    # neighbouring unit vortices on the grid). Checked against an independent
-    # count: numpy.unwrap of the phase along a square circuit.
-    cr = Crystal("Pt")
-    shape = (40, 40, 40)
-    sup = fw.cube(shape, VS, 30 * VS)
-    p0 = np.array([2.3, -1.6, 0.0]) * VS
-    b = cr.burgers_to_sample([0, 0, 1])
-    field = fw.StraightDislocation(p0, (0, 0, 1), b)
-    c = np.array([n // 2 for n in shape])
-    lo, hi = 8, 31  # square x, y ∈ [8, 31], counter-clockwise about +z
-    ring = ([(i, lo) for i in range(lo, hi)] + [(hi, j) for j in range(lo, hi)]
-            + [(i, hi) for i in range(hi, lo, -1)] + [(lo, j) for j in range(hi, lo, -1)] + [(lo, lo)])
-    for hkl, n_true in (((1, 1, 1), -1), ((0, 0, 2), -2)):
-        (obj,) = _objects(field, sup, [cr.g_sample(hkl)])
-        w = vortex_map(obj, sup)
-        assert np.all(w[0] == 0) and np.all(w[1] == 0)  # no plaquette of normal x or y is pierced
-        for z in range(8, 32):
-            layer = w[2, :, :, z]
-            nz = np.argwhere(layer != 0)
-            assert layer.sum() == n_true
-            if n_true == -1:
-                assert len(nz) == 1
-            centres = (nz + 0.5 - c[:2]) * VS  # plaquette centres, Å
-            assert np.all(np.linalg.norm(centres - p0[:2], axis=1) <= 1.5 * VS)
-            ph = np.unwrap(np.angle([obj[i, j, z] for i, j in ring]))
-            assert round((ph[-1] - ph[0]) / (2 * np.pi)) == n_true
 
 
-def test_vortex_map_is_empty_for_smooth_strain():
-    # A smooth (curl-free phase) field has no vortex (common practice, no
-    # source: the plaquette sum of wrapped steps of a smooth phase is zero).
-    cr = _pt()
-    shape = (40, 40, 40)
-    sup = fw.truncated_octahedron(shape, VS, 34 * VS, rotation=cr.U)
-    field = (fw.UniformStrain(np.array([[2e-3, 5e-4, 0], [5e-4, -1e-3, 3e-4], [0, 3e-4, 1e-3]]))
-             + fw.RigidRotation(np.radians([0.1, -0.05, 0.2])))
-    for obj in _objects(field, sup, [cr.g_sample(h) for h in HKLS]):
-        assert not vortex_map(obj, sup).any()
 
 
 # --------------------------------------------------------------------------
 # straight lines: screw, edge, mixed
 # --------------------------------------------------------------------------
 
-B_TRUE = np.array([0.5, -0.5, 0.0])  # ½[1 -1 0] in (111): |b| = a/√2
 
 
-def _line_direction(cr, kind):
-    bs = cr.burgers_to_sample(B_TRUE)
-    bh = bs / np.linalg.norm(bs)
-    n = _plane_normal(cr, (1, 1, 1))
-    e = np.cross(n, bh)  # in (111), ⟂ b
-    angle = {"screw": 0.0, "mixed": 60.0, "edge": 90.0}[kind]
-    xi = np.cos(np.radians(angle)) * bh + np.sin(np.radians(angle)) * e
-    return xi / np.linalg.norm(xi), angle
 
 
 @pytest.fixture(scope="module")
@@ -233,30 +165,6 @@ def test_bcc_screw_gets_half_111():
 # a loop and two lines in one crystal
 # --------------------------------------------------------------------------
 
-@pytest.fixture(scope="module")
-def loop_and_lines():
-    cr = _pt()
-    hkls = [(1, 1, 1), (-1, 1, 1), (2, 0, 0), (0, 2, 0)]
-    gs = [cr.g_sample(h) for h in hkls]
-    shape = (56, 56, 56)
-    sup = fw.ellipsoid(shape, VS, (25 * VS, 24 * VS, 23 * VS))
-    b_loop = np.array([0.5, 0.0, -0.5])  # glide loop on (111)
-    loop = fw.DislocationLoop((0.0, 0.0, -11 * VS), _plane_normal(cr, (1, 1, 1)), 8 * VS,
-                              cr.burgers_to_sample(b_loop))
-    b_a = np.array([0.0, 0.5, 0.5])  # screw
-    xa = cr.burgers_to_sample(b_a)
-    xa /= np.linalg.norm(xa)
-    pa = np.array([-9.0, 9.0, 9.0]) * VS
-    b_b = np.array([0.5, 0.5, 0.0])  # edge on (1 -1 1)
-    xb = np.cross(_plane_normal(cr, (1, -1, 1)), cr.burgers_to_sample(b_b))
-    xb /= np.linalg.norm(xb)
-    pb = np.array([10.0, -9.0, 8.0]) * VS
-    field = (loop + fw.StraightDislocation(pa, xa, cr.burgers_to_sample(b_a))
-             + fw.StraightDislocation(pb, xb, cr.burgers_to_sample(b_b)))
-    objs = _objects(field, sup, gs)
-    lines = find_dislocations(objs, hkls, gs, VS, sup, cr)
-    truth = {"loop": (loop, b_loop), "a": (pa, xa, b_a), "b": (pb, xb, b_b)}
-    return lines, truth, sup, cr, objs, hkls, gs
 
 
 def test_loop_and_two_lines_count_and_burgers(loop_and_lines):
@@ -481,92 +389,15 @@ def test_bad_arguments_raise(small_case):
 # Burgers vector solver and orientation
 # --------------------------------------------------------------------------
 
-def test_solve_burgers_recovers_every_short_fcc_translation():
-    # h·b = −n with integer n for every fcc translation (½⟨110⟩, ⟨100⟩) and
-    # allowed reflections; the solve must return exactly that translation.
-    cr = Crystal("Pt")
-    for t in cr.translations():
-        n = [-int(round(np.dot(h, t))) for h in HKLS]
-        b, b_fit, res = solve_burgers(HKLS, n, cr)
-        assert np.array_equal(b, t) and res == 0.0 and np.allclose(b_fit, t)
-    # one reflection off by one: still the nearest translation, with a residual
-    n = [-int(round(np.dot(h, B_TRUE))) for h in HKLS]
-    n[2] += 1
-    b, _, res = solve_burgers(HKLS, n, cr)
-    assert res > 0.4
-    assert solve_burgers([(1, 1, 1), (-1, 1, 1), (2, 0, 0)], [0, 1, -1], cr)[0] is None
 
 
-def test_format_lattice_vector():
-    # Crystallographic notation of directions, e.g. ½[1 -1 0] written 1/2[1 -1 0]
-    # (common practice, no source).
-    assert format_lattice_vector([0.5, -0.5, 0.0]) == "1/2[1 -1 0]"
-    assert format_lattice_vector([1.0, 0.0, 0.0]) == "[1 0 0]"
-    assert format_lattice_vector([0.5, 0.5, 0.5]) == "1/2[1 1 1]"
 
 
 # --------------------------------------------------------------------------
 # outputs
 # --------------------------------------------------------------------------
 
-def test_table_csv_json_and_h5_round_trip(loop_and_lines, tmp_path):
-    # Round trip through the standard-library csv/json readers and h5py.
-    lines = loop_and_lines[0]
-    csv_path = write_dislocation_table(lines, tmp_path / "lines.csv")
-    json_path = write_dislocation_table(lines, tmp_path / "lines.json")
-    assert sorted(os.listdir(tmp_path)) == ["lines.csv", "lines.json"]  # no temporary files left
-    rows = list(csv.DictReader(open(csv_path, encoding="utf-8")))
-    assert len(rows) == len(lines)
-    for r, d in zip(rows, lines):
-        assert r["burgers_label"] == format_lattice_vector(d.burgers)
-        assert float(r["b_x_A"]) == pytest.approx(d.burgers_sample[0], abs=1e-4)
-        assert float(r["length_A"]) == pytest.approx(d.length, abs=0.1)
-        pts = np.array([[float(v) for v in p.split()] for p in r["points_A"].split(";")])
-        assert np.allclose(pts, d.points, atol=0.06)
-        assert r["closed"] == str(d.closed)
-    doc = json.load(open(json_path, encoding="utf-8"))
-    assert len(doc["lines"]) == len(lines)
-    for r, d in zip(doc["lines"], lines):
-        assert r["burgers_lattice"] == list(d.burgers)
-        assert np.allclose(r["points_A"], d.points, atol=1e-3)
-        assert r["slip_planes"] == [list(p) for p in d.slip_planes]
-    with h5py.File(tmp_path / "res.h5", "w") as f:
-        write_dislocations_h5(f.create_group("dislocations"), lines)
-    with h5py.File(tmp_path / "res.h5", "r") as f:
-        assert f["dislocations"].attrs["count"] == len(lines)
-        back = read_dislocations_h5(f["dislocations"])
-    for a, b in zip(back, lines):
-        assert np.array_equal(a.burgers, b.burgers) and np.allclose(a.points, b.points)
-        assert a.windings == b.windings and a.closed == b.closed and a.slip_planes == b.slip_planes
-        assert a.character_deg == pytest.approx(b.character_deg)
 
 
-def test_table_rejects_bad_paths(loop_and_lines, tmp_path):
-    # Input handling, no outside source.
-    lines = loop_and_lines[0]
-    with pytest.raises(InputError, match=r"\.csv or \.json"):
-        write_dislocation_table(lines, tmp_path / "lines.txt")
-    with pytest.raises(InputError, match="does not exist"):
-        write_dislocation_table(lines, tmp_path / "missing" / "lines.csv")
-    with pytest.raises(InputError, match="Dislocation"):
-        write_dislocation_table([{"points": []}], tmp_path / "lines.csv")
 
 
-def test_figure_is_written(loop_and_lines, tmp_path):
-    # PNG signature from the PNG specification (ISO/IEC 15948, section 5.2).
-    from braggstrain.report.dislocations import plot_dislocations
-
-    lines, _, sup, *_ = loop_and_lines
-    fig = plot_dislocations(lines, sup, VS, tmp_path / "lines.png")
-    data = (tmp_path / "lines.png").read_bytes()
-    assert data[:8] == b"\x89PNG\r\n\x1a\n" and len(data) > 20_000
-    ax = fig.axes[0]
-    assert ax.get_xlabel() == "x (nm)" and ax.get_zlabel() == "z (nm)"
-    assert len(ax.get_legend().get_texts()) == len(lines) + 1
-    assert "screw" in fig.axes[1].get_ylabel()  # the colour bar of the character
-    assert sorted(os.listdir(tmp_path)) == ["lines.png"]
-    assert isinstance(lines[0], Dislocation)
-    empty = plot_dislocations([], sup, VS, tmp_path / "none.png")
-    assert "no dislocation line" in empty.axes[0].get_title()
-    with pytest.raises(InputError, match="Dislocation"):
-        plot_dislocations([{"points": []}], sup, VS)

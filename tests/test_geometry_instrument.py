@@ -91,3 +91,31 @@ def test_linear_map_predicts_neighbouring_pixels():
     Qs = inst.pixel_q(a, frame="sample")
     pred = Rp @ g + M @ np.array([2, 3, -4])
     assert np.linalg.norm(Rp @ Qs[:, 23, 21] - pred) < 1e-3 * np.linalg.norm(M)
+
+
+def _four_circle_sample():
+    det = Detector(shape=(40, 50), pixel_size=(55e-6, 55e-6), distance=0.9, direct_beam=(20.0, 25.0),
+                   row_direction="z-", column_direction="x+")
+    return Diffractometer([Circle("eta", "x+", (-10.0, 120.0)), Circle("chi", "y+", (-95.0, 95.0)),
+                           Circle("phi", "z-")], [Circle("nu", "z-"), Circle("delta", "x+", (0.0, 120.0))],
+                          det, 8.7)
+
+
+@pytest.mark.parametrize("hkl", [(1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2), (1, -1, 3)])
+def test_four_free_circles_give_one_defined_setting(hkl):
+    # With four free circles the Bragg condition (three equations) leaves a
+    # one-parameter family of settings; solve_bragg must return the member of
+    # least travel from 0°, so that round-off in G (here 1e-12 relative) or a
+    # different seed cannot move the answer along the family. The condition
+    # itself is checked against xrayutilities' pixel Q (pixel_q).
+    inst = _four_circle_sample()
+    c = Crystal("Pt").oriented_by((1, 1, 1), (0, 0, 1), (1, -1, 0), (1, 0, 0))
+    g = c.g_sample(hkl)
+    free = ["eta", "chi", "phi", "delta"]
+    a = inst.solve_bragg(g, free=free, fixed={"nu": 0.0})
+    b = inst.solve_bragg(g * (1 + 1e-12), free=free, fixed={"nu": 0.0}, seed=5)
+    np.testing.assert_allclose([a[n] for n in free], [b[n] for n in free], atol=1e-6)
+    assert np.linalg.norm(inst.pixel_q(a, frame="sample")[:, 20, 25] - g) < 1e-6
+    for seed in range(3):
+        o = inst.solve_bragg(g, free=free, fixed={"nu": 0.0}, seed=seed, starts=16)
+        np.testing.assert_allclose([o[n] for n in free], [a[n] for n in free], atol=1e-6)

@@ -1,21 +1,14 @@
-"""Outputs stage: results.h5, VTK export, figures and the HTML report.
+"""io/results: results.h5 written and read back with h5py, round trips,
+refusals, and files of an earlier layout.
 
-The bundle is built from analytic fields with the project's simulator (a
-platinum octahedron with one 60° dislocation and an interface strain
-gradient, invented for the tests), passed through braggstrain.strain.tensor and
-braggstrain.defects.lines. Files are checked by reading them back with general
-reference libraries: h5py for HDF5, Kitware's VTK XML readers for the
-ParaView files, Pillow for the PNGs and the standard library's HTML parser
-for the report.
-"""
+The bundle (tests/results_bundle.py) is built from analytic fields with the
+project's simulator, invented for the tests."""
 
 from __future__ import annotations
 
-import base64
 import hashlib
 import os
 import re
-from html.parser import HTMLParser
 from pathlib import Path
 
 import h5py
@@ -24,92 +17,23 @@ import pytest
 
 from braggstrain.simulate import forward as fw
 from braggstrain.geometry.crystal import Crystal
-from braggstrain.defects.lines import find_dislocations
 from braggstrain.errors import InputError
-from braggstrain.report.figures import FIGURES, make_figures, plot_slices
-from braggstrain.strain.objects import SampleObject
 from braggstrain.io.results import Results, read_results, write_results
-from braggstrain.io.vtk import export_vtk
 from braggstrain.strain.components import STRAIN_COMPONENTS, strain_components, strain_from_components
-from braggstrain.report.html import CAUTIONS, strain_statistics, write_report
-from braggstrain.strain.lattice import mean_lattice_strain
 from braggstrain.strain.tensor import strain_tensor
 
 from conftest import assert_runs_columns_recorded  # noqa: E402
+from results_bundle import N, VS  # noqa: E402
 
 DOC = Path(__file__).resolve().parents[1] / "docs" / "results.md"
-N = 32
-VS = np.array([10.0, 10.0, 10.0])
 
 
-def _bundle():
-    """An invented crystal: 28 nm Pt octahedron, [111] up, one ½[0 1 -1]
-    dislocation along [1 -1 0], and a strain gradient under the base."""
-    cr = Crystal("Pt").oriented_by((1, 1, 1), (0, 0, 1), (1, -1, 0), (1, 0, 0))
-    shape = (N, N, N)
-    coords = fw.grid_coordinates(shape, VS)
-    sup = fw.octahedron(shape, VS, 280.0, rotation=cr.U)
-    b = cr.U @ (cr.A @ np.array([0.0, 0.5, -0.5]))
-    line = cr.U @ (cr.A @ np.array([1.0, -1.0, 0.0]))
-    field = (fw.StraightDislocation(point=(10.0, -15.0, 5.0), line=line, burgers=b)
-             + fw.InterfaceGradient(normal=(0, 0, -1), position=80.0, strain=2e-3, decay=40.0))
-    u = field.displacement(coords)
-    hkls = [(1, 1, 1), (2, 0, 0), (0, 2, 0), (0, 0, 2)]
-    G = np.array([cr.g_sample(h) for h in hkls])
-    objs = [fw.complex_object(sup, u, g) for g in G]
-    tf = strain_tensor(objs, G, VS, support=sup, labels=hkls)
-    lines = find_dislocations([SampleObject(o, VS, g, sup, hkl=h) for o, g, h in zip(objs, G, hkls)],
-                              crystal=cr)
-    c = tuple(n // 2 for n in shape)
-    refl = []
-    for j, (h, g, o) in enumerate(zip(hkls, G, objs)):
-        ug = np.tensordot(g, u, axes=1) / np.linalg.norm(g)
-        disp = np.where(sup, ug - ug[c], np.nan).astype(np.float32)
-        q = np.linspace(0.002, 0.06, 24)
-        it = np.arange(300)
-        q_cut = 0.03 + 0.005 * j
-        refl.append(dict(
-            name=f"pt_{''.join(map(str, h))}", hkl=h, g_vector=g, scan=f"scans/pt_{j}.h5",
-            max_counts=2e5 / (j + 1), oversampling=(2.4, 2.6 + 0.1 * j, 3.1), runs=4, kept=2,
-            run_metrics=[dict(run=k, nll=1.2 + 0.1 * k + 0.05 * j, free_nll=1.3 + 0.1 * k,
-                              support_size=900 + k, sharpness=0.8 - 0.01 * k,
-                              status="ok" if k < 3 else "support collapsed", kept=k < 2,
-                              rank=k if k < 3 else -1)
-                         for k in range(4)],
-            prtf=dict(q=q, values=np.exp(-(q / q_cut) ** 2), resolution=2 * np.pi / q_cut),
-            history=dict(amplitude_error=((0.5 + 0.1 * j) * np.exp(-it / (40.0 + 10 * j)) + 0.02).astype(np.float32),
-                         support_size=(2000 - (2 + j) * np.minimum(it, 200)).astype(np.int64),
-                         stage=(it >= 200).astype(np.int16), checkpoint=np.arange(0, 300, 50),
-                         nll=np.linspace(3.0, 1.0 + 0.2 * j, 6)),
-            amplitude=np.abs(o).astype(np.float32), phase=np.angle(o).astype(np.float32),
-            displacement=disp, support=sup, shift_vox=(0.1 * j, -0.2, 0.05), twin=(j == 2)))
-    ml = mean_lattice_strain(G * (1 - 1e-3), G, lattice_parameter=3.9242)
-    reg = dict(reference=0, shifts_voxels=[x["shift_vox"] for x in refl], twins=[x["twin"] for x in refl],
-               overlap=[1.0, 0.97, 0.96, 0.95], twin_decided_by=["reference", "amplitude", "amplitude", "residual"])
-    prov = dict(pipeline_text='[crystal]\nmaterial = "Pt"\n# <b>not html</b> & more\n',
-                versions={"numpy": np.__version__, "h5py": h5py.__version__}, seeds={"phasing": 11},
-                timings={"phase": 12.5, "tensor": 0.4}, command="braggstrain run demo.toml --out out",
-                created="2026-01-01T00:00:00+00:00")
-    return dict(grid=dict(voxel_size=VS, origin=(0.0, 0.0, 0.0), shape=shape), support=sup,
-                amplitude=np.mean([x["amplitude"] for x in refl], axis=0), reflections=refl, tensor=tf,
-                dislocations=lines, registration=reg, mean_lattice=ml, provenance=prov)
 
 
-@pytest.fixture(scope="module")
-def bundle():
-    return _bundle()
 
 
-@pytest.fixture(scope="module")
-def results_file(bundle, tmp_path_factory):
-    return write_results(tmp_path_factory.mktemp("res") / "results.h5", bundle)
 
 
-@pytest.fixture(scope="module")
-def figures(results_file, tmp_path_factory):
-    # made from the file read back, as `braggstrain report RESULTS` does
-    out = tmp_path_factory.mktemp("fig")
-    return make_figures(read_results(results_file), out)
 
 
 def _documented_datasets():
@@ -282,157 +206,26 @@ def test_read_rejects_other_hdf5(tmp_path):
 # VTK
 # --------------------------------------------------------------------------
 
-def test_vtk_files_read_back_with_vtk(bundle, results_file, tmp_path):
-    vtk = pytest.importorskip("vtk", reason="Kitware's vtk package is the reference reader of .vti/.vtu")
-    from vtk.util.numpy_support import vtk_to_numpy
-
-    paths = export_vtk(results_file, tmp_path)
-    assert [p.name for p in paths] == ["crystal.vti", "crystal_dislocations.vtu"]
-    rd = vtk.vtkXMLImageDataReader()
-    rd.SetFileName(str(paths[0]))
-    rd.Update()
-    img = rd.GetOutput()
-    assert img.GetDimensions() == (N, N, N)
-    np.testing.assert_allclose(img.GetSpacing(), VS / 10.0)  # nm
-    np.testing.assert_allclose(img.GetOrigin(), -(N // 2) * VS / 10.0)  # voxel (0,0,0); index n//2 at 0
-    pd = img.GetPointData()
-
-    def arr(name):
-        a = pd.GetArray(name)
-        assert a is not None, name
-        v = vtk_to_numpy(a)
-        # VTK stores x fastest (VTK User's Guide, 11th ed., ch. 19 "VTK File Formats")
-        if v.ndim == 2:
-            return np.stack([v[:, k].reshape((N, N, N), order="F") for k in range(v.shape[1])])
-        return v.reshape((N, N, N), order="F")
-
-    tf = bundle["tensor"]
-    comps = strain_components(tf.strain)
-    for m, c in enumerate(STRAIN_COMPONENTS):
-        np.testing.assert_array_equal(arr(f"strain_{c}"), comps[m])
-    np.testing.assert_array_equal(arr("support"), bundle["support"].astype(np.uint8))
-    np.testing.assert_array_equal(arr("amplitude"), bundle["amplitude"].astype(np.float32))
-    np.testing.assert_array_equal(arr("rotation_rad"), tf.rotation)
-    np.testing.assert_allclose(arr("displacement_nm"), tf.displacement / 10.0, rtol=1e-6, equal_nan=True)
-    np.testing.assert_array_equal(arr("hydrostatic_strain"), tf.hydrostatic)
-    np.testing.assert_array_equal(arr("von_mises_strain"), tf.von_mises)
-    for x in bundle["reflections"]:
-        np.testing.assert_array_equal(arr(f"phase_rad_{x['name']}"), x["phase"])
-    lr = vtk.vtkXMLUnstructuredGridReader()
-    lr.SetFileName(str(paths[1]))
-    lr.Update()
-    ug = lr.GetOutput()
-    lines = bundle["dislocations"]
-    assert ug.GetNumberOfCells() == len(lines)
-    assert ug.GetCellType(0) == vtk.VTK_POLY_LINE
-    pts = vtk_to_numpy(ug.GetPoints().GetData())
-    first = lines[0]
-    np.testing.assert_allclose(pts[: len(first.points)], first.points / 10.0)
-    ids = vtk_to_numpy(ug.GetPointData().GetArray("line_id"))
-    assert set(ids.tolist()) == set(range(1, len(lines) + 1))
 
 
 # --------------------------------------------------------------------------
 # figures
 # --------------------------------------------------------------------------
 
-def test_every_figure_is_a_valid_png(figures):
-    from PIL import Image
-
-    assert [p.name for p in figures] == list(FIGURES)
-    for p in figures:
-        # PNG signature: W3C PNG Specification, 2nd ed. (2003), §5.2
-        assert p.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n", p
-        with Image.open(p) as im:
-            im.verify()  # Pillow checks the chunk CRCs
-        with Image.open(p) as im:
-            assert im.format == "PNG" and min(im.size) >= 300, (p, im.size)
-    assert not [q for q in figures[0].parent.iterdir() if ".part" in q.name]
 
 
-def test_slice_colour_limits_ignore_outliers(tmp_path):
-    # robust limits at the 99th percentile inside the support (common practice, no source)
-    sup = fw.octahedron((N, N, N), VS, 280.0)
-    rng = np.random.default_rng(1)
-    f = np.where(sup, rng.normal(0, 1e-3, (N, N, N)), np.nan)
-    c = tuple(np.argwhere(sup).mean(axis=0).round().astype(int))
-    f[c] = 1.0  # one wild voxel in the central planes
-    fig = plot_slices([f], sup, VS, tmp_path / "s.png", names=["ε"], units=[""])
-    ims = [a.images[0] for a in fig.axes if a.images]
-    assert len(ims) == 3
-    lo, hi = ims[0].get_clim()
-    assert lo == -hi  # centred on zero
-    p99 = np.percentile(np.abs(f[sup]), 99)
-    assert hi == pytest.approx(p99 * 1e3, rel=1e-6)  # shown in units of 10⁻³
-    assert (tmp_path / "s.png").is_file()
 
 
 # --------------------------------------------------------------------------
 # report
 # --------------------------------------------------------------------------
 
-class _Links(HTMLParser):
-    def __init__(self):
-        super().__init__()
-        self.refs, self.imgs, self.tables, self.tags = [], 0, 0, set()
-
-    def handle_starttag(self, tag, attrs):
-        self.tags.add(tag)
-        self.imgs += tag == "img"
-        self.tables += tag == "table"
-        for k, v in attrs:
-            if k in ("src", "href", "srcset", "data", "poster"):
-                self.refs.append(v or "")
 
 
-def test_report_is_self_contained_and_holds_the_tables(bundle, results_file, figures, tmp_path):
-    back = read_results(results_file)
-    page = write_report(back, tmp_path, figures)
-    text = page.read_text(encoding="utf-8")
-    parser = _Links()
-    parser.feed(text)
-    assert parser.refs and all(r.startswith("data:image/png;base64,") for r in parser.refs)
-    assert "<link" not in text and "<script" not in text and "url(" not in text
-    assert parser.imgs == len(figures)
-    # the embedded images are the figure files, byte for byte
-    embedded = [base64.b64decode(r.split(",", 1)[1]) for r in parser.refs]
-    assert embedded == [p.read_bytes() for p in figures]
-    assert parser.tables >= 6
-    for x in bundle["reflections"]:
-        assert f"<td class=\"text\">{x['name']}</td>" in text
-    assert "(1 1 1)" in text and "PRTF resolution" in text and "oversampling" in text
-    assert f"{bundle['tensor'].condition_number:.3f}" in text
-    d = bundle["dislocations"][0]
-    assert "1/2[0 1 -1]" in text and "Burgers vector" in text and f"{d.character_deg:.0f}" in text
-    # strain statistics: the median of ε_zz inside the crystal, as numpy computes it
-    stats = {s["name"]: s for s in strain_statistics(bundle["tensor"])}
-    v = bundle["tensor"].strain[2, 2][bundle["tensor"].support]
-    v = v[np.isfinite(v)]
-    assert stats["ε_zz"]["p50"] == pytest.approx(float(np.median(v)))
-    assert f"{stats['ε_zz']['p50']:.3e}" in text
-    assert CAUTIONS.split(".")[0] in text and "facility" in text
-    # the pipeline text is shown escaped, never as markup
-    assert "<b>not html</b>" not in text and "&lt;b&gt;not html&lt;/b&gt; &amp; more" in text
-    assert not [q for q in tmp_path.iterdir() if ".part" in q.name]
 
 
-def test_report_makes_its_own_figures(bundle, tmp_path):
-    small = dict(bundle, reflections=[dict(x, history={}, prtf=None, run_metrics=[]) for x in bundle["reflections"]],
-                 dislocations=[])
-    page = write_report(Results.from_dict(small), tmp_path)
-    names = sorted(p.name for p in tmp_path.glob("*.png"))
-    # nothing recorded, no empty figure
-    expected = sorted(set(FIGURES) - {"prtf.png", "history.png", "runs.png"})
-    assert names == expected
-    text = page.read_text(encoding="utf-8")
-    assert "No dislocation line was found" in text
-    assert text.count("<img ") == len(expected)
 
 
-def test_documentation_lists_every_figure():
-    text = DOC.read_text(encoding="utf-8")
-    for name in FIGURES:
-        assert f"`{name}`" in text, name
 
 
 # --------------------------------------------------------------------------

@@ -159,6 +159,52 @@ class BraggSolver:
         f, p, Rs = self.forward(X, G, want_jac=False)
         return X, np.linalg.norm(f, axis=1), p, Rs
 
+    def settle(self, G, X):
+        """Move settings along their solution family to the nearest point to
+        home within the limits (more than three free circles; otherwise the
+        settings are returned as they are).
+
+        From each row of X (radians, inside the limits and in the Bragg
+        condition for the G of its row), min Σ(θ − θ_home)² over the free
+        circles subject to the three Bragg equations and the limits is solved
+        by sequential least squares (``scipy.optimize.minimize``, SLSQP, with
+        the analytic Jacobian of :meth:`forward`), then polished by Newton
+        steps. Starts on one branch of the family end at one point, so the
+        result depends neither on where the random starts fell nor on
+        round-off. Where the middle of three sample circles sits at ±90° and
+        the outer and inner axes coincide (gimbal lock) the nearest point is
+        a segment: the result is then of least distance but not unique.
+
+        Returns X, |f| (Å⁻¹), p and R_s as :meth:`solve`."""
+        from scipy.optimize import minimize
+
+        X = np.array(X, float)
+        G = np.asarray(G, float).reshape(-1, 3)
+        if len(self.free) > 3:
+            fr = self.free
+            bounds = list(zip(self.limits[fr, 0], self.limits[fr, 1]))
+            home = self.home[fr]
+            for n in range(X.shape[0]):
+                base, g = X[n].copy(), G[n:n + 1]
+
+                def full(y):
+                    x = base.copy()
+                    x[fr] = y
+                    return x[None]
+
+                def cons(y):
+                    return self.forward(full(y), g, want_jac=False)[0][0]
+
+                def cons_jac(y):
+                    return self.forward(full(y), g)[3][0]
+
+                r = minimize(lambda y: float(np.sum((y - home) ** 2)), X[n, fr], jac=lambda y: 2 * (y - home),
+                             method="SLSQP", bounds=bounds, constraints=[{"type": "eq", "fun": cons, "jac": cons_jac}],
+                             options={"ftol": 1e-14, "maxiter": 200})
+                if np.linalg.norm(cons(r.x)) < 1e-6:
+                    X[n, fr] = r.x
+        return self.solve(G, X, bounded=True)
+
     def in_limits(self, X):
         """For angles X (P, n_circles), the representation x + 2πn of each
         angle inside its limits nearest home (else the one nearest the

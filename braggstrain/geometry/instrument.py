@@ -304,11 +304,14 @@ class Diffractometer:
         """Angles that put G (sample frame, Å⁻¹) in the Bragg condition on a pixel.
 
         Solved by the project's one Bragg solver
-        (:class:`braggstrain.geometry.bragg.BraggSolver`); of the settings
-        within the circles' limits, the one with the least travel Σ|θ| from
-        0° (clipped into the limits) is returned. With more than three free
-        circles the solutions form a family and this is the member nearest
-        0°, so round-off cannot move the choice along the family.
+        (:class:`braggstrain.geometry.bragg.BraggSolver`) from random starts.
+        With more than three free circles the solutions form a family; each
+        setting found is first moved along its family to the point nearest 0°
+        (clipped into the limits) within the limits
+        (:meth:`~braggstrain.geometry.bragg.BraggSolver.settle`), so neither
+        the seed nor round-off can move the answer along the family. Of the
+        settings left, the one with the least travel Σ|θ| from 0° is
+        returned (ties: the lexicographically smallest angles).
 
         Parameters
         ----------
@@ -352,8 +355,17 @@ class Diffractometer:
             best = float(res.min()) if res.size else np.inf
             raise GeometryError(f"no angles of circles {free} within their limits put G = {np.round(g, 5)} Å⁻¹ "
                                 f"in the Bragg condition (best |Q − G| = {best:.2e} Å⁻¹)")
-        travel = np.abs(Xc[good] - solver.home).sum(axis=1)
-        x = Xc[good[int(np.argmin(travel))]]
+        # every valid setting to the nearest-home point of its branch of the
+        # family (more than three free circles), then the least travel
+        _, first = np.unique(np.round(np.degrees(Xc[good]), 2), axis=0, return_index=True)
+        good = good[first]
+        good = good[np.argsort(((Xc[good] - solver.home) ** 2).sum(axis=1), kind="stable")[:16]]
+        Xs, res_s, _, _ = solver.settle(np.repeat(g[None], good.size, axis=0), Xc[good])
+        Xs, ok_s, _ = solver.in_limits(Xs)
+        keep = ok_s & (res_s <= CONVERGED)
+        Xs = Xs[keep] if keep.any() else Xc[good]
+        travel = np.round(np.degrees(np.abs(Xs - solver.home).sum(axis=1)), 6)
+        x = Xs[np.lexsort(np.round(np.degrees(Xs), 6).T[::-1].tolist() + [travel])[0]]
         return {n: float(np.degrees(v)) for n, v in zip(solver.names, x)}
 
     # -- linear map -------------------------------------------------------
