@@ -59,7 +59,7 @@ def main():
                                progress=False, log=None)
             cmp = compare_to_truth(res["results"], out / "truth.h5", as_text=False)
             print(f"peak counts {counts:.0e}, {label}: {cmp['coverage']['xx']['voxels']} trusted voxels; "
-                  f"{res['results']['tensor'].uncertainty_basis}")
+                  f"{res['results'].tensor.uncertainty_basis}")
             print("  component   RMS error   median σ   within 1σ   within 2σ")
             for k, c in cmp["coverage"].items():
                 ok = ONE[0] <= c["within_1sigma"] <= ONE[1] and TWO[0] <= c["within_2sigma"] <= TWO[1]
