@@ -796,7 +796,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     labels = [p["name"] for p in per_refl]
 
     # -- tensor
-    k_ten = hash_inputs("tensor", k_reg, te_opts, [p["spread_key"] for p in per_refl])
+    k_ten = hash_inputs("tensor", k_reg, te_opts, [p["spread_key"] for p in per_refl], tns.UNCERTAINTY_MODEL)
     with run.timed("tensor"):
         tt = run.cached("tensor", "all", k_ten)
         if tt is None:
@@ -912,13 +912,13 @@ def _spread_samples(tree, data, intensity, mask, g_ref, so, fr_opts, n_rep, rep_
 
 def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
     """Per-reflection phase-gradient covariance from the kept runs and replicas,
-    on the common grid: C_j = C_runs/K + C_replicas (docs/strain.md).
+    on the common grid (``strain.spread.reconstruction_covariance``, docs/strain.md).
 
     Returns (covariance (J, 3, 3, *grid) or None, a sentence saying what it holds).
     """
-    from braggstrain.strain.fields import phase_gradient_covariance
     from braggstrain.strain.objects import SampleObject
     from braggstrain.strain.registration import apply_registration
+    from braggstrain.strain.spread import reconstruction_covariance
 
     covs, parts = [], set()
     for j, p in enumerate(per_refl):
@@ -929,22 +929,14 @@ def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
             o = SampleObject(arr, so.voxel_size, so.g_vector, so.support, so.origin, so.hkl, {})
             return apply_registration(o, reg_report, j).obj
 
-        C = np.zeros((3, 3) + support.shape)
-        have = False
-        runs = list(st["runs"])
-        if len(runs) >= 2:
-            C += phase_gradient_covariance([common(a) for a in runs], voxel_size, support, order=order) / len(runs)
-            parts.add(f"the spread of the {len(runs)} kept random starts (variance of their mean)")
-            have = True
-        if "replicas" in st:
-            reps = [common(a) for a in st["replicas"]]
-            C += phase_gradient_covariance(reps, voxel_size, support, center=common(st["baseline"]), order=order)
-            parts.add(f"the spread of {len(reps)} Poisson replicas of the counts, each phased from the "
-                      f"converged object")
-            have = True
-        if not have:
+        C, said = reconstruction_covariance(
+            common(so.obj), voxel_size, support, runs=[common(a) for a in st["runs"]],
+            replicas=[common(a) for a in st.get("replicas", [])],
+            baseline=common(st["baseline"]) if "baseline" in st else None, order=order)
+        if C is None:
             return None, ""
         covs.append(C)
+        parts.update(said)
     return np.stack(covs).astype(np.float32), " and ".join(sorted(parts)) + " (per reflection)"
 
 

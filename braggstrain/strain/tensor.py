@@ -536,20 +536,27 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         var_sp_w = [0.25 * (cov_d(p, q, p, q) + cov_d(q, p, q, p) - 2 * cov_d(p, q, q, p)) for p, q in _ROT]
         if J >= 4 and gradient_noise is None:
             # the residual beyond what the spread explains, as an extra variance τ²/w_j
+            # per column k of D (the gradient along axis k), a regression of its own with J − 3
+            # degrees of freedom: Q_k = Σ_j w_j r_jk² against E[Q_k] = Σ_j w_j Σ_l (I − H)²_jl (C_l)_kk
             IH = np.eye(J)[None] - np.einsum("ja,nak->njk", G, A)  # r = (I − H) e, column by column
             diag_c = np.stack([Cs[:, k, k, :] for k in range(3)], axis=-1)  # (J, N, 3)
-            expected = np.einsum("nj,njl,lnk->n", w, IH ** 2, diag_c)
-            usable = ok & np.isfinite(ss) & np.isfinite(expected)
-            tau2 = np.clip(_pooled(ss, usable, idx, shape) - _pooled(expected, usable, idx, shape), 0, None)
-            var_x = tau2[:, None] / (3 * (J - 3)) * np.diagonal(Minv, axis1=1, axis2=2)
+            expected = np.einsum("nj,njl,lnk->nk", w, IH ** 2, diag_c)
+            ss_k = np.sum(w[:, :, None] * r * r, axis=1)  # (N, 3)
+            tau2 = np.empty((len(idx), 3))
+            for k in range(3):
+                usable = ok & np.isfinite(ss_k[:, k]) & np.isfinite(expected[:, k])
+                tau2[:, k] = np.clip(_pooled(ss_k[:, k], usable, idx, shape)
+                                     - _pooled(expected[:, k], usable, idx, shape), 0, None) / (J - 3)
+            # Var(D_ik) = τ_k² (M⁻¹)_ii: (N, i, k)
+            var_x = np.diagonal(Minv, axis1=1, axis2=2)[:, :, None] * tau2[:, None, :]
             var_x[~ok] = np.nan
         elif gradient_noise is not None:
-            var_x = var_d  # a stated noise level, independent of the spread
+            var_x = np.repeat(var_d[:, :, None], 3, axis=2)  # a stated noise level, independent of the spread
         else:
-            var_x = np.zeros_like(var_d)
-        var_e = {(i, k): var_sp_e[i, k] + (var_x[:, i] if i == k else 0.25 * (var_x[:, i] + var_x[:, k]))
+            var_x = np.zeros((len(idx), 3, 3))
+        var_e = {(i, k): var_sp_e[i, k] + (var_x[:, i, i] if i == k else 0.25 * (var_x[:, i, k] + var_x[:, k, i]))
                  for i, k in STRAIN_PAIRS}
-        var_w = [v + 0.25 * (var_x[:, q] + var_x[:, p]) for v, (p, q) in zip(var_sp_w, _ROT)]
+        var_w = [v + 0.25 * (var_x[:, p, q] + var_x[:, q, p]) for v, (p, q) in zip(var_sp_w, _ROT)]
     else:
         var_e, var_w = var_ls_e, var_ls_w
     if resolution_blur is not None:
@@ -618,6 +625,11 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
         _outlier_check(tf, P, w, G, idx, trusted, max_condition, outlier_ratio, warn)
     return tf
 
+
+#: version of the error-bar model; part of the tensor stage's checkpoint key, so that a resumed run
+#: recomputes σ when the model changes (3: per-column misfit variance, replicas about their mean, the offset of the
+#: reconstruction from the replicas' baseline, docs/strain.md)
+UNCERTAINTY_MODEL = 3
 
 # the (p, q) of each rotation ω = (D_pq − D_qp)/2 (strain components: STRAIN_PAIRS)
 _ROT = ((2, 1), (0, 2), (1, 0))

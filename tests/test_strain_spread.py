@@ -1,0 +1,71 @@
+"""The spread of one reflection's reconstructions as a gradient covariance
+(braggstrain.strain.spread)."""
+
+import numpy as np
+import pytest
+
+from braggstrain.errors import InputError
+from braggstrain.strain.spread import reconstruction_covariance
+
+H = 40.0  # Å
+SHAPE = (24, 24, 24)
+
+
+def _case(rng, offset):
+    """A smooth object; the reconstruction carries a constant gradient offset
+    (rad/Å per axis) relative to the baseline."""
+    x = np.indices(SHAPE).astype(float) * H
+    phase = 0.3 * np.sin(x[0] / 300.0) + 0.2 * np.cos(x[2] / 250.0)
+    support = np.zeros(SHAPE, bool)
+    support[3:-3, 3:-3, 3:-3] = True
+    base = np.where(support, np.exp(1j * phase), 0).astype(np.complex64)
+    recon = (base * np.exp(1j * np.tensordot(offset, x, axes=1))).astype(np.complex64)
+    return support, base, recon
+
+
+def test_replicas_and_the_offset_from_the_baseline():
+    # C = C_replicas + δδᵀ. Replicas: independent phase noise s per voxel, so
+    # the central difference (φ(r+h) − φ(r−h))/(2h) has variance 2s²/(2h)²
+    # (the variance of a difference of independent variables is the sum of
+    # theirs; Bevington & Robinson, Data Reduction and Error Analysis, 3rd ed.,
+    # 2003, eq. 3.13, from memory), and no covariance between axes. δ is the
+    # constant gradient offset of the reconstruction.
+    rng = np.random.default_rng(3)
+    offset = np.array([2e-4, -1e-4, 3e-4])
+    support, base, recon = _case(rng, offset)
+    s = 0.02
+    reps = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(40)]
+    C, parts = reconstruction_covariance(recon, H, support, replicas=reps, baseline=base)
+    inner = np.zeros(SHAPE, bool)
+    inner[5:-5, 5:-5, 5:-5] = True
+    noise = 2 * s**2 / (2 * H) ** 2
+    for a in range(3):
+        for b in range(3):
+            want = offset[a] * offset[b] + (noise if a == b else 0.0)
+            got = float(np.mean(C[a, b][inner]))
+            # 40 replicas over 2744 voxels: measured within 1.2 % of the noise variance
+            assert got == pytest.approx(want, rel=0.05, abs=0.05 * noise), (a, b, got, want)
+    assert any("Poisson replicas" in p and "offset" in p for p in parts)
+
+
+def test_runs_enter_as_the_variance_of_their_mean():
+    # C_runs/K: the variance of the mean of K observations (JCGM 100:2008, §4.2.3)
+    rng = np.random.default_rng(4)
+    support, base, _ = _case(rng, np.zeros(3))
+    s = 0.02
+    runs = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(30)]
+    C, parts = reconstruction_covariance(base, H, support, runs=runs)
+    inner = np.zeros(SHAPE, bool)
+    inner[5:-5, 5:-5, 5:-5] = True
+    want = 2 * s**2 / (2 * H) ** 2 / len(runs)
+    for a in range(3):
+        assert float(np.mean(C[a, a][inner])) == pytest.approx(want, rel=0.05)
+    assert parts == ["the spread of the 30 kept random starts (variance of their mean)"]
+
+
+def test_nothing_to_estimate_from_gives_none_and_replicas_need_a_baseline():
+    rng = np.random.default_rng(5)
+    support, base, recon = _case(rng, np.zeros(3))
+    assert reconstruction_covariance(recon, H, support, runs=[base]) == (None, [])
+    with pytest.raises(InputError, match="baseline"):
+        reconstruction_covariance(recon, H, support, replicas=[base, base])
