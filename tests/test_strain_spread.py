@@ -48,6 +48,37 @@ def test_replicas_and_the_offset_from_the_baseline():
     assert any("Poisson replicas" in p and "offset" in p for p in parts)
 
 
+def test_the_offset_counts_only_beyond_the_runs_spread():
+    # The kept runs' spread C_runs/K already sees an offset of their mean that
+    # comes from each run stopping short in its own direction; only the
+    # excess f = max(0, 1 − ⟨tr C_runs/K⟩/⟨|δ|²⟩) of δδᵀ is added
+    # (method of moments, DerSimonian & Laird 1986). Identical runs explain
+    # nothing (f = 1); runs whose spread exceeds the offset explain it all (f = 0).
+    rng = np.random.default_rng(6)
+    offset = np.array([2e-4, -1e-4, 3e-4])
+    support, base, recon = _case(rng, offset)
+    s = 0.02
+    reps = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(40)]
+    inner = np.zeros(SHAPE, bool)
+    inner[5:-5, 5:-5, 5:-5] = True
+    noise = 2 * s**2 / (2 * H) ** 2
+    same, _ = reconstruction_covariance(recon, H, support, runs=[recon, recon], replicas=reps, baseline=base)
+    assert float(np.mean(same[2, 2][inner])) == pytest.approx(offset[2] ** 2 + noise, rel=0.05)
+    wide = [(recon * np.exp(1j * rng.normal(0, 0.2, SHAPE))).astype(np.complex64) for _ in range(2)]
+    # the runs' spread (variance of the mean of K = 2) dwarfs |δ|²
+    assert np.mean(np.trace(_cov(wide))[inner]) / 2 > 10 * np.sum(offset ** 2)
+    C, _ = reconstruction_covariance(recon, H, support, runs=wide, replicas=reps, baseline=base)
+    no_dd, _ = reconstruction_covariance(recon, H, support, runs=wide, replicas=reps, baseline=recon)
+    np.testing.assert_allclose(C[:, :, inner], no_dd[:, :, inner], rtol=1e-6)
+
+
+def _cov(samples):
+    from braggstrain.strain.fields import phase_gradient_covariance
+
+    support = np.abs(samples[0]) > 0
+    return phase_gradient_covariance(samples, H, support)
+
+
 def test_runs_enter_as_the_variance_of_their_mean():
     # C_runs/K: the variance of the mean of K observations (JCGM 100:2008, §4.2.3)
     rng = np.random.default_rng(4)

@@ -13,22 +13,50 @@ propagates through the solve (docs/strain.md, "Error bars"):
   mean, the bootstrap estimate of the standard error (Efron & Tibshirani,
   An Introduction to the Bootstrap, 1993, eq. 6.6);
 * the offset δ = ∇φ_reconstruction − ∇φ_baseline, where the baseline is the
-  reconstruction after the replicas' iterations on the measured counts:
-  δδᵀ. The reported reconstruction is not a fixed point of those
-  iterations; how far they move it is an error that no spread about the
-  baseline shows. Its square is added as a systematic effect not corrected
-  for (mean squared error = variance + bias², JCGM 100:2008, F.2.4.5, from
-  memory).
+  reconstruction after the replicas' iterations on the measured counts.
+  The reported reconstruction is not a fixed point of those iterations; how
+  far they move it is an error that the replicas' spread does not show (the
+  counts are the same for both). The kept runs' spread sees part of it
+  already: if each run stops short in its own direction, their mean stops
+  short by about C_runs/K. So only the excess is added, the method-of-moments
+  estimate of a systematic offset (DerSimonian & Laird, Control. Clin.
+  Trials 7, 177, 1986, as for the misfit between reflections in
+  :mod:`braggstrain.strain.tensor`):
+
+      f = max(0, 1 − ⟨tr C_runs/K⟩ / ⟨|δ|²⟩),   C += f δδᵀ
+
+  with ⟨·⟩ the Gaussian-weighted mean over the voxels around
+  (:data:`POOL_SIGMA` voxels, :func:`local_mean`). An offset added in
+  quadrature is an uncorrected systematic effect (JCGM 100:2008, F.2.4.5,
+  from memory).
 """
 
 from __future__ import annotations
 
 import numpy as np
+from scipy import ndimage as ndi
 
 from braggstrain.errors import InputError
 from braggstrain.strain.fields import phase_gradient_covariance
 
-__all__ = ["reconstruction_covariance"]
+__all__ = ["POOL_SIGMA", "local_mean", "reconstruction_covariance"]
+
+#: Gaussian σ (voxels) of the neighbourhood over which variance estimates are pooled (common practice,
+#: no source)
+POOL_SIGMA = 1.5
+
+
+def local_mean(values, usable, sigma=POOL_SIGMA):
+    """Gaussian-weighted mean of ``values`` over the ``usable`` voxels around each voxel.
+
+    ``values`` and ``usable`` have the grid's shape; NaN where no usable
+    voxel is near.
+    """
+    usable = np.asarray(usable, bool) & np.isfinite(values)
+    num = ndi.gaussian_filter(np.where(usable, values, 0.0).astype(float), sigma, mode="constant")
+    den = ndi.gaussian_filter(usable.astype(float), sigma, mode="constant")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return num / den
 
 
 def reconstruction_covariance(reconstruction, voxel_size, support, *, runs=(), replicas=(), baseline=None,
@@ -63,8 +91,8 @@ def reconstruction_covariance(reconstruction, voxel_size, support, *, runs=(), r
 
     Notes
     -----
-    C = C_runs/K + C_replicas + δδᵀ (module docstring for each term and its
-    source). Gradient differences are folded into ±π/(2h), as in
+    C = C_runs/K + C_replicas + f δδᵀ (module docstring for each term, f and
+    their sources). Gradient differences are folded into ±π/(2h), as in
     :func:`~braggstrain.strain.fields.phase_gradient_covariance`.
     """
     runs, replicas = list(runs), list(replicas)
@@ -76,13 +104,23 @@ def reconstruction_covariance(reconstruction, voxel_size, support, *, runs=(), r
         nonlocal C
         C = c if C is None else C + c
 
+    c_runs = None
     if len(runs) >= 2:
-        add(phase_gradient_covariance(runs, voxel_size, support, order=order) / len(runs))
+        c_runs = phase_gradient_covariance(runs, voxel_size, support, order=order) / len(runs)
+        add(c_runs)
         parts.append(f"the spread of the {len(runs)} kept random starts (variance of their mean)")
     if len(replicas) >= 2:
         add(phase_gradient_covariance(replicas, voxel_size, support, order=order))
-        add(phase_gradient_covariance([reconstruction], voxel_size, support, center=baseline, order=order))
+        dd = phase_gradient_covariance([reconstruction], voxel_size, support, center=baseline, order=order)
+        if c_runs is not None:
+            inside = np.asarray(support, bool)
+            seen = local_mean(np.trace(c_runs).astype(float), inside)
+            off = local_mean(np.trace(dd).astype(float), inside)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                f = np.clip(1.0 - seen / off, 0.0, 1.0)
+            dd = dd * np.where(np.isfinite(f), f, 0.0).astype(np.float32)
+        add(dd)
         parts.append(f"the spread of {len(replicas)} Poisson replicas of the counts, each phased from the "
                      f"converged object, and the reconstruction's offset from the point those iterations "
-                     f"settle to on the measured counts")
+                     f"settle to on the measured counts (beyond what the kept runs' spread shows)")
     return C, parts

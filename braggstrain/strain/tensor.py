@@ -40,6 +40,7 @@ from braggstrain.strain.fields import (GRADIENT_AMPLITUDE_THRESHOLD, default_sup
                      reference_voxel, trusted_for_gradients, unwrapped_phase)
 from braggstrain.strain.components import STRAIN_PAIRS, split_gradient
 from braggstrain.strain.grid import Grid
+from braggstrain.strain.spread import POOL_SIGMA, local_mean
 from braggstrain.strain.objects import SampleObject
 
 __all__ = [
@@ -627,28 +628,21 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
 
 
 #: version of the error-bar model; part of the tensor stage's checkpoint key, so that a resumed run
-#: recomputes σ when the model changes (3: per-column misfit variance, replicas about their mean, the offset of the
-#: reconstruction from the replicas' baseline, docs/strain.md)
-UNCERTAINTY_MODEL = 3
+#: recomputes σ when the model changes (4: misfit variance per gradient direction; replicas about their
+#: mean; the reconstruction's offset from the replicas' baseline beyond the runs' spread; docs/strain.md)
+UNCERTAINTY_MODEL = 4
 
 # the (p, q) of each rotation ω = (D_pq − D_qp)/2 (strain components: STRAIN_PAIRS)
 _ROT = ((2, 1), (0, 2), (1, 0))
 
 
-#: Gaussian σ (voxels) over which the residual sums of squares are pooled (common practice, no source)
-POOL_SIGMA = 1.5
-
-
 def _pooled(values, usable, idx, shape, sigma=POOL_SIGMA):
-    """Gaussian-weighted local mean of per-voxel ``values`` over the ``usable`` voxels."""
-    full = np.zeros(int(np.prod(shape)))
-    m = np.zeros(int(np.prod(shape)))
-    full[idx] = np.where(usable, values, 0.0)
+    """:func:`~braggstrain.strain.spread.local_mean` of per-voxel ``values`` (at the flat indices ``idx``)."""
+    full = np.full(int(np.prod(shape)), np.nan)
+    m = np.zeros(int(np.prod(shape)), bool)
+    full[idx] = values
     m[idx] = usable
-    full = ndi.gaussian_filter(full.reshape(shape), sigma, mode="constant")
-    m = ndi.gaussian_filter(m.reshape(shape), sigma, mode="constant")
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return (full / m).reshape(-1)[idx]
+    return local_mean(full.reshape(shape), m.reshape(shape), sigma).reshape(-1)[idx]
 
 
 def _blur_bias(field_, support, sigma):
