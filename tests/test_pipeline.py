@@ -329,6 +329,7 @@ def test_three_reflections_give_finite_error_bars(calibration):
     assert np.all(np.isfinite(tf.strain_uncertainty[:, :, m])) and np.all(tf.strain_uncertainty[:, :, m] > 0)
     assert np.all(np.isfinite(tf.rotation_uncertainty[:, m]))
     assert "G⁻¹" in tf.uncertainty_basis and "Poisson replicas" in tf.uncertainty_basis
+    assert "offset" in tf.uncertainty_basis and "kept random starts" in tf.uncertainty_basis
     with h5py.File(calibration["d"] / "out3" / "results.h5", "r") as f:
         assert f["tensor/strain_uncertainty"].attrs["includes"] == tf.uncertainty_basis
 

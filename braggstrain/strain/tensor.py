@@ -432,12 +432,15 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
     * least squares (J ≥ 4, or ``gradient_noise``): Cov(D[:, k]) = σ²M⁻¹,
       M = GᵀWG, σ² from the residual.
 
-    With a spread and J ≥ 4, the residual sum of squares Q = Σ_jk w_j r_jk²
-    is compared with what the spread alone predicts,
-    E[Q] = Σ_k Σ_j w_j Σ_l (I − H)²_jl (C_l)_kk with H = G A; only the excess
-    τ² = max(0, ⟨Q⟩ − ⟨E[Q]⟩) / (3(J − 3)), both pooled over the voxels
+    With a spread and J ≥ 4, each column k of D (the gradient along axis k,
+    a regression of its own with one variance per response: Johnson &
+    Wichern, Applied Multivariate Statistical Analysis, 6th ed., 2007, §7.7,
+    from memory) has its residual sum of squares Q_k = Σ_j w_j r_jk²
+    compared with what the spread alone predicts,
+    E[Q_k] = Σ_j w_j Σ_l (I − H)²_jl (C_l)_kk with H = G A; only the excess
+    τ_k² = max(0, ⟨Q_k⟩ − ⟨E[Q_k]⟩) / (J − 3), both pooled over the voxels
     around (Gaussian weights, σ = ``POOL_SIGMA`` voxels), is added as an
-    extra variance τ²M⁻¹ of the least-squares kind: the method-of-moments
+    extra variance Var(D_ik) += τ_k² (M⁻¹)_ii of the least-squares kind: the method-of-moments
     estimate of an extra variance component (DerSimonian & Laird, Control.
     Clin. Trials 7, 177, 1986, there between studies, here between
     reflections). So noise seen by both is not counted twice, and a misfit
