@@ -9,6 +9,15 @@ from braggstrain.strain.spread import reconstruction_covariance
 
 H = 40.0  # Å
 SHAPE = (24, 24, 24)
+S = 0.02  # rad: the replicas' phase noise per voxel
+# the central difference (φ(r+h) − φ(r−h))/(2h) of independent noise S has
+# variance 2S²/(2h)² (the variance of a difference of independent variables is
+# the sum of theirs; Bevington & Robinson, Data Reduction and Error Analysis,
+# 3rd ed., 2003, eq. 3.13, from memory), and no covariance between axes
+NOISE = 2 * S**2 / (2 * H) ** 2
+INNER = np.zeros(SHAPE, bool)
+INNER[5:-5, 5:-5, 5:-5] = True
+OFFSET = np.array([2e-4, -1e-4, 3e-4])  # rad/Å
 
 
 def _case(rng, offset):
@@ -23,28 +32,21 @@ def _case(rng, offset):
     return support, base, recon
 
 
+def _replicas(rng, base, n=40):
+    return [(base * np.exp(1j * rng.normal(0, S, SHAPE))).astype(np.complex64) for _ in range(n)]
+
+
 def test_replicas_and_the_offset_from_the_baseline():
-    # C = C_replicas + δδᵀ. Replicas: independent phase noise s per voxel, so
-    # the central difference (φ(r+h) − φ(r−h))/(2h) has variance 2s²/(2h)²
-    # (the variance of a difference of independent variables is the sum of
-    # theirs; Bevington & Robinson, Data Reduction and Error Analysis, 3rd ed.,
-    # 2003, eq. 3.13, from memory), and no covariance between axes. δ is the
-    # constant gradient offset of the reconstruction.
+    # C = C_replicas + δδᵀ, δ the constant gradient offset of the reconstruction
     rng = np.random.default_rng(3)
-    offset = np.array([2e-4, -1e-4, 3e-4])
-    support, base, recon = _case(rng, offset)
-    s = 0.02
-    reps = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(40)]
-    C, parts = reconstruction_covariance(recon, H, support, replicas=reps, baseline=base)
-    inner = np.zeros(SHAPE, bool)
-    inner[5:-5, 5:-5, 5:-5] = True
-    noise = 2 * s**2 / (2 * H) ** 2
+    support, base, recon = _case(rng, OFFSET)
+    C, parts = reconstruction_covariance(recon, H, support, replicas=_replicas(rng, base), baseline=base)
     for a in range(3):
         for b in range(3):
-            want = offset[a] * offset[b] + (noise if a == b else 0.0)
-            got = float(np.mean(C[a, b][inner]))
+            want = OFFSET[a] * OFFSET[b] + (NOISE if a == b else 0.0)
+            got = float(np.mean(C[a, b][INNER]))
             # 40 replicas over 2744 voxels: measured within 1.2 % of the noise variance
-            assert got == pytest.approx(want, rel=0.05, abs=0.05 * noise), (a, b, got, want)
+            assert got == pytest.approx(want, rel=0.05, abs=0.05 * NOISE), (a, b, got, want)
     assert any("Poisson replicas" in p and "offset" in p for p in parts)
 
 
@@ -55,21 +57,16 @@ def test_the_offset_counts_only_beyond_the_runs_spread():
     # (method of moments, DerSimonian & Laird 1986). Identical runs explain
     # nothing (f = 1); runs whose spread exceeds the offset explain it all (f = 0).
     rng = np.random.default_rng(6)
-    offset = np.array([2e-4, -1e-4, 3e-4])
-    support, base, recon = _case(rng, offset)
-    s = 0.02
-    reps = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(40)]
-    inner = np.zeros(SHAPE, bool)
-    inner[5:-5, 5:-5, 5:-5] = True
-    noise = 2 * s**2 / (2 * H) ** 2
+    support, base, recon = _case(rng, OFFSET)
+    reps = _replicas(rng, base)
     same, _ = reconstruction_covariance(recon, H, support, runs=[recon, recon], replicas=reps, baseline=base)
-    assert float(np.mean(same[2, 2][inner])) == pytest.approx(offset[2] ** 2 + noise, rel=0.05)
+    assert float(np.mean(same[2, 2][INNER])) == pytest.approx(OFFSET[2] ** 2 + NOISE, rel=0.05)
     wide = [(recon * np.exp(1j * rng.normal(0, 0.2, SHAPE))).astype(np.complex64) for _ in range(2)]
     # the runs' spread (variance of the mean of K = 2) dwarfs |δ|²
-    assert np.mean(np.trace(_cov(wide))[inner]) / 2 > 10 * np.sum(offset ** 2)
+    assert np.mean(np.trace(_cov(wide))[INNER]) / 2 > 10 * np.sum(OFFSET ** 2)
     C, _ = reconstruction_covariance(recon, H, support, runs=wide, replicas=reps, baseline=base)
     no_dd, _ = reconstruction_covariance(recon, H, support, runs=wide, replicas=reps, baseline=recon)
-    np.testing.assert_allclose(C[:, :, inner], no_dd[:, :, inner], rtol=1e-6)
+    np.testing.assert_allclose(C[:, :, INNER], no_dd[:, :, INNER], rtol=1e-6)
 
 
 def _cov(samples):
@@ -83,14 +80,10 @@ def test_runs_enter_as_the_variance_of_their_mean():
     # C_runs/K: the variance of the mean of K observations (JCGM 100:2008, §4.2.3)
     rng = np.random.default_rng(4)
     support, base, _ = _case(rng, np.zeros(3))
-    s = 0.02
-    runs = [(base * np.exp(1j * rng.normal(0, s, SHAPE))).astype(np.complex64) for _ in range(30)]
+    runs = _replicas(rng, base, 30)
     C, parts = reconstruction_covariance(base, H, support, runs=runs)
-    inner = np.zeros(SHAPE, bool)
-    inner[5:-5, 5:-5, 5:-5] = True
-    want = 2 * s**2 / (2 * H) ** 2 / len(runs)
     for a in range(3):
-        assert float(np.mean(C[a, a][inner])) == pytest.approx(want, rel=0.05)
+        assert float(np.mean(C[a, a][INNER])) == pytest.approx(NOISE / len(runs), rel=0.05)
     assert parts == ["the spread of the 30 kept random starts (variance of their mean)"]
 
 
