@@ -20,7 +20,7 @@ INNER[5:-5, 5:-5, 5:-5] = True
 OFFSET = np.array([2e-4, -1e-4, 3e-4])  # rad/Å
 
 
-def _case(rng, offset):
+def _case(offset):
     """A smooth object; the reconstruction carries a constant gradient offset
     (rad/Å per axis) relative to the baseline."""
     x = np.indices(SHAPE).astype(float) * H
@@ -39,7 +39,7 @@ def _replicas(rng, base, n=40):
 def test_replicas_and_the_offset_from_the_baseline():
     # C = C_replicas + δδᵀ, δ the constant gradient offset of the reconstruction
     rng = np.random.default_rng(3)
-    support, base, recon = _case(rng, OFFSET)
+    support, base, recon = _case(OFFSET)
     C, parts = reconstruction_covariance(recon, H, support, replicas=_replicas(rng, base), baseline=base)
     for a in range(3):
         for b in range(3):
@@ -57,7 +57,7 @@ def test_the_offset_counts_only_beyond_the_runs_spread():
     # (method of moments, DerSimonian & Laird 1986). Identical runs explain
     # nothing (f = 1); runs whose spread exceeds the offset explain it all (f = 0).
     rng = np.random.default_rng(6)
-    support, base, recon = _case(rng, OFFSET)
+    support, base, recon = _case(OFFSET)
     reps = _replicas(rng, base)
     same, _ = reconstruction_covariance(recon, H, support, runs=[recon, recon], replicas=reps, baseline=base)
     assert float(np.mean(same[2, 2][INNER])) == pytest.approx(OFFSET[2] ** 2 + NOISE, rel=0.05)
@@ -79,7 +79,7 @@ def _cov(samples):
 def test_runs_enter_as_the_variance_of_their_mean():
     # C_runs/K: the variance of the mean of K observations (JCGM 100:2008, §4.2.3)
     rng = np.random.default_rng(4)
-    support, base, _ = _case(rng, np.zeros(3))
+    support, base, _ = _case(np.zeros(3))
     runs = _replicas(rng, base, 30)
     C, parts = reconstruction_covariance(base, H, support, runs=runs)
     for a in range(3):
@@ -89,7 +89,7 @@ def test_runs_enter_as_the_variance_of_their_mean():
 
 def test_nothing_to_estimate_from_gives_none_and_replicas_need_a_baseline():
     rng = np.random.default_rng(5)
-    support, base, recon = _case(rng, np.zeros(3))
+    support, base, recon = _case(np.zeros(3))
     assert reconstruction_covariance(recon, H, support, runs=[base]) == (None, [])
     with pytest.raises(InputError, match="baseline"):
         reconstruction_covariance(recon, H, support, replicas=[base, base])
