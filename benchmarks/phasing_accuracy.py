@@ -74,15 +74,10 @@ def gap_mask(n):
 
 
 def gaussian_coherence_kernel(sigmas, rotvec=(0.0, 0.0, 0.0), half_width=6):
-    """Normalised Gaussian exp(-q^T C^-1 q / 2), C = R diag(sigma^2) R^T."""
-    from braggstrain.geometry.rotation import rotation_from_rotvec
+    """The simulator's Gaussian coherence function (:func:`braggstrain.simulate.forward.gaussian_coherence_kernel`)."""
+    from braggstrain.simulate.forward import gaussian_coherence_kernel as kernel
 
-    R = rotation_from_rotvec(np.asarray(rotvec, float))
-    C = R @ np.diag(np.broadcast_to(np.asarray(sigmas, float), (3,)) ** 2) @ R.T
-    d = np.arange(-half_width, half_width + 1)
-    g = np.stack(np.meshgrid(d, d, d, indexing="ij"), -1).astype(float)
-    k = np.exp(-0.5 * np.einsum("...i,ij,...j->...", g, np.linalg.inv(C), g))
-    return k / k.sum()
+    return kernel(sigmas, rotvec, half_width)
 
 
 def main(argv=None):
@@ -140,7 +135,8 @@ def main(argv=None):
         ratios = []
         for s in range(args.seeds):
             counts = np.random.default_rng(100 + s).poisson(clean * scale).astype(np.float64)
-            res = ensemble(counts, mask, runs=args.runs, keep=args.keep, seed=s, threads=args.threads)
+            res = ensemble(counts, mask, runs=args.runs, keep=args.keep, seed=s, threads=args.threads,
+                           coherence=False)
             floor_run = reconstruct(counts, mask, start=remove_phase_ramp(truth, res.ramp),
                                     plan=default_plan()[2:], seed=s, threads=args.threads)
             floor = err(floor_run.obj, floor_run.ramp, truth)
@@ -158,15 +154,15 @@ def main(argv=None):
         else:  # --blur 0: the coherent data, for comparison
             blurred = clean
         if args.ensemble:
-            for coherence in (False, True):
+            for coherence in (False, True, "auto"):
                 res = ensemble(blurred, mask, runs=args.runs, keep=args.keep, seed=1,
                                coherence=coherence, threads=args.threads)
                 e = err(res.obj, res.ramp)
                 widths = ("" if res.coherence_widths is None else
                           " kernel widths " + ", ".join(f"{w:.2f}" for w in res.coherence_widths))
                 print(f"ensemble coherence={coherence}: complex error {e:.4f}, support "
-                      f"{int(res.support.sum())}, kept {res.kept}, outliers {sorted(res.outliers)}"
-                      f"{widths}", flush=True)
+                      f"{int(res.support.sum())}, model {res.coherence_model}, kept {res.kept}, outliers "
+                      f"{sorted(res.outliers)}{widths}", flush=True)
             return 0
         for coherence in (False, True):
             for s in range(args.seeds):

@@ -181,6 +181,11 @@ SCHEMA = _Table(
         fixed_angles=_Spec(dict, {}),
         peak_pixel=_Spec(list, None, check=_vec(2)),
         supersample=_Spec(int, 2, check=_positive),
+        coherence_sigma=_Spec(list, None, check=_vec(3, positive=True),
+                              doc="Gaussian partial-coherence blur of the intensity before counting, voxels "
+                                  "along frame, row, column"),
+        coherence_rotation=_Spec(list, None, check=_vec(3),
+                                 doc="rotation vector (rad) of that blur's axes from the array axes"),
         truth_voxel_nm=_Spec(NUM, 10.0, check=_positive),
         truth_shape=_Spec(list, [48, 48, 48], check=_vec(3, int, positive=True)),
         shape=_Table(

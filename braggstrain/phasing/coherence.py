@@ -22,7 +22,11 @@ import scipy.fft
 
 from braggstrain.errors import InputError
 
-__all__ = ["CoherenceSettings", "CoherenceModel", "kernel_sigma", "kernel_principal_widths",
+#: The value of ``coherence`` that chooses the model per reflection.
+AUTO = "auto"
+
+__all__ = ["AUTO", "CoherenceSettings", "choose_model", "kernel_covariance", "kernel_in_q",
+           "coherence_disagreements", "CoherenceModel", "kernel_sigma", "kernel_principal_widths",
            "gaussian_kernel"]
 
 
@@ -47,6 +51,11 @@ class CoherenceSettings:
         Impose gamma(q) = gamma(-q) after each update (the coherence function
         of a beam with a real, even mutual coherence; common practice, no
         source).
+    choose : bool
+        (:func:`~braggstrain.phasing.ensemble` only) Run the random starts
+        without the model and half as many more with it, and keep the model
+        whose best run explains the held-out voxels clearly better (see
+        :func:`choose_model`); ``coherence = "auto"`` sets it.
     """
 
     half_width: int = 4
@@ -55,21 +64,28 @@ class CoherenceSettings:
     rl_iterations: int = 10
     symmetric: bool = True
 
+    choose: bool = False
+
     @classmethod
     def from_value(cls, value):
-        """None/False -> None; True -> defaults; dict or CoherenceSettings -> settings."""
+        """None/False -> None; True -> defaults; ``"auto"`` -> defaults chosen per
+        ensemble; dict or CoherenceSettings -> settings."""
         if value is None or value is False:
             return None
         if value is True:
             return cls()
+        if isinstance(value, str) and value.lower() == AUTO:
+            return cls(choose=True)
         if isinstance(value, cls):
             return value
         if isinstance(value, dict):
-            allowed = {"half_width", "initial_sigma", "start", "rl_iterations", "symmetric"}
+            allowed = {"half_width", "initial_sigma", "start", "rl_iterations", "symmetric", "choose"}
             bad = set(value) - allowed
             if bad:
                 raise InputError(f"coherence: unknown key(s) {sorted(bad)}; known: {sorted(allowed)}")
             s = cls(**value)
+            if not isinstance(s.choose, bool):
+                raise InputError(f"coherence.choose: expected true or false, got {s.choose!r}")
             if not (isinstance(s.half_width, int) and 1 <= s.half_width <= 16):
                 raise InputError(f"coherence.half_width: expected an integer in 1..16, got {s.half_width!r}")
             if not (isinstance(s.rl_iterations, int) and s.rl_iterations >= 1):
@@ -81,7 +97,8 @@ class CoherenceSettings:
                 raise InputError(f"coherence.initial_sigma: expected a width in (0, half_width] "
                                  f"voxels, got {s.initial_sigma!r}")
             return s
-        raise InputError(f"coherence: expected true/false or a table of settings, got {value!r}")
+        raise InputError(f"coherence: expected true, false, \"{AUTO}\" or a table of settings, "
+                         f"got {value!r}")
 
 
 def gaussian_kernel(sigma, half_width):
@@ -131,6 +148,12 @@ def kernel_principal_widths(kernel):
         with ``widths[i]``), components along array axes 0, 1, 2; the sign
         of each is chosen so that its largest component is positive.
     """
+    return _principal(kernel_covariance(kernel))
+
+
+def kernel_covariance(kernel):
+    """Covariance matrix (voxels², array axes) of a non-negative kernel centred
+    at index k//2: C = sum k(q) (q - m)(q - m)^T over the normalised kernel."""
     k = np.asarray(kernel, dtype=float)
     if k.ndim != 3 or not np.all(np.isfinite(k)) or k.sum() <= 0 or np.any(k < 0):
         raise InputError(f"kernel: expected a non-negative 3-D array with a positive sum, "
@@ -141,7 +164,12 @@ def kernel_principal_widths(kernel):
     w = k.ravel()
     mean = d @ w
     d = d - mean[:, None]
-    cov = (d * w) @ d.T
+    return (d * w) @ d.T
+
+
+def _principal(cov):
+    """Standard deviations (largest first) and unit axes (columns, largest
+    component positive) of a covariance matrix."""
     vals, vecs = np.linalg.eigh(cov)
     order = np.argsort(vals)[::-1]
     vals = np.clip(vals[order], 0.0, None)
@@ -245,3 +273,140 @@ class CoherenceModel:
     def sigma(self):
         """Kernel width (standard deviation, voxels) along each axis."""
         return kernel_sigma(self.kernel)
+
+
+#: The partial-coherence model is chosen only when its best run's free negative
+#: log-likelihood per held-out voxel is below the coherent model's best by more
+#: than this fraction of the coherent one (common practice, no source; measured
+#: in docs/phasing.md, "Choosing the model").
+CHOICE_MARGIN = 0.5
+
+
+def choose_model(coherent_best, partial_best, margin=CHOICE_MARGIN):
+    """``"partial"`` or ``"coherent"``: the model that explains held-out voxels better.
+
+    Parameters
+    ----------
+    coherent_best, partial_best : float
+        The lowest free negative log-likelihood per held-out voxel (or, with no
+        held-out voxels, per measured voxel) among the successful runs of each
+        model; NaN when the model has no successful run.
+    margin : float
+        The partial model must be lower by more than ``margin`` times the
+        coherent one: the extra freedom of a kernel must buy a clear gain.
+
+    The held-out voxels never enter the modulus constraint, so their
+    likelihood compares models of different freedom fairly (Thibault &
+    Guizar-Sicairos, New J. Phys. 14, 063004 (2012), who use it to detect
+    overfitting).
+    """
+    c, p = float(coherent_best), float(partial_best)
+    if not np.isfinite(p):
+        return "coherent"
+    if not np.isfinite(c):
+        return "partial"
+    return "partial" if p < c - margin * abs(c) else "coherent"
+
+
+def kernel_in_q(kernel, q_basis, spread=None):
+    """A kernel estimated on a reciprocal grid, in Å⁻¹ and as coherence lengths.
+
+    The kernel's covariance in array axes, C (voxels²), becomes
+    C_q = B C B^T in the frame of ``q_basis`` (the covariance of a linear map
+    of a random vector), whose eigen-decomposition gives the widths σ_q
+    (standard deviations, Å⁻¹) along its principal axes.  A Gaussian kernel
+    exp(-q^T C_q^-1 q / 2) is the Fourier transform of the Gaussian degree
+    of coherence exp(-r^T C_q r / 2) across the sample (the Fourier pair of
+    Gaussians, e.g. Bracewell, The Fourier Transform and Its Applications,
+    3rd ed., and Clark et al., Nat. Commun. 3, 993 (2012), for the
+    measured intensity as the coherent one convolved with that transform),
+    so along the same axes the coherence length, the standard deviation of
+    the degree of coherence, is ξ = 1/σ_q.  For a kernel that is not a
+    Gaussian these are the widths of the Gaussian of the same covariance.
+
+    Parameters
+    ----------
+    kernel : ndarray (k0, k1, k2)
+        Non-negative kernel, centred at index k//2, axes those of the array
+        it was estimated on.
+    q_basis : (3, 3) float
+        Q change per index step along each array axis (columns), Å⁻¹ (2π
+        included), in the frame the widths are wanted in (the sample frame).
+    spread : (3,) float, optional
+        Spread (standard deviation over runs) of the principal widths in
+        voxels, converted with the same scale as each width.
+
+    Returns
+    -------
+    dict
+        ``widths`` (3,) Å⁻¹ largest first, ``axes`` (3, 3) unit vectors as
+        columns in the frame of ``q_basis``, ``lengths`` (3,) Å (1/widths,
+        inf for a zero width: no blur resolved), ``spread`` (3,) Å⁻¹ or None,
+        ``widths_voxels`` (3,) (principal widths in voxels of the grid).
+    """
+    B = np.asarray(q_basis, dtype=float)
+    if B.shape != (3, 3) or not np.all(np.isfinite(B)) or abs(np.linalg.det(B)) <= 0:
+        raise InputError(f"q_basis: expected an invertible 3x3 matrix of Å⁻¹ per index step, got {B!r}")
+    cov = kernel_covariance(kernel)
+    widths, axes = _principal(B @ cov @ B.T)
+    w_vox = _principal(cov)[0]
+    with np.errstate(divide="ignore"):
+        lengths = np.where(widths > 0, 1.0 / np.where(widths > 0, widths, 1.0), np.inf)
+    out = {"widths": widths, "axes": axes, "lengths": lengths, "widths_voxels": w_vox, "spread": None}
+    if spread is not None:
+        step = float(np.prod(np.linalg.norm(B, axis=0)) ** (1 / 3))  # Å⁻¹ per voxel, geometric mean
+        sv = np.asarray(spread, float).reshape(3)
+        scale = np.where(w_vox > 0, widths / np.where(w_vox > 0, w_vox, 1.0), step)
+        out["spread"] = sv * scale
+    return out
+
+
+#: Two reflections' coherence widths agree when they differ by at most this many
+#: times their combined spread (common practice, no source) ...
+DISAGREEMENT_SIGMAS = 3.0
+#: ... with a spread never taken below this fraction of a voxel of the
+#: reciprocal grid (what one Richardson-Lucy estimate resolves; common
+#: practice, no source).
+WIDTH_FLOOR_VOXELS = 0.1
+
+
+def coherence_disagreements(widths, spreads, floors):
+    """Reflections whose coherence widths disagree with the others' beyond the spread.
+
+    Parameters
+    ----------
+    widths : (R, 3) float
+        Principal widths of each reflection's kernel, Å⁻¹, largest first.
+    spreads : (R, 3) float
+        Their spreads (standard deviation over the kept runs), Å⁻¹.
+    floors : (R,) float
+        The smallest spread to assume per reflection, Å⁻¹
+        (``WIDTH_FLOOR_VOXELS`` of its q step).
+
+    Returns
+    -------
+    list of str
+        One message per reflection, empty when it agrees: a width differs from
+        the median of the reflections by more than ``DISAGREEMENT_SIGMAS``
+        times the root sum of squares of its spread and the spread of the
+        median (the median absolute deviation scaled to a standard deviation,
+        1.4826 MAD, for Gaussian data: Rousseeuw & Croux, JASA 88, 1273
+        (1993)).  With fewer than three reflections no median is robust and
+        every message is empty.
+    """
+    w = np.asarray(widths, float).reshape(-1, 3)
+    s = np.maximum(np.asarray(spreads, float).reshape(-1, 3), np.asarray(floors, float).reshape(-1, 1))
+    out = [""] * len(w)
+    if len(w) < 3:
+        return out
+    med = np.median(w, axis=0)
+    mad = 1.4826 * np.median(np.abs(w - med), axis=0)
+    for j in range(len(w)):
+        tol = DISAGREEMENT_SIGMAS * np.sqrt(s[j] ** 2 + np.maximum(mad, np.median(s, axis=0)) ** 2)
+        bad = np.abs(w[j] - med) > tol
+        if bad.any():
+            i = int(np.argmax(np.abs(w[j] - med) / tol))
+            out[j] = (f"principal width {i + 1} is {w[j, i]:.3g} Å⁻¹ against a median of {med[i]:.3g} "
+                      f"over the reflections (tolerance {tol[i]:.2g} Å⁻¹, {DISAGREEMENT_SIGMAS:g}× the "
+                      f"combined spread)")
+    return out

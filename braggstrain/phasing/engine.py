@@ -684,7 +684,8 @@ def reconstruct(intensity, mask=None, *, support=None, start=None, plan=None, se
     coherence : bool or dict or CoherenceSettings
         Switch on the partial-coherence model (Clark et al. 2012): the
         coherence function is estimated by Richardson-Lucy during stages with
-        ``coherence_update``.  Off by default.
+        ``coherence_update``.  Off by default (``"auto"``, the choice between
+        the models, needs the runs of :func:`~braggstrain.phasing.ensemble`).
     background : None, "fit" or float
         Flat background per voxel in counts: None means none, a number is
         used as given, ``"fit"`` estimates it by maximum likelihood during the
@@ -735,6 +736,9 @@ def reconstruct(intensity, mask=None, *, support=None, start=None, plan=None, se
     seed = _as_seed(seed)
     opts = _options(coherence, background, threads, fft_backend, remove_ramp, center, progress,
                     fft_effort)
+    if opts.coherence is not None and opts.coherence.choose:
+        raise InputError("coherence: 'auto' chooses between the coherent and the partial-coherence "
+                         "model over the random starts of an ensemble; one run needs true or false")
     if start is not None and support is None:
         support = np.asarray(start) != 0
     data = _prepare(intensity, mask, support, seed, free_fraction, initial_threshold, opts.threads)

@@ -12,6 +12,7 @@ the default local pool therefore give bit-identical objects.
 
 from __future__ import annotations
 
+import dataclasses
 import multiprocessing
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
@@ -20,12 +21,12 @@ import numpy as np
 
 from braggstrain.errors import InputError, PhasingError
 from braggstrain.phasing import kernels as _k
-from braggstrain.phasing.coherence import kernel_principal_widths
+from braggstrain.phasing.coherence import AUTO, choose_model, kernel_principal_widths
 from braggstrain.phasing.engine import (Metrics, Reconstruction, _as_seed, _options, _prepare, _run, _stages)
 from braggstrain.phasing.fft import DEFAULT_EFFORT, FFTBackend, adopt_wisdom, default_threads, export_wisdom
 from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
-__all__ = ["ensemble", "EnsembleResult", "RunSummary", "RANKING_METRICS", "DEFAULT_METRIC", "METRIC_LABELS",
+__all__ = ["ensemble", "partial_runs", "EnsembleResult", "RunSummary", "RANKING_METRICS", "DEFAULT_METRIC", "METRIC_LABELS",
            "metric_label",
            "worker_pool", "DEFAULT_RUNS", "DEFAULT_KEEP"]
 
@@ -153,6 +154,18 @@ class EnsembleResult:
         Standard deviation of the principal widths over the kept runs: the
         estimate's own spread, against which estimates from other
         reflections measured with the same beam can be compared.
+        When ``coherence="auto"`` chose the coherent model, the kernel is a
+        delta, its widths and spread zero.
+    coherence_model : str
+        ``"partial"`` when the kept runs model partial coherence, else
+        ``"coherent"``.
+    coherence_choice : dict
+        With ``coherence="auto"``: ``metric`` (the likelihood compared),
+        ``coherent`` and ``partial`` (the best run of each model by it, NaN
+        without a successful run), ``runs`` ({"coherent": [...], "partial":
+        [...]} run indices), ``partial_widths`` (principal widths, voxels, of
+        the mean kernel of the best partial runs, NaN without any) and
+        ``model``; empty otherwise.
     kept_objects : complex64 (K, n0, n1, n2)
         The kept runs themselves, aligned to the best one (their spread is
         part of the error bars, see :mod:`braggstrain.strain.tensor`).
@@ -175,6 +188,8 @@ class EnsembleResult:
     coherence_axes: np.ndarray | None = None
     coherence_widths_spread: np.ndarray | None = None
     kept_objects: np.ndarray | None = None
+    coherence_model: str = "coherent"
+    coherence_choice: dict = field(default_factory=dict)
 
 
 def _task(args):
@@ -271,24 +286,62 @@ def _outliers(ranked, metric):
     return out
 
 
+def partial_runs(runs):
+    """Random starts of the partial-coherence model that ``coherence="auto"``
+    adds to the ``runs`` of the coherent model: half as many, at least one."""
+    return max(1, int(runs) // 2)
+
+
+def _choose_model(good, has_free, keep):
+    """Split the successful runs of a ``coherence="auto"`` ensemble by the model
+    :func:`~braggstrain.phasing.coherence.choose_model` picks: (chosen runs,
+    the others, the record of the choice)."""
+    metric = "free_nll" if has_free else "nll"
+    plain = [r for r in good if r.coherence_kernel is None]
+    partial = [r for r in good if r.coherence_kernel is not None]
+
+    def best(rs):
+        v = [r.metrics.get(metric) for r in rs]
+        v = [x for x in v if np.isfinite(x)]
+        return float(min(v)) if v else float("nan")
+
+    model = choose_model(best(plain), best(partial))
+    top = sorted(partial, key=lambda r: (np.isnan(r.metrics.get(metric)), r.metrics.get(metric)))[:keep]
+    partial_widths = (kernel_principal_widths(np.mean([r.coherence_kernel for r in top], axis=0))[0]
+                      if top else np.full(3, np.nan))
+    choice = {"metric": metric, "coherent": best(plain), "partial": best(partial), "model": model,
+              "runs": {"coherent": [r.run for r in plain], "partial": [r.run for r in partial]},
+              "partial_widths": partial_widths}
+    return (partial, plain, choice) if model == "partial" else (plain, partial, choice)
+
+
 def _align_support(sup, info):
     s = twin(sup.astype(np.complex64)).real > 0.5 if info["twin"] else sup
     return np.roll(s, tuple(int(round(v)) for v in info["shift"]), axis=(0, 1, 2))
 
 
 def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan=None, seed=None, executor=None,
-             progress=False, metric=DEFAULT_METRIC, threads=1, coherence=False, background=None,
+             progress=False, metric=DEFAULT_METRIC, threads=1, coherence=AUTO, background=None,
              free_fraction=0.03, fft_backend="auto", fft_effort=DEFAULT_EFFORT,
              initial_threshold=0.04, remove_ramp=True, center=True) -> EnsembleResult:
     """Independent random starts, ranked, aligned and averaged.
 
     Parameters
     ----------
-    intensity, mask, plan, coherence, background, free_fraction, fft_backend,
+    intensity, mask, plan, background, free_fraction, fft_backend,
     fft_effort, initial_threshold, remove_ramp, center
         As for :func:`~braggstrain.phasing.reconstruct`.
+    coherence : "auto" (default), bool, dict or CoherenceSettings
+        ``"auto"`` (or settings with ``choose``): the ``runs`` random starts
+        use the coherent model and :func:`partial_runs` more the
+        partial-coherence one, and the model whose best run fits the
+        held-out voxels clearly better is kept
+        (:func:`~braggstrain.phasing.coherence.choose_model`); its runs alone
+        are ranked, averaged and reported, the other model's are listed in
+        ``outliers``.  True (or settings) uses the partial model in every
+        run, False the coherent one (and then ``runs`` starts only).
     runs : int
-        Number of random starts.
+        Number of random starts (of the coherent model with ``"auto"``).
     keep : int
         Number of best runs averaged (at most the number of successful runs).
     seed : int, optional
@@ -342,11 +395,16 @@ def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan
                effort=opts.fft_effort).real_buffer
     wisdom = export_wisdom() if opts.fft_effort != "FFTW_ESTIMATE" else None
     _k.warm_up()
-    tasks = [(data, stages, opts, r, wisdom) for r in range(runs)]
+    choose = opts.coherence is not None and opts.coherence.choose
+    # With the choice, runs 0 .. runs-1 are the coherent model's (the very runs
+    # coherence=False makes) and partial_runs(runs) more the partial model's.
+    n_total = runs + partial_runs(runs) if choose else runs
+    plain_opts = dataclasses.replace(opts, coherence=None) if choose else opts
+    tasks = [(data, stages, plain_opts if r < runs else opts, r, wisdom) for r in range(n_total)]
 
     own_pool = None
     if executor is None:
-        workers = min(runs, default_threads())
+        workers = min(n_total, default_threads())
         if workers > 1:
             own_pool = worker_pool(workers)
             executor = own_pool
@@ -357,7 +415,7 @@ def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan
         if progress:
             from tqdm import tqdm
 
-            raw = tqdm(raw, total=runs, unit="run", desc="phasing runs")
+            raw = tqdm(raw, total=n_total, unit="run", desc="phasing runs")
         results = _collect(executor, raw)
     finally:
         if own_pool is not None:
@@ -375,8 +433,16 @@ def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan
         v = r.metrics.get(metric)
         return (np.isnan(v), -v if higher else v)
 
+    choice = {}
+    others = []
+    if choose:
+        good, others, choice = _choose_model(good, data.free_idx.size > 0, keep)
     ranked = sorted(good, key=score)
     outliers = _outliers(ranked, metric)
+    for r in others:
+        outliers[r.run] = (f"the {'coherent' if r.coherence_kernel is None else 'partial-coherence'} "
+                           f"model was not chosen ({choice['metric']}: coherent "
+                           f"{choice['coherent']:.6g}, partial {choice['partial']:.6g})")
     usable = [r for r in ranked if r.run not in outliers] or ranked[:1]
     kept = usable[:keep]
     ref = kept[0]
@@ -401,9 +467,17 @@ def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan
         kernel = np.mean([r.coherence_kernel for r in kept], axis=0)
         widths, axes = kernel_principal_widths(kernel)
         coh = dict(coherence_kernel=kernel, coherence_widths=widths, coherence_axes=axes,
-                   coherence_widths_spread=np.std([r.coherence_widths for r in kept], axis=0))
-    return EnsembleResult(**coh, obj=avg, support=support, runs=summaries,
-                          ranking=[r.run for r in ranked], kept=[r.run for r in kept],
+                   coherence_widths_spread=np.std([r.coherence_widths for r in kept], axis=0),
+                   coherence_model="partial")
+    elif choose:  # the coherent model won: its coherence function is a delta
+        w = opts.coherence.half_width
+        kernel = np.zeros((2 * w + 1,) * 3)
+        kernel[w, w, w] = 1.0
+        coh = dict(coherence_kernel=kernel, coherence_widths=np.zeros(3), coherence_axes=np.eye(3),
+                   coherence_widths_spread=np.zeros(3))
+    return EnsembleResult(**coh, coherence_choice=choice, obj=avg, support=support, runs=summaries,
+                          ranking=[r.run for r in ranked + sorted(others, key=score)],
+                          kept=[r.run for r in kept],
                           outliers=outliers,
                           alignment=infos, prtf=trf, best=ref, metric=metric, seed=seed,
                           ramp=ref.ramp, kept_objects=np.stack(aligned).astype(np.complex64))

@@ -22,7 +22,7 @@ from __future__ import annotations
 import numbers
 from dataclasses import asdict, dataclass, fields
 
-from braggstrain.errors import ConfigError, did_you_mean
+from braggstrain.errors import ConfigError, InputError, did_you_mean
 
 __all__ = [
     "PhasingStage",
@@ -263,7 +263,8 @@ def plan_to_config(plan) -> list[dict]:
 # Keyword options of reconstruct/ensemble that a pipeline file may set.
 OPTION_KEYS = {
     "plan": "list of stages",
-    "coherence": "true/false or a table {half_width, rl_iterations, symmetric}",
+    "coherence": ("'auto' (the model chosen per reflection), true/false, or a table {half_width, "
+                  "initial_sigma, start, rl_iterations, symmetric, choose}"),
     "background": "none, 'fit', or a number of counts per voxel",
     "free_fraction": "fraction of measured voxels held out, in [0, 0.2]",
     "threads": "positive integer",
@@ -294,5 +295,12 @@ def options_from_config(table: dict) -> dict:
         if key not in OPTION_KEYS:
             raise ConfigError(f"phasing: unknown key '{key}'{did_you_mean(key, OPTION_KEYS)}; "
                               f"known keys: {', '.join(OPTION_KEYS)}")
+        if key == "coherence":
+            from braggstrain.phasing.coherence import CoherenceSettings
+
+            try:
+                CoherenceSettings.from_value(value)
+            except InputError as exc:
+                raise ConfigError(f"phasing: key {exc}") from None
         out[key] = plan_from_config(value) if key == "plan" else value
     return out

@@ -126,6 +126,8 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
                                     fixed_angles=sim["fixed_angles"], peak_pixel=sim["peak_pixel"],
                                     window=tuple(sim["window"]), peak_counts=sim["peak_counts"] / n_rep,
                                     background=sim["background"], hot_pixels=sim["hot_pixels"],
+                                    coherence_sigma=sim["coherence_sigma"],
+                                    coherence_rotation=sim["coherence_rotation"],
                                     supersample=sim["supersample"], seed=seed + k, bragg_angles=ang)
             if k:
                 scan.frames = np.roll(scan.frames, k, axis=1)

@@ -45,7 +45,7 @@ from braggstrain.strain.objects import SampleObject
 from braggstrain.prepare.scan import PreparedScan, fast_size
 
 __all__ = ["DEFAULT_ROUTE", "ROUTES", "detector_to_sample", "orthogonal_to_sample", "to_sample_frame",
-           "detector_sample_basis", "orthogonal_sample_basis"]
+           "detector_sample_basis", "orthogonal_sample_basis", "reciprocal_sample_basis"]
 
 ROUTES = ("detector", "orthogonal")
 DEFAULT_ROUTE = "detector"
@@ -63,6 +63,26 @@ def orthogonal_sample_basis(gridded):
     orthogonal q grid: diag(2π/(N Δq)), rotated by Rᵀ for a lab-frame grid."""
     T = np.diag(gridded.voxel_size)
     return T if gridded.frame == "sample" else gridded.rotation.T @ T
+
+
+def reciprocal_sample_basis(data):
+    """Q change per index step (Å⁻¹, 2π included; columns along the array
+    axes) in the sample frame, of the array phase retrieval ran on (a
+    :class:`PreparedScan` or a :class:`GriddedIntensity`).
+
+    The inverse relation of the real-space basis: T = 2π B⁻ᵀ diag(1/N)
+    (docs/methods.md) gives B = 2π T⁻ᵀ diag(1/N).
+    """
+    from braggstrain.prepare.regrid import GriddedIntensity
+
+    if isinstance(data, PreparedScan):
+        T = detector_sample_basis(data)
+    elif isinstance(data, GriddedIntensity):
+        T = orthogonal_sample_basis(data)
+    else:
+        raise InputError(f"data: expected a PreparedScan or a GriddedIntensity, got {type(data).__name__}")
+    n = np.asarray(data.intensity.shape, float)
+    return 2 * np.pi * np.linalg.inv(T).T / n[None, :]
 
 
 def _check_recon(recon, shape, what):
