@@ -251,7 +251,29 @@ def _real_voxel(data):
     return float(np.prod(2 * np.pi / (n * np.asarray(data.q_step, float))) ** (1 / 3))
 
 
-def _phase_to_tree(ens, voxel):
+def _coherence_to_tree(ens, q_basis):
+    """The coherence function of one reflection as a checkpoint tree: the
+    ensemble's kernel (voxels of the phasing grid) and, through ``q_basis``
+    (Å⁻¹ per index step, sample frame), its widths in Å⁻¹ and coherence
+    lengths in Å (:func:`braggstrain.phasing.coherence.kernel_in_q`)."""
+    from braggstrain.phasing.coherence import WIDTH_FLOOR_VOXELS, kernel_in_q
+
+    step = float(np.prod(np.linalg.norm(q_basis, axis=0)) ** (1 / 3))
+    out = {"model": ens.coherence_model if ens.coherence_kernel is not None else "off",
+           "floor": WIDTH_FLOOR_VOXELS * step}
+    if ens.coherence_kernel is not None:
+        q = kernel_in_q(ens.coherence_kernel, q_basis, ens.coherence_widths_spread)
+        out.update(kernel=np.asarray(ens.coherence_kernel, float), widths=q["widths"], axes=q["axes"],
+                   lengths=q["lengths"], spread=q["spread"], widths_voxels=q["widths_voxels"])
+    ch = ens.coherence_choice
+    if ch:
+        pw = np.asarray(ch["partial_widths"], float)
+        out["choice"] = {"metric": ch["metric"], "coherent": float(ch["coherent"]),
+                         "partial": float(ch["partial"]), "partial_widths_voxels": pw}
+    return out
+
+
+def _phase_to_tree(ens, voxel, q_basis):
     best = ens.best
     hist = {}
     h = best.history
@@ -277,6 +299,7 @@ def _phase_to_tree(ens, voxel):
     f = np.asarray(pr.q, float)
     res_f = float(pr.resolution) if pr.resolution is not None else np.nan
     return {"obj": ens.obj, "support": ens.support, "ramp": np.asarray(ens.ramp, float),
+            "coherence": _coherence_to_tree(ens, q_basis),
             "kept_objects": ens.kept_objects,
             "runs": runs, "ranking": [int(v) for v in ens.ranking], "kept": [int(v) for v in ens.kept],
             "alignment": plain_tree(ens.alignment), "history": hist, "seed": int(ens.seed), "metric": ens.metric,
@@ -736,15 +759,15 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
             k_phase = hash_inputs("phase", k_data, {k: v for k, v in cfg["phasing"].items()}, runs, keep, seed_j)
             with run.timed("phase"):
                 tree = run.cached("phase", name, k_phase)
-                if tree is not None and "kept_objects" not in tree:
-                    tree = None  # a checkpoint from before the kept runs were stored
+                if tree is not None and ("kept_objects" not in tree or "coherence" not in tree):
+                    tree = None  # a checkpoint from before the kept runs or the coherence were stored
                 if tree is None:
                     say(f"  {name} {h}: phasing {intensity.shape} with {runs} random starts (keep {keep})")
                     t0 = time.perf_counter()
                     ens = ensemble(intensity, mask, runs=runs, keep=keep, seed=seed_j, executor=executor,
                                    progress=progress, **ph_opts)
                     run.phasing_seconds += time.perf_counter() - t0
-                    tree = _phase_to_tree(ens, _real_voxel(data))
+                    tree = _phase_to_tree(ens, _real_voxel(data), frm.reciprocal_sample_basis(data))
                     run.save("phase", name, k_phase, tree)
             # -- sample frame
             k_frame = hash_inputs("frame", k_phase, route, fr_opts, g_ref[j])
@@ -959,12 +982,21 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
     from braggstrain.io.results import ReflectionResult, Results
     from braggstrain.strain.fields import displacement_along_g
 
+    from braggstrain.phasing.coherence import coherence_disagreements
+
     grid = registered[0].grid
     vs = grid.voxel_size
     support = tf.support
     amps = []
     refl = []
-    for p, o in zip(per_refl, registered):
+    # the coherence functions of the reflections: one beam, so they should agree
+    cohs = [dict(p["phase"]["coherence"]) for p in per_refl]
+    with_kernel = [c for c in cohs if "widths" in c]
+    flags = coherence_disagreements([c["widths"] for c in with_kernel],
+                                    [c["spread"] for c in with_kernel], [c["floor"] for c in with_kernel])
+    for c, flag in zip(with_kernel, flags):
+        c["disagreement"] = flag
+    for p, o, coh in zip(per_refl, registered, cohs):
         a = np.abs(o.obj).astype(np.float32)
         med = np.median(a[o.support]) if np.any(o.support) else 1.0
         a = a / (med if med > 0 else 1.0)
@@ -979,9 +1011,9 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
         meta_reg = o.meta.get("registration", {}) if isinstance(o.meta, dict) else {}
         refl.append(ReflectionResult(
             name=p["name"], hkl=tuple(int(v) for v in p["hkl"]), g_vector=o.g_vector, scan=p["scan"],
-            max_counts=float(pr.max_counts), oversampling=np.asarray(pr.oversampling, float), runs=runs,
+            max_counts=float(pr.max_counts), oversampling=np.asarray(pr.oversampling, float), runs=len(t["runs"]),
             kept=len(t["kept"]), run_metrics=t["runs"], ranking_metric=t.get("metric", metric), prtf=t["prtf"],
-            history=t["history"], amplitude=a, phase=ph, displacement=disp, support=o.support,
+            history=t["history"], amplitude=a, phase=ph, displacement=disp, support=o.support, coherence=coh,
             shift_vox=np.asarray(meta_reg.get("shift_voxels", np.zeros(3)), float),
             twin=bool(meta_reg.get("twin", False))))
     return Results(

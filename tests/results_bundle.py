@@ -29,6 +29,26 @@ VS = np.array([10.0, 10.0, 10.0])
 
 
 
+def _coherence(j):
+    """An invented coherence estimate: a Gaussian kernel (the simulator's) on a
+    q grid of 6·10⁻⁴ Å⁻¹ steps; the last reflection kept the coherent model."""
+    from braggstrain.phasing.coherence import kernel_in_q
+
+    if j == 3:
+        k = np.zeros((9, 9, 9))
+        k[4, 4, 4] = 1.0
+        model = "coherent"
+    else:
+        k = fw.gaussian_coherence_kernel((1.0, 0.7, 0.5), (0.2, 0.1, 0.3), half_width=4)
+        model = "partial"
+    q = kernel_in_q(k, np.diag([6e-4, 6e-4, 7e-4]), spread=[0.05, 0.04, 0.03])
+    return dict(model=model, kernel=k, widths=q["widths"], spread=q["spread"], axes=q["axes"],
+                lengths=q["lengths"], widths_voxels=q["widths_voxels"], floor=6e-5,
+                disagreement="principal width 1 is off" if j == 2 else "",
+                choice=dict(metric="free_nll", coherent=3.2, partial=2.4 - 0.1 * j,
+                            partial_widths_voxels=np.array([0.9, 0.6, 0.5])))
+
+
 def _bundle():
     """An invented crystal: 28 nm Pt octahedron, [111] up, one ½[0 1 -1]
     dislocation along [1 -1 0], and a strain gradient under the base."""
@@ -69,7 +89,8 @@ def _bundle():
                          stage=(it >= 200).astype(np.int16), checkpoint=np.arange(0, 300, 50),
                          nll=np.linspace(3.0, 1.0 + 0.2 * j, 6)),
             amplitude=np.abs(o).astype(np.float32), phase=np.angle(o).astype(np.float32),
-            displacement=disp, support=sup, shift_vox=(0.1 * j, -0.2, 0.05), twin=(j == 2)))
+            displacement=disp, support=sup, shift_vox=(0.1 * j, -0.2, 0.05), twin=(j == 2),
+            coherence=_coherence(j)))
     ml = mean_lattice_strain(G * (1 - 1e-3), G, lattice_parameter=3.9242)
     reg = dict(reference=0, shifts_voxels=[x["shift_vox"] for x in refl], twins=[x["twin"] for x in refl],
                overlap=[1.0, 0.97, 0.96, 0.95], twin_decided_by=["reference", "amplitude", "amplitude", "residual"])

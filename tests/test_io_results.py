@@ -28,14 +28,6 @@ from results_bundle import N, VS  # noqa: E402
 DOC = Path(__file__).resolve().parents[1] / "docs" / "results.md"
 
 
-
-
-
-
-
-
-
-
 def _documented_datasets():
     """Dataset paths of the layout table in docs/results.md."""
     text = DOC.read_text(encoding="utf-8")
@@ -113,6 +105,15 @@ def test_read_results_round_trip(bundle, results_file):
         for k in y["history"]:
             np.testing.assert_array_equal(x.history[k], y["history"][k])
         assert x.twin == y["twin"] and x.max_counts == y["max_counts"]
+        assert set(x.coherence) == set(y["coherence"])
+        for k, v in y["coherence"].items():
+            if k == "choice":
+                assert x.coherence[k]["coherent"] == v["coherent"] and x.coherence[k]["metric"] == v["metric"]
+                np.testing.assert_array_equal(x.coherence[k]["partial_widths_voxels"], v["partial_widths_voxels"])
+            elif isinstance(v, str):
+                assert x.coherence[k] == v
+            else:
+                np.testing.assert_array_equal(x.coherence[k], v, err_msg=k)
     assert len(back.dislocations) == len(bundle["dislocations"]) >= 1
     for d, e in zip(back.dislocations, bundle["dislocations"]):
         np.testing.assert_array_equal(d.points, e.points)

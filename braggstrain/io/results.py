@@ -102,6 +102,20 @@ class ReflectionResult:
         Registration shift, voxels of the common grid.
     twin : bool
         Replaced by its twin at registration.
+    coherence : dict
+        The coherence function estimated from this reflection's data
+        (docs/phasing.md, "Partial coherence"): ``model`` ("coherent",
+        "partial", or "off" when the model was switched off); with a kernel,
+        ``kernel`` (voxels of the phasing grid, unit sum), ``widths`` (Å⁻¹,
+        principal axes, largest first), ``spread`` (Å⁻¹, over the kept runs),
+        ``axes`` (3×3, unit columns, sample frame), ``lengths`` (coherence
+        lengths 1/width, Å, inf where no blur is resolved),
+        ``widths_voxels``, ``floor`` (Å⁻¹) and ``disagreement`` (a message
+        when the widths disagree with the other reflections' beyond the
+        spread, else empty); with the model chosen per reflection,
+        ``choice`` (``metric``, ``coherent``, ``partial``: the best run's
+        free negative log-likelihood of each model; ``partial_widths_voxels``).
+        Empty for files written before it was recorded.
     """
 
     name: str
@@ -122,6 +136,7 @@ class ReflectionResult:
     history: dict = field(default_factory=dict)
     shift_vox: np.ndarray = field(default_factory=lambda: np.zeros(3))
     twin: bool = False
+    coherence: dict = field(default_factory=dict)
 
     def best_run(self):
         """The run the ensemble ranked first, as a row of :attr:`run_metrics` (None without runs).
@@ -448,6 +463,8 @@ def _write_reflection(g, x):
         _dataset(pg, "values", x.prtf["values"], "1 (dimensionless, 0..1)", "shell",
                  "phase-retrieval transfer function per shell (NaN where a shell is empty)",
                  dtype=np.float64, compress=False)
+    if x.coherence:
+        _write_coherence(g.create_group("coherence"), x.coherence)
     hg = g.create_group("history")
     hg.attrs["description"] = "per-iteration metrics of the best run"
     hist = x.history
@@ -464,6 +481,53 @@ def _write_reflection(g, x):
             axes = "entry"
         _dataset(hg, k, v, _HISTORY_UNITS.get(k, "as given by the phasing stage"), axes,
                  f"history of '{k}'", dtype=None)
+
+
+#: Datasets of a reflection's coherence group: units, axes, description.
+_COHERENCE_FIELDS = {
+    "kernel": ("1 (unit sum)", "reciprocal-grid voxels of the phasing array (frame, row, column), centred",
+               "estimated coherence function: the kernel the coherent intensity is convolved with"),
+    "widths": ("Å⁻¹", "principal axis", "standard deviations of the kernel along its principal axes, largest first"),
+    "spread": ("Å⁻¹", "principal axis", "standard deviation of the widths over the kept runs"),
+    "axes": ("1", "sample frame (x, y, z) × principal axis", "principal axes of the kernel, unit columns"),
+    "lengths": ("Å", "principal axis", "coherence lengths 1/width along the principal axes (inf: no blur resolved)"),
+    "widths_voxels": ("voxels", "principal axis", "the widths in voxels of the phasing array's reciprocal grid"),
+}
+
+
+def _write_coherence(g, c):
+    g.attrs["model"] = str(c.get("model", "off"))
+    g.attrs["description"] = ("coherence function estimated from this reflection's data "
+                              "(docs/phasing.md, Partial coherence)")
+    g.attrs["floor"] = float(c.get("floor", np.nan))
+    g.attrs["floor_units"] = "Å⁻¹ (smallest spread assumed when comparing reflections)"
+    g.attrs["disagreement"] = str(c.get("disagreement", ""))
+    for key, (units, axes, desc) in _COHERENCE_FIELDS.items():
+        if c.get(key) is not None:
+            _dataset(g, key, np.asarray(c[key], float), units, axes, desc, dtype=np.float64, compress=False)
+    if c.get("choice"):
+        ch = c["choice"]
+        cg = g.create_group("choice")
+        cg.attrs["description"] = ("the model chosen by the held-out likelihood: the best run of each "
+                                   "model, per held-out voxel (nats)")
+        cg.attrs["metric"] = str(ch["metric"])
+        cg.attrs["coherent"] = float(ch["coherent"])
+        cg.attrs["partial"] = float(ch["partial"])
+        cg.attrs["partial_widths_voxels"] = np.asarray(ch["partial_widths_voxels"], float)
+
+
+def _read_coherence(g):
+    c = {"model": _text(g.attrs.get("model")) or "off", "floor": float(g.attrs.get("floor", np.nan)),
+         "disagreement": _text(g.attrs.get("disagreement"))}
+    for key in _COHERENCE_FIELDS:
+        if key in g:
+            c[key] = g[key][()]
+    if "choice" in g:
+        a = g["choice"].attrs
+        c["choice"] = {"metric": _text(a.get("metric")), "coherent": float(a["coherent"]),
+                       "partial": float(a["partial"]),
+                       "partial_widths_voxels": np.asarray(a["partial_widths_voxels"], float)}
+    return c
 
 
 # --------------------------------------------------------------------------
@@ -649,4 +713,6 @@ def _read_reflection(g, path, legacy_metric=None):
     if "prtf" in g:
         pg = g["prtf"]
         x["prtf"] = {"q": pg["q"][()], "values": pg["values"][()], "resolution": float(pg.attrs["resolution"])}
+    if "coherence" in g:
+        x["coherence"] = _read_coherence(g["coherence"])
     return x

@@ -38,6 +38,7 @@ __all__ = [
     "plot_derived",
     "plot_displacements",
     "plot_prtf",
+    "plot_coherence",
     "plot_histories",
     "plot_runs",
     "make_figures",
@@ -56,6 +57,9 @@ FIGURES = {
     "displacement.png": "Central slices of each reflection's displacement along its G vector, u_G.",
     "dislocations.png": "The crystal's isosurface with the dislocation lines, coloured by character.",
     "prtf.png": "Phase-retrieval transfer function of each reflection against |q|.",
+    "coherence.png": "Central slices of each reflection's estimated coherence function (the kernel the "
+                     "coherent intensity is convolved with), in voxels of its phasing array's reciprocal "
+                     "grid; a single bright voxel is a delta (the coherent model).",
     "history.png": "Per-iteration metrics of the best phasing run of each reflection.",
     "runs.png": "The ranking metric (e.g. free_nll: negative log-likelihood per measured voxel, free: held-out "
                 "voxels) of every random start of each reflection; kept runs filled, failed runs crossed.",
@@ -429,6 +433,40 @@ def plot_prtf(results, path=None):
     return fig
 
 
+def plot_coherence(results, path=None):
+    """Central slices (frame-row, frame-column, row-column) of each reflection's coherence kernel."""
+    refl = [x for x in results.reflections if x.coherence.get("kernel") is not None]
+    if not refl:
+        return None
+    fig = _figure(7.2, 0.6 + 2.2 * len(refl))
+    planes = (("frame", "row", 2), ("frame", "column", 1), ("row", "column", 0))
+    for j, x in enumerate(refl):
+        k = np.asarray(x.coherence["kernel"], float)
+        c = [n // 2 for n in k.shape]
+        w = x.coherence.get("widths")
+        if x.coherence.get("model") == "partial" and w is not None:
+            txt = "widths " + ", ".join(f"{v * 1e4:.2f}" for v in w) + " ·10⁻⁴ Å⁻¹"
+        else:
+            txt = "coherent model chosen: a delta"
+        for i, (v_ax, h_ax, fixed) in enumerate(planes):
+            ax = fig.add_subplot(len(refl), 3, 3 * j + i + 1)
+            sl = [slice(None)] * 3
+            sl[fixed] = c[fixed]
+            img = k[tuple(sl)]
+            h = img.shape[1] // 2
+            v = img.shape[0] // 2
+            ax.imshow(img, origin="lower", cmap="magma", vmin=0, vmax=max(k.max(), 1e-12),
+                      extent=(-h - 0.5, h + 0.5, -v - 0.5, v + 0.5))
+            ax.set_xlabel(f"{h_ax} (voxels)", fontsize=8)
+            ax.set_ylabel(f"{v_ax} (voxels)", fontsize=8)
+            ax.tick_params(labelsize=7)
+            if i == 0:
+                ax.set_title(f"{x.name} {format_hkl(x.hkl)}: {txt}", fontsize=8, loc="left")
+    if path is not None:
+        _save(fig, path)
+    return fig
+
+
 _SKIP_HISTORY = ("checkpoint", "stage")
 
 def _stage_starts(refl):
@@ -571,8 +609,9 @@ def make_figures(results, out_dir):
     -------
     list of Path
         In the order of :data:`FIGURES`; ``displacement.png``, ``prtf.png``,
-        ``history.png`` and ``runs.png`` are left out when no reflection has
-        a displacement map, a PRTF, a history or run metrics.
+        ``coherence.png``, ``history.png`` and ``runs.png`` are left out when
+        no reflection has a displacement map, a PRTF, a coherence kernel, a
+        history or run metrics.
     """
     from braggstrain.io.results import Results
     from braggstrain.report.dislocations import plot_dislocations
@@ -590,6 +629,7 @@ def make_figures(results, out_dir):
         "uncertainty.png": plot_uncertainty,
         "displacement.png": plot_displacements,
         "prtf.png": plot_prtf,
+        "coherence.png": plot_coherence,
         "history.png": plot_histories,
         "runs.png": plot_runs,
     }

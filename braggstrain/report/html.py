@@ -200,6 +200,39 @@ def _reflection_section(r):
     return "\n".join(out)
 
 
+def _coherence_section(r):
+    refl = [x for x in r.reflections if x.coherence]
+    if not refl:
+        return ""
+    header = ["reflection", "model", "widths along the principal axes (10⁻⁴ Å⁻¹)", "spread (10⁻⁴ Å⁻¹)",
+              "coherence lengths (nm)", "free NLL: coherent / partial model", "agreement"]
+    rows = []
+    for x in refl:
+        c = x.coherence
+        w, sp, ln = c.get("widths"), c.get("spread"), c.get("lengths")
+        ch = c.get("choice") or {}
+        rows.append([_e(f"{x.name} {format_hkl(x.hkl)}"), _e(c.get("model", "off")),
+                     ", ".join(_num(v * 1e4, "{:.2f}") for v in w) if w is not None else "—",
+                     ", ".join(_num(v * 1e4, "{:.2f}") for v in sp) if sp is not None else "—",
+                     ", ".join("∞" if not np.isfinite(v) else _num(v / 10.0, "{:.0f}") for v in ln)
+                     if ln is not None else "—",
+                     f"{_num(ch['coherent'], '{:.4g}')} / {_num(ch['partial'], '{:.4g}')}" if ch else "—",
+                     _e(c.get("disagreement") or "agrees")])
+    out = ["<h2>Coherence of the beam</h2>",
+           "<p>The measured intensity is modelled as the coherent intensity convolved with the coherence "
+           "function (a kernel in reciprocal space), estimated once per reflection from its data. Widths are "
+           "standard deviations along the kernel's principal axes (sample frame); the coherence length along "
+           "each is 1/width (∞: no blur resolved). Where the coherent model fits the held-out voxels about as "
+           "well as the partial-coherence model, the coherent one is kept and the kernel is a delta.</p>",
+           _table(header, rows, text_cols=(0, 1, 6), wrap_cols=(6,), css="compact")]
+    flagged = [x.name for x in refl if x.coherence.get("disagreement")]
+    if flagged:
+        out.append(f'<div class="caution"><b>Coherence estimates disagree.</b> {_e(", ".join(flagged))}: '
+                   f"reflections measured with one beam should show the same coherence function; check these "
+                   f"reconstructions (runs, PRTF) and the scans (a changed beam, slits or energy).</div>")
+    return "\n".join(out)
+
+
 def _tensor_section(r):
     tf = r.tensor
     trusted = np.asarray(tf.trusted, bool)
@@ -469,6 +502,7 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
         summary,
         f'<div class="caution"><b>Cautions.</b> {_e(CAUTIONS)}</div>',
         _reflection_section(r),
+        _coherence_section(r),
         _tensor_section(r),
         _mean_lattice_section(r),
         _registration_section(r),
