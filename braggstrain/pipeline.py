@@ -927,7 +927,9 @@ def _spread_samples(tree, data, intensity, mask, g_ref, so, fr_opts, n_rep, rep_
     if n_rep >= 2:
         rs = poisson_replicas(intensity, mask, tree["obj"], tree["support"], ramp=tree["ramp"], replicas=n_rep,
                               iterations=rep_iter, seed=seed, executor=executor,
-                              raar_fraction=REPLICA_RAAR_FRACTION)
+                              raar_fraction=REPLICA_RAAR_FRACTION,
+                              coherence_kernel=(tree["coherence"].get("kernel")
+                                                if tree["coherence"].get("model") == "partial" else None))
         out["baseline"] = to_frame(rs.baseline)
         out["replicas"] = np.stack([to_frame(o) for o in rs.replicas])
     return out

@@ -22,6 +22,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from braggstrain.errors import InputError
+from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings
 from braggstrain.phasing.fft import FFTBackend
 
 __all__ = ["ReplicaSet", "poisson_replicas"]
@@ -61,7 +62,7 @@ def _ramp_factor(shape, ramp, sign):
 
 def _phase_one(args):
     """One replica (index ≥ 0) or the baseline (index −1); module level so it pickles."""
-    intensity, mask, obj, support, ramp, iterations, seed, index, beta, raar_fraction = args
+    intensity, mask, obj, support, ramp, iterations, seed, index, beta, raar_fraction, kernel = args
     shape = intensity.shape
     measured = ~mask
     if index >= 0:
@@ -78,10 +79,17 @@ def _phase_one(args):
     buf = fft.buffer
     n = np.float32(1.0 / buf.size)
     n_raar = int(round(raar_fraction * iterations))
+    coh = None
+    if kernel is not None:  # the partial-coherence model the object was phased with, kernel fixed
+        coh = CoherenceModel(shape, CoherenceSettings(half_width=kernel.shape[0] // 2))
+        coh.kernel, coh.is_delta = np.asarray(kernel, float), False
     for it in range(iterations):
         buf[...] = x
         fft.forward()
-        mod = np.abs(buf)
+        if coh is None:
+            mod = np.abs(buf)
+        else:  # modulus of the model intensity |Psi|^2 convolved with the kernel
+            mod = np.sqrt(coh.blur((np.abs(buf) ** 2).astype(np.float32)))
         scale = np.where(meas, amp / np.maximum(mod, 1e-30), 1.0).astype(np.float32)
         buf *= scale
         fft.backward()
@@ -95,7 +103,7 @@ def _phase_one(args):
 
 
 def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, iterations=90, seed=0,
-                     executor=None, beta=0.9, raar_fraction=1 / 3):
+                     executor=None, beta=0.9, raar_fraction=1 / 3, coherence_kernel=None):
     """Phase Poisson replicas of ``intensity`` from the converged ``obj``.
 
     Parameters
@@ -127,6 +135,10 @@ def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, it
         Replica r draws its counts from ``SeedSequence(seed, spawn_key=(2, r))``.
     executor : object with ``map``, optional
         Where the replicas run (default: in this process).
+    coherence_kernel : ndarray (2w+1,)*3, optional
+        The coherence function the object was phased with (an ensemble's
+        ``coherence_kernel`` when it kept the partial model): the modulus
+        step then uses |Psi|^2 convolved with it, held fixed.
 
     Returns
     -------
@@ -152,7 +164,15 @@ def poisson_replicas(intensity, mask, obj, support, *, ramp=None, replicas=8, it
     I = np.where(m | ~np.isfinite(I), 0, I)
     if not 0 <= raar_fraction <= 1:
         raise InputError(f"raar_fraction: expected a fraction in [0, 1], got {raar_fraction!r}")
-    tasks = [(I, m, o, s, r, int(iterations), int(seed), k, float(beta), float(raar_fraction))
+    kern = None
+    if coherence_kernel is not None:
+        kern = np.asarray(coherence_kernel, float)
+        if kern.ndim != 3 or len(set(kern.shape)) != 1 or kern.shape[0] % 2 != 1 or np.any(kern < 0) \
+                or not kern.sum() > 0 or kern.shape[0] > min(shape):
+            raise InputError(f"coherence_kernel: expected a non-negative cube of odd size up to the array's, "
+                             f"got shape {kern.shape}")
+        kern = kern / kern.sum()
+    tasks = [(I, m, o, s, r, int(iterations), int(seed), k, float(beta), float(raar_fraction), kern)
              for k in range(-1, int(replicas))]
     mapper = map if executor is None else executor.map
     out = list(mapper(_phase_one, tasks))
