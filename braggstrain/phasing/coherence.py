@@ -279,7 +279,7 @@ class CoherenceModel:
 #: log-likelihood per held-out voxel is below the coherent model's best by more
 #: than this fraction of the coherent one (common practice, no source; measured
 #: in docs/phasing.md, "Choosing the model").
-CHOICE_MARGIN = 0.5
+CHOICE_MARGIN = 0.3
 
 
 def choose_model(coherent_best, partial_best, margin=CHOICE_MARGIN):

@@ -288,8 +288,9 @@ def _outliers(ranked, metric):
 
 def partial_runs(runs):
     """Random starts of the partial-coherence model that ``coherence="auto"``
-    adds to the ``runs`` of the coherent model: half as many, at least one."""
-    return max(1, int(runs) // 2)
+    adds to the ``runs`` of the coherent model: half as many (rounded up), at
+    least two, because the model's runs fail more often (docs/phasing.md)."""
+    return max(2, (int(runs) + 1) // 2)
 
 
 def _choose_model(good, has_free, keep):
