@@ -42,7 +42,8 @@ from braggstrain.config import build_crystal, build_instrument, resolve_path
 from braggstrain.geometry.crystal import DIRECTION_TOLERANCE_DEG, Q_TOLERANCE, check_reflection_identity, format_hkl
 from braggstrain.errors import (BraggStrainError, ConfigError, InputError, OutputError, ReflectionError,
                                 ScanFileError, TensorError, did_you_mean)
-from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_METRIC, DEFAULT_RUNS
+from braggstrain.phasing.coherence import AUTO, CoherenceSettings
+from braggstrain.phasing.ensemble import DEFAULT_KEEP, DEFAULT_METRIC, DEFAULT_RUNS, partial_runs
 from braggstrain.io.checkpoints import (dislocation_to_tree, file_digest, hash_inputs, load_tree, plain_tree,
                                         sample_to_tree, save_tree, tree_to_dislocation, tree_to_sample,
                                         tree_to_tensor)
@@ -690,6 +691,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     runs = int(ph_opts.pop("runs", DEFAULT_RUNS))
     keep = int(ph_opts.pop("keep", DEFAULT_KEEP))
     base_seed = int(ph_opts.pop("seed", 0))
+    coh_settings = CoherenceSettings.from_value(ph_opts.get("coherence", AUTO))
+    n_partial = partial_runs(runs) if coh_settings is not None and coh_settings.choose else 0
     fr_opts = dict(opts["frame"])
     route = fr_opts.pop("route", frm.DEFAULT_ROUTE)
     voxel_nm = fr_opts.pop("voxel_nm", None)
@@ -762,7 +765,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                 if tree is not None and ("kept_objects" not in tree or "coherence" not in tree):
                     tree = None  # a checkpoint from before the kept runs or the coherence were stored
                 if tree is None:
-                    say(f"  {name} {h}: phasing {intensity.shape} with {runs} random starts (keep {keep})")
+                    extra = f" and {n_partial} with the partial-coherence model" if n_partial else ""
+                    say(f"  {name} {h}: phasing {intensity.shape} with {runs} random starts{extra} (keep {keep})")
                     t0 = time.perf_counter()
                     ens = ensemble(intensity, mask, runs=runs, keep=keep, seed=seed_j, executor=executor,
                                    progress=progress, **ph_opts)
