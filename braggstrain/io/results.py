@@ -27,7 +27,7 @@ from that one grid (:class:`braggstrain.strain.grid.Grid`); lengths in Å, angle
 inside the file unless an attribute says otherwise; strain is
 dimensionless, tensile positive.
 
-Why one module of about 650 lines: the object, its writer and its reader
+Why one module of about 720 lines: the object, its writer and its reader
 (of both layouts, damaged files named by the field being read) are one
 file format; the plain-value conventions are in :mod:`braggstrain.io.hdf5`
 and the checks in :mod:`braggstrain.io._results_check`.

@@ -12,6 +12,11 @@ units, each panel a scale bar in nm.
 :func:`make_figures` writes all figures of a bundle to a folder; the
 individual ``plot_*`` functions return a :class:`matplotlib.figure.Figure`
 and take a ``path`` to save to (atomically).
+
+Why one module of about 650 lines: every figure of the results bundle
+shares the slice, crop, scale and colour helpers at its top; the
+dislocation figure, which needs its own 3-D helpers, is
+:mod:`braggstrain.report.dislocations`.
 """
 
 from __future__ import annotations
