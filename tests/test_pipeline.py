@@ -438,24 +438,28 @@ def test_blurred_scans_run_to_the_end_with_the_defaults(blurred_run, reference_r
     # Partial coherence (Clark et al., Nat. Commun. 3, 993 (2012)): the
     # measured intensity is the coherent one convolved with the coherence
     # function.  Truth: the simulator's crystal and its 1-voxel Gaussian.
-    # Measured (docs/phasing.md, "End to end"): partial model kept for all
-    # four reflections, widths 0.95-1.42 voxel (median 1.04), support volume
-    # 0.93 of the truth's (the coherent run's: 1.30), strain RMS 2.7e-4
-    # against 1.06e-4 for the coherent data (2.6x: the 1.5x is not
-    # met at σ = 1), the dislocation found with the right Burgers vector.
+    # Measured (docs/phasing.md, "End to end"), with the simulator of this
+    # version: the partial model kept for three reflections (widths
+    # 0.98-1.24 voxel), the coherent one for (0 0 2) (free NLL 17.39 against
+    # 18.01); strain RMS 2.19e-4 against 2.27e-4 for the coherent data;
+    # support Dice 0.91; the dislocation found with the right Burgers vector.
+    # (Before the simulator's new Bragg solver: 2.73e-4 against 1.06e-4.)
     from braggstrain.simulate.demo import read_truth
 
     d, res = blurred_run
     r = res["results"]
     cmp = compare_to_truth(r, d / "sim" / "truth.h5", as_text=False)
     ref = compare_to_truth(reference_run["results"], simulated / "sim" / "truth.h5", as_text=False)
-    for x in r.reflections:
+    partial = [x for x in r.reflections if x.coherence["model"] == "partial"]
+    # the partial model for most reflections (two partial starts each; one
+    # reflection may lose both and keep the coherent model)
+    assert len(partial) >= 3, [(x.name, x.coherence.get("choice")) for x in r.reflections]
+    for x in partial:
         c = x.coherence
-        assert c["model"] == "partial", (x.name, c.get("choice"))
         # widths in voxels of each reflection's grid against the true 1 voxel
         np.testing.assert_allclose(c["widths_voxels"], 1.0, rtol=0.55)
         np.testing.assert_allclose(c["lengths"], 1 / c["widths"])
-    assert abs(np.median([x.coherence["widths_voxels"] for x in r.reflections]) - 1.0) < 0.2
+    assert abs(np.median([x.coherence["widths_voxels"] for x in partial]) - 1.0) < 0.2
     truth = read_truth(d / "sim" / "truth.h5")
     v_truth = (truth["density"] > 0.5).sum() * np.prod(truth["voxel_size"])
     v_found = r.support.sum() * np.prod(r.grid.voxel_size)
