@@ -281,7 +281,7 @@ def _coverage(estimate, truth, sigma, mask):
             "median_sigma": float(np.median(s)), "voxels": n}
 
 
-def compare_to_truth(results, truth_path, as_text=True):
+def compare_to_truth(results, truth_path, as_text=True, tensor=None):
     """Compare :class:`~braggstrain.io.results.Results` with the simulator's ground truth.
 
     The reconstruction has no absolute position and may be the twin of the
@@ -301,6 +301,10 @@ def compare_to_truth(results, truth_path, as_text=True):
     component, the fraction of trusted voxels (``tensor.trusted``, away
     from the cores) whose error is within one and two reported σ.
 
+    ``tensor`` compares another TensorField on the same grid (e.g. the
+    results' ``tensor_independent``) over the same voxels; default the
+    results' own tensor.
+
     Returns text (``as_text``) or a dict of the numbers.
     """
     from skimage.registration import phase_cross_correlation
@@ -308,8 +312,8 @@ def compare_to_truth(results, truth_path, as_text=True):
     from braggstrain.strain.fields import trusted_for_gradients
 
     truth = read_truth(truth_path)
-    tf = results.tensor
-    sup = np.asarray(tf.support, bool)
+    sup = np.asarray(results.tensor.support, bool)
+    tf = results.tensor if tensor is None else tensor
     shape = sup.shape
     grid = results.grid
     vs = grid.voxel_size
