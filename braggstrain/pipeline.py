@@ -69,7 +69,7 @@ REPLICA_RAAR_FRACTION = 1 / 3
 #: quadrature (docs/strain.md)
 DEFAULT_RESOLUTION_BLUR = 0.75
 _DEFECTS_OWN = {"enabled"}
-_JOINT_OWN = {"enabled"}
+_JOINT_OWN = {"enabled", "q_map"}
 # Part of the defects checkpoint's key: lines checkpointed before their points
 # were put on the common grid (origin included, issue 17) are not reused.
 _DEFECTS_POINTS = "points: positions on the common grid"
@@ -203,6 +203,10 @@ def check_options(cfg):
     v = jo.get("eps")
     if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 1e-15 < v < 1e-2):
         raise ConfigError(f"{src}: key 'joint.eps': value {v!r}; expected a precision between 1e-15 and 1e-2")
+    from braggstrain.joint.model import Q_MAPS
+
+    if jo.get("q_map", "exact") not in Q_MAPS:
+        raise ConfigError(f"{src}: key 'joint.q_map': value {jo['q_map']!r}; expected one of {list(Q_MAPS)}")
     out["joint"] = jo
     ou = dict(cfg["output"])
     _check_keys(ou, set(_OUTPUT_KEYS), "output", src)

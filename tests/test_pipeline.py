@@ -407,3 +407,49 @@ def test_a_single_run_without_replicas_says_so_in_words(simulated, tmp_path, cap
     html = (out / "report.html").read_text()
     assert "No error bars" in html and "σ not estimated" in html
     assert not (out / "figures" / "uncertainty.png").exists()
+
+
+def _with_joint(simulated, tmp_path, name):
+    """The module's run resumed with a short [joint] stage (its checkpoints
+    copied, so only the joint, defects and outputs stages run)."""
+    text = (simulated / "sim" / "pipeline.toml").read_text() + "\n[joint]\nenabled = true\nmax_iterations = 3\n"
+    cfg = simulated / "sim" / f"{name}.toml"
+    cfg.write_text(text)
+    out = tmp_path / name
+    shutil.copytree(simulated / "out" / "checkpoints", out / "checkpoints")
+    return cfg, out
+
+
+def test_joint_stage_writes_both_tensors_and_its_likelihoods(simulated, reference_run, tmp_path):
+    from braggstrain.io.results import read_results
+
+    cfg, out = _with_joint(simulated, tmp_path, "joint")
+    res = run_pipeline(load_config(cfg), out, resume=True, progress=False, log=None)
+    assert res["phasing_s"] == 0.0 and "joint" in res["timings"]
+    r = read_results(out / "results.h5")
+    np.testing.assert_array_equal(r.tensor_independent.strain, reference_run["results"].tensor.strain)
+    assert not np.array_equal(r.tensor.strain, r.tensor_independent.strain)
+    j = r.joint
+    assert list(j["labels"]) == r.names and j["iterations"] >= 1
+    assert np.all(np.asarray(j["nll_after"]) < np.asarray(j["nll_before"]))
+
+
+def test_a_refused_joint_stage_leaves_the_rest_of_the_results(simulated, reference_run, tmp_path, monkeypatch,
+                                                              capsys):
+    import braggstrain.joint as joint
+
+    real = joint.joint_stage
+
+    def failing(*args, **kwargs):  # the tensor stage flagged r1 (as it does for an inconsistent reflection)
+        kwargs["failed"] = {"r1": "flagged inconsistent with the others by the tensor stage"}
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(joint, "joint_stage", failing)
+    cfg, out = _with_joint(simulated, tmp_path, "refused")
+    assert main(["run", str(cfg), "--out", str(out), "--resume"]) == 0
+    printed = capsys.readouterr().out
+    assert "joint refinement not run: [joint]: reflection(s) ['r1'] failed" in printed
+    with h5py.File(out / "results.h5", "r") as f:
+        assert "r1" in f["joint"].attrs["error"] and "tensor_independent" not in f
+        np.testing.assert_array_equal(f["tensor/strain"][()], h5py.File(simulated / "out" / "results.h5", "r")
+                                      ["tensor/strain"][()])

@@ -33,7 +33,7 @@ import numpy as np
 from braggstrain.errors import InputError
 from braggstrain.strain.grid import Grid
 
-__all__ = ["MeasuredVoxels", "measured_voxels", "FarField", "direct_far_field", "subdivision", "fine_grid",
+__all__ = ["Q_MAPS", "MeasuredVoxels", "measured_voxels", "FarField", "direct_far_field", "subdivision", "fine_grid",
            "interpolation_matrix", "DEFAULT_EPS"]
 
 DEFAULT_EPS = 1e-6
@@ -93,7 +93,10 @@ class MeasuredVoxels:
         return self.counts.size
 
 
-def measured_voxels(prepared, g_vector, *, name=""):
+Q_MAPS = ("exact", "linear")
+
+
+def measured_voxels(prepared, g_vector, *, name="", q_map="exact"):
     """The measured voxels of a prepared scan at their exact Q.
 
     Parameters
@@ -101,6 +104,12 @@ def measured_voxels(prepared, g_vector, *, name=""):
     prepared : braggstrain.prepare.scan.PreparedScan
     g_vector : 3 floats, Å⁻¹, sample frame (the crystal's U·B·h)
     name : str
+    q_map : "exact" or "linear"
+        Q of each voxel from the instrument's per-pixel conversion
+        (:func:`~braggstrain.prepare.scan.exact_q`, the default) or from the
+        prepared scan's local linear map
+        (:func:`~braggstrain.prepare.scan.linear_q`, the approximation
+        phase retrieval in the detector frame makes; for comparisons).
 
     Returns
     -------
@@ -109,11 +118,13 @@ def measured_voxels(prepared, g_vector, *, name=""):
         included in the mask), with Q from xrayutilities' per-pixel
         conversion averaged over the raw voxels of a bin.
     """
-    from braggstrain.prepare.scan import PreparedScan, exact_q
+    from braggstrain.prepare.scan import PreparedScan, exact_q, linear_q
 
     if not isinstance(prepared, PreparedScan):
         raise InputError(f"prepared: expected a PreparedScan, got {type(prepared).__name__}")
-    q = exact_q(prepared, frame="sample")
+    if q_map not in Q_MAPS:
+        raise InputError(f"q_map: {q_map!r}; expected one of {list(Q_MAPS)}")
+    q = (exact_q if q_map == "exact" else linear_q)(prepared, frame="sample")
     keep = ~np.asarray(prepared.mask, bool) & np.all(np.isfinite(q), axis=0)
     counts = np.maximum(np.asarray(prepared.intensity, float)[keep], 0.0)
     return MeasuredVoxels(counts=counts, q_sample=q[:, keep], g_vector=g_vector, name=name,

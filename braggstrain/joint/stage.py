@@ -29,7 +29,7 @@ def starting_amplitude(objects, support):
     return np.mean(amps, axis=0)
 
 
-def joint_stage(prepared, objects, tensor, *, labels, failed=None, **options):
+def joint_stage(prepared, objects, tensor, *, labels, failed=None, q_map="exact", **options):
     """Fit all reflections together, started from the independent route.
 
     Parameters
@@ -46,6 +46,9 @@ def joint_stage(prepared, objects, tensor, *, labels, failed=None, **options):
     failed : dict label → reason, optional
         Reflections whose independent results are unusable (the pipeline
         names them); any of them refuses the stage.
+    q_map : "exact" (default) or "linear"
+        Where each measured voxel's Q comes from
+        (:func:`~braggstrain.joint.model.measured_voxels`).
     options
         Keyword options of :func:`~braggstrain.joint.fit.joint_refine`.
 
@@ -73,7 +76,7 @@ def joint_stage(prepared, objects, tensor, *, labels, failed=None, **options):
         raise JointError("[joint]: the tensor stage gave no displacement map (tensor.displacement = false?); "
                          "the joint fit starts from it")
     support = np.asarray(tensor.support, bool)
-    data = [measured_voxels(p, o.g_vector, name=lab) for p, o, lab in zip(prepared, objects, labels)]
+    data = [measured_voxels(p, o.g_vector, name=lab, q_map=q_map) for p, o, lab in zip(prepared, objects, labels)]
     grid = objects[0].grid
     amp = starting_amplitude([o.obj for o in objects], support)
     return joint_refine(data, grid, support, amp, np.asarray(tensor.displacement, float),

@@ -37,7 +37,7 @@ from braggstrain.io.scans import write_scan
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS, split_gradient
 
-__all__ = ["simulate_experiment", "truth_fields", "read_truth", "compare_to_truth"]
+__all__ = ["simulate_experiment", "truth_fields", "read_truth", "compare_to_truth", "compare_routes"]
 
 TRUTH_FORMAT = "braggstrain-truth"
 TRUTH_VERSION = 1
@@ -440,3 +440,22 @@ def compare_to_truth(results, truth_path, as_text=True, tensor=None):
         else:
             txt.append(f"  dislocation b = [{bt}]: NOT found")
     return "\n".join(txt)
+
+
+def compare_routes(results, truth_path):
+    """The comparison with the truth, and, when the joint stage ran, the
+    strain RMS error of the independent and the joint route side by side
+    (same voxels) with their ratio. Text."""
+    txt = compare_to_truth(results, truth_path)
+    joint = results.joint or {}
+    if results.tensor_independent is None:
+        if "error" in joint:
+            txt += f"\n  joint refinement: not run ({joint['error']})"
+        return txt
+    a = compare_to_truth(results, truth_path, as_text=False)
+    b = compare_to_truth(results, truth_path, as_text=False, tensor=results.tensor_independent)
+    rows = ["  strain RMS error, independent route vs joint refinement (same voxels):",
+            "    " + "  ".join(f"{k} {b['strain_rms'][k]:.1e} → {a['strain_rms'][k]:.1e}" for k in a["strain_rms"]),
+            f"    all six: {b['strain_rms_all']:.2e} → {a['strain_rms_all']:.2e} "
+            f"(ratio joint/independent {a['strain_rms_all'] / b['strain_rms_all']:.2f})"]
+    return txt + "\n" + "\n".join(rows)
