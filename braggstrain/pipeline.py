@@ -994,11 +994,12 @@ def _joint(per_refl, registered, tfield, labels, G, voxel_size, te_opts, jo_opts
     from braggstrain.strain import tensor as tns
 
     failed = {}
-    if tfield.outlier is not None:
-        failed[str(tfield.outlier)] = "flagged inconsistent with the others by the tensor stage"
     for p, o in zip(per_refl, registered):
-        if not o.support.any() or not np.all(np.isfinite(o.obj)):
+        if not len(p["phase"]["kept"]) or not o.support.any() or not np.all(np.isfinite(o.obj)):
             failed[p["name"]] = "no usable reconstruction on the common grid"
+    if tfield.outlier is not None:  # a warning of the tensor stage, not a failure: the fit weighs it by its counts
+        say(f"  joint refinement: '{tfield.outlier}' was flagged inconsistent by the tensor stage; it is fitted "
+            f"with the others")
     try:
         jr = joint_stage([p["prepared"] for p in per_refl], registered, tfield, labels=labels, failed=failed,
                          **jo_opts)

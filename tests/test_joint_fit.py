@@ -111,7 +111,7 @@ def test_the_stage_refuses_too_few_or_failed_reflections():
         joint_stage([None, None], [None, None], None, labels=["a", "b"])
     with pytest.raises(JointError, match=r"\['r1'\] failed.*enabled = false"):
         joint_stage([None] * 4, [None] * 4, None, labels=["r0", "r1", "r2", "r3"],
-                    failed={"r1": "flagged inconsistent with the others by the tensor stage"})
+                    failed={"r1": "no usable reconstruction on the common grid"})
     grid, support, s, u = _crystal()
     data = _data(grid, support, s, u, seed=0)[:2]
     with pytest.raises(JointError, match="at least three"):

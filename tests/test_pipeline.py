@@ -412,7 +412,8 @@ def test_a_single_run_without_replicas_says_so_in_words(simulated, tmp_path, cap
 def _with_joint(simulated, tmp_path, name):
     """The module's run resumed with a short [joint] stage (its checkpoints
     copied, so only the joint, defects and outputs stages run)."""
-    text = (simulated / "sim" / "pipeline.toml").read_text() + "\n[joint]\nenabled = true\nmax_iterations = 3\n"
+    text = ((simulated / "sim" / "pipeline.toml").read_text() + NO_FILES
+            + "\n[joint]\nenabled = true\nmax_iterations = 2\n")
     cfg = simulated / "sim" / f"{name}.toml"
     cfg.write_text(text)
     out = tmp_path / name
@@ -440,8 +441,8 @@ def test_a_refused_joint_stage_leaves_the_rest_of_the_results(simulated, referen
 
     real = joint.joint_stage
 
-    def failing(*args, **kwargs):  # the tensor stage flagged r1 (as it does for an inconsistent reflection)
-        kwargs["failed"] = {"r1": "flagged inconsistent with the others by the tensor stage"}
+    def failing(*args, **kwargs):  # as the pipeline names a reflection whose reconstruction is unusable
+        kwargs["failed"] = {"r1": "no usable reconstruction on the common grid"}
         return real(*args, **kwargs)
 
     monkeypatch.setattr(joint, "joint_stage", failing)
