@@ -433,6 +433,11 @@ def test_joint_stage_writes_both_tensors_and_its_likelihoods(simulated, referenc
     j = r.joint
     assert list(j["labels"]) == r.names and j["iterations"] >= 1
     assert np.all(np.asarray(j["nll_after"]) < np.asarray(j["nll_before"]))
+    assert len(j["nll_history"]) == j["iterations"] + 1
+    from braggstrain.report.html import write_report
+
+    page = write_report(r, tmp_path / "report").read_text()
+    assert "<h2>Joint refinement</h2>" in page and f"{j['nll_after'][0]:.4g}" in page
 
 
 def test_a_refused_joint_stage_leaves_the_rest_of_the_results(simulated, reference_run, tmp_path, monkeypatch,

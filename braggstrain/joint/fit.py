@@ -93,7 +93,8 @@ class JointResult:
         (:func:`braggstrain.phasing.metrics.poisson_nll`).
     history : dict of lists
         Per iteration: ``nll`` (fitted voxels) and ``free_nll`` (held-out
-        voxels), both per voxel, summed over reflections.
+        voxels), the Poisson NLL per voxel (its constant ln n! included, as
+        in ``nll_before``) over all reflections together.
     iterations : int
         Iterations run; ``best_iteration`` the one returned.
     message : str
@@ -279,6 +280,7 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
     """
     from scipy import ndimage
     from scipy.optimize import minimize
+    from scipy.special import gammaln
 
     from braggstrain.phasing.metrics import poisson_nll
 
@@ -334,6 +336,10 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
     before = per_voxel_nll(x0)
     n_work = sum(int(w.sum()) for w in work)
     n_free = sum(int((~w).sum()) for w in work)
+    # Σ ln Γ(n + 1) of the fitted and the held-out counts: the history then
+    # reads as the NLL per voxel of nll_before / nll_after
+    lg_work = sum(float(gammaln(d.counts[w] + 1).sum()) for d, w in zip(data, work))
+    lg_free = sum(float(gammaln(d.counts[~w] + 1).sum()) for d, w in zip(data, work))
     history = {"nll": [], "free_nll": []}
     best = {"x": x0.copy(), "free": np.inf, "it": 0}
 
@@ -341,8 +347,8 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
         if obj.last is None or not np.array_equal(obj.last[0], xk):
             obj(xk)
         _, tot, free = obj.last
-        history["nll"].append(tot / max(n_work, 1))
-        history["free_nll"].append(free / n_free if n_free else float("nan"))
+        history["nll"].append((tot + lg_work) / max(n_work, 1))
+        history["free_nll"].append((free + lg_free) / n_free if n_free else float("nan"))
         it = len(history["nll"]) - 1
         if n_free == 0 or free < best["free"]:
             best.update(x=xk.copy(), free=free, it=it)
