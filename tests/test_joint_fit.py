@@ -91,7 +91,7 @@ def test_a_perturbed_start_moves_back_towards_the_truth(seed):
     data = _data(grid, support, s, u, seed=seed)
     X = grid.coordinates()
     pert = np.stack([0.08 * np.sin(X[1] / 25.0), 0.08 * np.sin(X[2] / 20.0), 0.08 * np.sin(X[0] / 20.0)])
-    res = joint_refine(data, grid, support, s, u + pert, max_iterations=40, held_out=0.05, support_dilation=0,
+    res = joint_refine(data, grid, support, s, u + pert, max_iterations=30, held_out=0.05, support_dilation=0,
                        seed=seed)
 
     def err(v):
