@@ -304,10 +304,10 @@ def cmd_demo(args):
     res = run_pipeline(cfg, out, resume=args.resume, scheduler=args.scheduler, workers=args.workers,
                        progress=not args.quiet, log=None if args.quiet else print, command=args.command_line)
     _print(_summary(res), args.quiet)
-    from braggstrain.simulate.demo import compare_to_truth
+    from braggstrain.simulate.demo import compare_routes
 
     try:
-        _print(compare_to_truth(res["results"], out / "truth.h5"), args.quiet)
+        _print(compare_routes(res["results"], out / "truth.h5"), args.quiet)
     except BraggStrainError as e:  # pragma: no cover - the comparison is informative only
         _print(f"(no comparison with the truth: {e})", args.quiet)
     _print(_timing_table(res["timings"], res["wall_s"]), args.quiet)

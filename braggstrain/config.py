@@ -223,6 +223,7 @@ SCHEMA = _Table(
     frame=_Spec(dict, {}, doc="route to the sample frame"),
     tensor=_Spec(dict, {}, doc="registration and tensor options"),
     defects=_Spec(dict, {}, doc="dislocation options"),
+    joint=_Spec(dict, {}, doc="joint refinement of all reflections (braggstrain.joint)"),
     output=_Spec(dict, {}, doc="outputs"),
     plan=_Spec(dict, {}, doc="measurement planner options"),
 )

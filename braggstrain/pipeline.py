@@ -55,7 +55,7 @@ __all__ = ["run_pipeline", "check_options", "prepare_options", "PipelineRun", "S
            "estimate_output_bytes", "check_output_folder"]
 
 #: The stages in the order they run (the report orders its timing table by it).
-STAGES = ("prepare", "grid", "phase", "frame", "spread", "register", "tensor", "defects", "outputs")
+STAGES = ("prepare", "grid", "phase", "frame", "spread", "register", "tensor", "joint", "defects", "outputs")
 
 # Keys of the option tables that are the pipeline's own (not a stage function's).
 _FRAME_OWN = {"route", "voxel_nm", "origin_nm"}
@@ -70,6 +70,7 @@ REPLICA_RAAR_FRACTION = 1 / 3
 #: quadrature (docs/strain.md)
 DEFAULT_RESOLUTION_BLUR = 0.75
 _DEFECTS_OWN = {"enabled"}
+_JOINT_OWN = {"enabled", "q_map"}
 # Part of the defects checkpoint's key: lines checkpointed before their points
 # were put on the common grid (origin included, issue 17) are not reused.
 _DEFECTS_POINTS = "points: positions on the common grid"
@@ -185,6 +186,29 @@ def check_options(cfg):
                                                                      "support", "crystal"})
     _check_keys(de, allowed, "defects", src)
     out["defects"] = de
+    from braggstrain.joint import fit as joint_fit
+
+    jo = dict(cfg.get("joint") or {})
+    _check_keys(jo, _JOINT_OWN | _kwargs_of(joint_fit.joint_refine, {"data", "grid", "support", "amplitude",
+                                                                     "displacement", "reference_objects",
+                                                                     "progress"}), "joint", src)
+    if not isinstance(jo.get("enabled", False), bool):
+        raise ConfigError(f"{src}: key 'joint.enabled': value {jo['enabled']!r}; expected true or false")
+    for k, lo in (("max_iterations", 1), ("support_dilation", 0), ("seed", 0), ("threads", 1)):
+        v = jo.get(k)
+        if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < lo):
+            raise ConfigError(f"{src}: key 'joint.{k}': value {v!r}; expected an integer ≥ {lo}")
+    v = jo.get("held_out")
+    if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 0 <= v < 0.5):
+        raise ConfigError(f"{src}: key 'joint.held_out': value {v!r}; expected a fraction in [0, 0.5)")
+    v = jo.get("eps")
+    if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 1e-15 < v < 1e-2):
+        raise ConfigError(f"{src}: key 'joint.eps': value {v!r}; expected a precision between 1e-15 and 1e-2")
+    from braggstrain.joint.model import Q_MAPS
+
+    if jo.get("q_map", "exact") not in Q_MAPS:
+        raise ConfigError(f"{src}: key 'joint.q_map': value {jo['q_map']!r}; expected one of {list(Q_MAPS)}")
+    out["joint"] = jo
     ou = dict(cfg["output"])
     _check_keys(ou, set(_OUTPUT_KEYS), "output", src)
     for k, t in _OUTPUT_KEYS.items():
@@ -856,16 +880,35 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     except TensorError as e:
         mean_lattice = {"error": str(e)}
 
+    # -- joint refinement (optional): the tensor and the dislocations from the joint objects
+    tensor_independent, joint_summary, phase_objects, k_phases = None, None, registered, k_reg
+    jo_opts = dict(opts["joint"])
+    if jo_opts.pop("enabled", False):
+        k_joint = hash_inputs("joint", k_ten, [p["key"] for p in per_refl], jo_opts)
+        with run.timed("joint"):
+            jt = run.cached("joint", "all", k_joint)
+            if jt is None:
+                jt = _joint(per_refl, registered, tfield, labels, G, common_vs, te_opts, jo_opts, say)
+                run.save("joint", "all", k_joint, jt)
+        joint_summary = {k: v for k, v in jt.items() if k not in ("objects", "tensor")}
+        if "error" not in jt:
+            tensor_independent, tfield = tfield, tree_to_tensor(jt["tensor"])
+            from braggstrain.strain.objects import SampleObject
+
+            phase_objects = [SampleObject(o, common_vs, g, tfield.support, grid.origin, r.hkl)
+                             for o, g, r in zip(jt["objects"], G, registered)]
+            k_phases = k_joint
+
     # -- defects
     de_opts = dict(opts["defects"])
     enabled = de_opts.pop("enabled", True)
-    k_def = hash_inputs("defects", k_reg, de_opts, enabled, _DEFECTS_POINTS)
+    k_def = hash_inputs("defects", k_phases, de_opts, enabled, _DEFECTS_POINTS)
     dislocations = []
     with run.timed("defects"):
         if enabled:
             dt = run.cached("defects", "all", k_def)
             if dt is None:
-                lines = dfx.find_dislocations([o.obj for o in registered], [o.hkl for o in registered], G,
+                lines = dfx.find_dislocations([o.obj for o in phase_objects], [o.hkl for o in registered], G,
                                               support=tfield.support, crystal=crystal, grid=grid, **de_opts)
                 dt = {"lines": [dislocation_to_tree(d) for d in lines]}
                 run.save("defects", "all", k_def, dt)
@@ -873,7 +916,8 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
 
     # -- outputs
     results = _bundle(cfg, crystal, per_refl, registered, rt["report"], tfield, dislocations, mean_lattice,
-                      run, base_seed, runs, keep, route, ph_opts.get("metric", DEFAULT_METRIC))
+                      run, base_seed, runs, keep, route, ph_opts.get("metric", DEFAULT_METRIC),
+                      tensor_independent=tensor_independent, joint=joint_summary)
     results.provenance["command"] = command if command is not None else shlex.join(
         [Path(sys.argv[0]).name or "python", *sys.argv[1:]])
     paths = {}
@@ -969,6 +1013,44 @@ def _gradient_covariance(per_refl, reg_report, support, voxel_size, order):
     return np.stack(covs).astype(np.float32), " and ".join(sorted(parts)) + " (per reflection)"
 
 
+def _joint(per_refl, registered, tfield, labels, G, voxel_size, te_opts, jo_opts, say):
+    """The joint stage's checkpoint tree: the fit and the tensor of its
+    objects, or ``{"error": message}`` when the stage refuses (the rest of the
+    run goes on with the independent tensor)."""
+    import warnings
+
+    from braggstrain.joint import JointError, joint_stage
+    from braggstrain.strain import tensor as tns
+
+    failed = {}
+    for p, o in zip(per_refl, registered):
+        if not len(p["phase"]["kept"]) or not o.support.any() or not np.all(np.isfinite(o.obj)):
+            failed[p["name"]] = "no usable reconstruction on the common grid"
+    if tfield.outlier is not None:  # a warning of the tensor stage, not a failure: the fit weighs it by its counts
+        say(f"  joint refinement: '{tfield.outlier}' was flagged inconsistent by the tensor stage; it is fitted "
+            f"with the others")
+    try:
+        jr = joint_stage([p["prepared"] for p in per_refl], registered, tfield, labels=labels, failed=failed,
+                         **jo_opts)
+    except JointError as e:
+        say(f"  joint refinement not run: {e}")
+        return {"error": str(e)}
+    say(f"  joint refinement: {jr.iterations} iterations, kept iteration {jr.best_iteration} (lowest free "
+        f"log-likelihood); NLL per voxel " + ", ".join(f"{n} {a:.4g} → {b:.4g}" for n, a, b in
+                                                       zip(labels, jr.nll_before, jr.nll_after)))
+    support = tfield.support & jr.support
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        tf = tns.strain_tensor(list(jr.objects), G, voxel_size, support=support, labels=labels, **te_opts)
+    for w in caught:
+        say(f"  warning (joint tensor): {w.message}")
+    return {"objects": jr.objects, "tensor": plain_tree(tf), "labels": list(labels),
+            "nll_before": jr.nll_before, "nll_after": jr.nll_after, "scales": jr.scales,
+            "phase_offsets": jr.phase_offsets, "nll_history": np.asarray(jr.history["nll"], float),
+            "free_nll_history": np.asarray(jr.history["free_nll"], float), "iterations": jr.iterations,
+            "best_iteration": jr.best_iteration, "message": jr.message, "options": plain_tree(jr.options)}
+
+
 def _versions():
     import importlib.metadata as md
 
@@ -983,7 +1065,7 @@ def _versions():
 
 
 def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, mean_lattice, run, seed, runs,
-            keep, route, metric):
+            keep, route, metric, tensor_independent=None, joint=None):
     """The :class:`~braggstrain.io.results.Results` of the run, built (and checked) once."""
     from braggstrain.io.results import ReflectionResult, Results
     from braggstrain.strain.fields import displacement_along_g
@@ -1025,7 +1107,8 @@ def _bundle(cfg, crystal, per_refl, registered, reg_report, tf, dislocations, me
     return Results(
         grid=grid,
         support=support, amplitude=np.mean(amps, axis=0).astype(np.float32),
-        reflections=refl, tensor=tf, dislocations=dislocations,
+        reflections=refl, tensor=tf, dislocations=dislocations, tensor_independent=tensor_independent,
+        joint=joint,
         registration=reg_report, mean_lattice=mean_lattice,
         provenance={"pipeline_text": cfg.get("_text", ""), "pipeline_file": cfg.get("_source", ""),
                     "route": route, "versions": _versions(),

@@ -480,3 +480,57 @@ def test_blurred_scans_run_to_the_end_with_the_defaults(blurred_run, reference_r
         assert f["reflections/r0/coherence/widths"].attrs["units"] == "Å⁻¹"
     page = (d / "out" / "report.html").read_text()
     assert "Coherence of the beam" in page and (d / "out" / "figures" / "coherence.png").exists()
+
+
+# ---------------------------------------------------------------- joint refinement
+
+def _with_joint(simulated, tmp_path, name):
+    """The module's run resumed with a short [joint] stage (its checkpoints
+    copied, so only the joint, defects and outputs stages run)."""
+    text = ((simulated / "sim" / "pipeline.toml").read_text() + NO_FILES
+            + "\n[joint]\nenabled = true\nmax_iterations = 2\n")
+    cfg = simulated / "sim" / f"{name}.toml"
+    cfg.write_text(text)
+    out = tmp_path / name
+    shutil.copytree(simulated / "out" / "checkpoints", out / "checkpoints")
+    return cfg, out
+
+
+def test_joint_stage_writes_both_tensors_and_its_likelihoods(simulated, reference_run, tmp_path):
+    from braggstrain.io.results import read_results
+
+    cfg, out = _with_joint(simulated, tmp_path, "joint")
+    res = run_pipeline(load_config(cfg), out, resume=True, progress=False, log=None)
+    assert res["phasing_s"] == 0.0 and "joint" in res["timings"]
+    r = read_results(out / "results.h5")
+    np.testing.assert_array_equal(r.tensor_independent.strain, reference_run["results"].tensor.strain)
+    assert not np.array_equal(r.tensor.strain, r.tensor_independent.strain)
+    j = r.joint
+    assert list(j["labels"]) == r.names and j["iterations"] >= 1
+    assert np.all(np.asarray(j["nll_after"]) < np.asarray(j["nll_before"]))
+    assert len(j["nll_history"]) == j["iterations"] + 1
+    from braggstrain.report.html import write_report
+
+    page = write_report(r, tmp_path / "report").read_text()
+    assert "<h2>Joint refinement</h2>" in page and f"{j['nll_after'][0]:.4g}" in page
+
+
+def test_a_refused_joint_stage_leaves_the_rest_of_the_results(simulated, reference_run, tmp_path, monkeypatch,
+                                                              capsys):
+    import braggstrain.joint as joint
+
+    real = joint.joint_stage
+
+    def failing(*args, **kwargs):  # as the pipeline names a reflection whose reconstruction is unusable
+        kwargs["failed"] = {"r1": "no usable reconstruction on the common grid"}
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(joint, "joint_stage", failing)
+    cfg, out = _with_joint(simulated, tmp_path, "refused")
+    assert main(["run", str(cfg), "--out", str(out), "--resume"]) == 0
+    printed = capsys.readouterr().out
+    assert "joint refinement not run: [joint]: reflection(s) ['r1'] failed" in printed
+    with h5py.File(out / "results.h5", "r") as f:
+        assert "r1" in f["joint"].attrs["error"] and "tensor_independent" not in f
+        np.testing.assert_array_equal(f["tensor/strain"][()], h5py.File(simulated / "out" / "results.h5", "r")
+                                      ["tensor/strain"][()])

@@ -204,6 +204,14 @@ def _check(results):
     names = set()
     out["reflections"] = [_check_reflection(r, j, shape, names) for j, r in enumerate(refl)]
     out["tensor"] = _check_tensor(results["tensor"], shape)
+    ti = results.get("tensor_independent")
+    out["tensor_independent"] = None if ti is None else _check_tensor(ti, shape)
+    jo = results.get("joint")
+    if jo is not None:
+        jo = _as_plain(jo)
+        if not isinstance(jo, dict):
+            raise InputError(f"results['joint']: expected a dict of plain values, got {type(jo).__name__}")
+    out["joint"] = jo
     lines = results.get("dislocations") or []
     for k, d in enumerate(lines):
         if not isinstance(d, Dislocation):

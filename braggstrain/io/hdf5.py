@@ -36,6 +36,8 @@ KNOWN_UNITS = {
     "displacement_gradient": "1 (dimensionless)", "strain": "1 (dimensionless)", "rotation": "rad",
     "lattice_parameter": "Å", "lattice_parameter_per_reflection": "Å", "residual": "Å⁻¹",
     "condition_number": "1", "reference_lattice_parameter": "Å",
+    "nll_history": "1 (negative log-likelihood per fitted voxel)",
+    "free_nll_history": "1 (negative log-likelihood per held-out voxel)",
 }
 
 HISTORY_UNITS = {

@@ -179,6 +179,14 @@ class Results:
         Mean normalised amplitude over the reflections.
     reflections : list of :class:`ReflectionResult`
     tensor : :class:`braggstrain.strain.tensor.TensorField`
+        From the joint objects when the joint stage ran, else from the
+        independent reconstructions.
+    tensor_independent : TensorField or None
+        The independent route's tensor, kept beside the joint one.
+    joint : dict or None
+        The joint stage's summary (per-reflection NLL before and after, its
+        history, scales, iterations), or ``{"error": message}`` when it was
+        refused; None when it was not asked for.
     dislocations : list of :class:`braggstrain.defects.lines.Dislocation`
     registration, mean_lattice, provenance : dict of plain values
         ``provenance`` holds ``pipeline_text``, ``command``, ``created``,
@@ -186,10 +194,11 @@ class Results:
     """
 
     def __init__(self, grid, support, amplitude, reflections, tensor, dislocations=(), registration=None,
-                 mean_lattice=None, provenance=None):
+                 mean_lattice=None, provenance=None, tensor_independent=None, joint=None):
         out = _check(dict(grid=grid, support=support, amplitude=amplitude, reflections=reflections,
                           tensor=tensor, dislocations=dislocations, registration=registration,
-                          mean_lattice=mean_lattice, provenance=provenance))
+                          mean_lattice=mean_lattice, provenance=provenance,
+                          tensor_independent=tensor_independent, joint=joint))
         g = out["grid"]
         self.grid = Grid(g["shape"], g["voxel_size"], g["origin"])
         self.support = out["support"]
@@ -200,6 +209,8 @@ class Results:
         self.registration = out["registration"]
         self.mean_lattice = out["mean_lattice"]
         self.provenance = out["provenance"]
+        self.tensor_independent = out["tensor_independent"]
+        self.joint = out["joint"]
 
     @classmethod
     def from_dict(cls, bundle):
@@ -249,7 +260,7 @@ class Results:
 
 
 _BUNDLE_KEYS = ("grid", "support", "amplitude", "reflections", "tensor", "dislocations", "registration",
-                "mean_lattice", "provenance")
+                "mean_lattice", "provenance", "tensor_independent", "joint")
 
 
 def _component_index(component):
@@ -318,62 +329,18 @@ def write_results(path, results):
                      "mean over reflections of the normalised reconstructed amplitude")
             _mask(c, "support", r.support, "voxels inside the crystal (common support)")
 
-            t = f.create_group("tensor")
-            comp_axes = "component (xx, yy, zz, yz, xz, xy), " + _GRID_AXES
-            _dataset(t, "strain", strain_components(tf.strain), "1 (dimensionless, tensile positive)", comp_axes,
-                     "strain tensor ε = (D + Dᵀ)/2; NaN outside the support and where the solve failed")
-            t["strain"].attrs["components"] = list(STRAIN_COMPONENTS)
-            _dataset(t, "strain_uncertainty", strain_components(tf.strain_uncertainty), "1 (dimensionless)",
-                     comp_axes, "one standard deviation of each strain component (what it includes: the "
-                     "attribute 'includes'); NaN where it cannot be estimated")
-            t["strain_uncertainty"].attrs["components"] = list(STRAIN_COMPONENTS)
-            basis = tf.uncertainty_basis or "not recorded"
-            t["strain_uncertainty"].attrs["includes"] = basis
-            vec_axes = "component (x, y, z), " + _GRID_AXES
-            _dataset(t, "rotation", tf.rotation, "rad", vec_axes,
-                     "lattice rotation: axial vector of (D − Dᵀ)/2, ω_x = (D_zy − D_yz)/2, ...")
-            _dataset(t, "rotation_uncertainty", tf.rotation_uncertainty, "rad", vec_axes,
-                     "one standard deviation of each rotation component")
-            t["rotation_uncertainty"].attrs["includes"] = basis
-            t.attrs["uncertainty_basis"] = basis
-            if tf.displacement is not None:
-                _dataset(t, "displacement", tf.displacement, "Å", vec_axes,
-                         "displacement vector u from the unwrapped phases, zero at the reference voxel; NaN "
-                         "outside the support and where unwrapping failed")
-            _dataset(t, "residual", tf.residual, "rad/Å", _GRID_AXES,
-                     "weighted RMS misfit of the phase gradients of all reflections to the fitted tensor")
-            _dataset(t, "residual_per_reflection", tf.residual_per_reflection, "rad/Å",
-                     "reflection (order of g_vectors), " + _GRID_AXES,
-                     "RMS misfit of each reflection's phase gradient")
-            _mask(t, "support", tf.support, "voxels where the tensor was solved")
-            _mask(t, "trusted", tf.trusted, "support eroded by one voxel with every amplitude above threshold")
-            _dataset(t, "g_vectors", tf.g_vectors, "Å⁻¹ (2π included)", "reflection, component (x, y, z)",
-                     "G vectors used for the tensor, sample frame", dtype=np.float64, compress=False)
-            t.attrs["labels"] = [str(s) for s in tf.labels]
-            t.attrs["condition_number"] = float(tf.condition_number)
-            t.attrs["reference_voxel"] = np.asarray(tf.reference, np.int64)
-            t.attrs["reference_position"] = grid.position(np.asarray(tf.reference, float))
-            t.attrs["reference_position_units"] = "Å, sample frame (on /grid): where the displacement is zero"
-            t.attrs["outlier"] = "" if tf.outlier is None else str(tf.outlier)
-            t.attrs["displacement_gradient"] = ("not stored: D = strain + W(rotation), W the antisymmetric "
-                                                "tensor of the rotation vector")
-            if tf.outlier_scores:
-                s = t.create_group("outlier_scores")
-                s.attrs["description"] = "leave-one-out consistency score per reflection label"
-                s.attrs["units"] = "1 (dimensionless)"
-                for k, v in tf.outlier_scores.items():
-                    s.attrs[str(k)] = float(v)
-
-            d = t.create_group("derived")
-            _dataset(d, "hydrostatic", tf.hydrostatic, "1 (dimensionless)", _GRID_AXES, "hydrostatic strain tr(ε)/3")
-            _dataset(d, "von_mises", tf.von_mises, "1 (dimensionless)", _GRID_AXES,
-                     "von Mises equivalent strain √(2/3 e:e), e the deviatoric strain")
-            pv, pd = tf.principal
-            _dataset(d, "principal_strains", pv, "1 (dimensionless)", "principal index (ε₁ ≥ ε₂ ≥ ε₃), " + _GRID_AXES,
-                     "principal strains, descending")
-            _dataset(d, "principal_directions", pd, "1 (unit vectors)",
-                     "component (x, y, z), principal index, " + _GRID_AXES,
-                     "principal_directions[:, m] is the direction of principal strain m (sign arbitrary)")
+            _write_tensor(f.create_group("tensor"), tf, grid)
+            if r.tensor_independent is not None:
+                ti = f.create_group("tensor_independent")
+                ti.attrs["description"] = ("the tensor of the independent route (each reflection phased alone), "
+                                           "kept beside /tensor, which comes from the joint refinement")
+                _write_tensor(ti, r.tensor_independent, grid)
+            if r.joint is not None:
+                _put(f, "joint", r.joint, "results['joint']")
+                f["joint"].attrs["description"] = (
+                    "joint refinement of all reflections (docs/joint.md): Poisson NLL per measured voxel of "
+                    "each reflection before and after (nll_before, nll_after, order of labels), the NLL of the "
+                    "fitted and of the held-out voxels per iteration, or 'error' when the stage was refused")
 
             rg = f.create_group("reflections")
             rg.attrs["order"] = r.names
@@ -403,6 +370,65 @@ def write_results(path, results):
             if extra:
                 _put(p, "other", extra, "results['provenance']")
     return path
+
+
+def _write_tensor(t, tf, grid):
+    """One TensorField into group ``t`` (``/tensor`` and ``/tensor_independent``)."""
+    comp_axes = "component (xx, yy, zz, yz, xz, xy), " + _GRID_AXES
+    _dataset(t, "strain", strain_components(tf.strain), "1 (dimensionless, tensile positive)", comp_axes,
+             "strain tensor ε = (D + Dᵀ)/2; NaN outside the support and where the solve failed")
+    t["strain"].attrs["components"] = list(STRAIN_COMPONENTS)
+    _dataset(t, "strain_uncertainty", strain_components(tf.strain_uncertainty), "1 (dimensionless)",
+             comp_axes, "one standard deviation of each strain component (what it includes: the "
+             "attribute 'includes'); NaN where it cannot be estimated")
+    t["strain_uncertainty"].attrs["components"] = list(STRAIN_COMPONENTS)
+    basis = tf.uncertainty_basis or "not recorded"
+    t["strain_uncertainty"].attrs["includes"] = basis
+    vec_axes = "component (x, y, z), " + _GRID_AXES
+    _dataset(t, "rotation", tf.rotation, "rad", vec_axes,
+             "lattice rotation: axial vector of (D − Dᵀ)/2, ω_x = (D_zy − D_yz)/2, ...")
+    _dataset(t, "rotation_uncertainty", tf.rotation_uncertainty, "rad", vec_axes,
+             "one standard deviation of each rotation component")
+    t["rotation_uncertainty"].attrs["includes"] = basis
+    t.attrs["uncertainty_basis"] = basis
+    if tf.displacement is not None:
+        _dataset(t, "displacement", tf.displacement, "Å", vec_axes,
+                 "displacement vector u from the unwrapped phases, zero at the reference voxel; NaN "
+                 "outside the support and where unwrapping failed")
+    _dataset(t, "residual", tf.residual, "rad/Å", _GRID_AXES,
+             "weighted RMS misfit of the phase gradients of all reflections to the fitted tensor")
+    _dataset(t, "residual_per_reflection", tf.residual_per_reflection, "rad/Å",
+             "reflection (order of g_vectors), " + _GRID_AXES,
+             "RMS misfit of each reflection's phase gradient")
+    _mask(t, "support", tf.support, "voxels where the tensor was solved")
+    _mask(t, "trusted", tf.trusted, "support eroded by one voxel with every amplitude above threshold")
+    _dataset(t, "g_vectors", tf.g_vectors, "Å⁻¹ (2π included)", "reflection, component (x, y, z)",
+             "G vectors used for the tensor, sample frame", dtype=np.float64, compress=False)
+    t.attrs["labels"] = [str(s) for s in tf.labels]
+    t.attrs["condition_number"] = float(tf.condition_number)
+    t.attrs["reference_voxel"] = np.asarray(tf.reference, np.int64)
+    t.attrs["reference_position"] = grid.position(np.asarray(tf.reference, float))
+    t.attrs["reference_position_units"] = "Å, sample frame (on /grid): where the displacement is zero"
+    t.attrs["outlier"] = "" if tf.outlier is None else str(tf.outlier)
+    t.attrs["displacement_gradient"] = ("not stored: D = strain + W(rotation), W the antisymmetric "
+                                        "tensor of the rotation vector")
+    if tf.outlier_scores:
+        s = t.create_group("outlier_scores")
+        s.attrs["description"] = "leave-one-out consistency score per reflection label"
+        s.attrs["units"] = "1 (dimensionless)"
+        for k, v in tf.outlier_scores.items():
+            s.attrs[str(k)] = float(v)
+
+    d = t.create_group("derived")
+    _dataset(d, "hydrostatic", tf.hydrostatic, "1 (dimensionless)", _GRID_AXES, "hydrostatic strain tr(ε)/3")
+    _dataset(d, "von_mises", tf.von_mises, "1 (dimensionless)", _GRID_AXES,
+             "von Mises equivalent strain √(2/3 e:e), e the deviatoric strain")
+    pv, pd = tf.principal
+    _dataset(d, "principal_strains", pv, "1 (dimensionless)", "principal index (ε₁ ≥ ε₂ ≥ ε₃), " + _GRID_AXES,
+             "principal strains, descending")
+    _dataset(d, "principal_directions", pd, "1 (unit vectors)",
+             "component (x, y, z), principal index, " + _GRID_AXES,
+             "principal_directions[:, m] is the direction of principal strain m (sign arbitrary)")
 
 
 _LINE_UNITS = {
@@ -622,7 +648,33 @@ def _read_all(f, path, version):
            "amplitude": _need(c, "amplitude", path)[()],
            "support": _need(c, "support", path)[()].astype(bool)}
 
-    t = _need(f, "tensor", path)
+    out["tensor"] = _read_tensor(_need(f, "tensor", path), grid, path)
+    if "tensor_independent" in f:
+        out["tensor_independent"] = _read_tensor(f["tensor_independent"], grid, path)
+    if "joint" in f:
+        out["joint"] = _get(raw_node(f["joint"]))
+
+    rg = _need(f, "reflections", path)
+    order = [str(s) for s in _plain(rg.attrs["order"])]
+    out["provenance"] = _read_provenance(_need(f, "provenance", path))
+    legacy_metric = _phasing_metric(out["provenance"]["pipeline_text"]) if version == 1 else None
+    out["reflections"] = [_read_reflection(_need(rg, name, path), path, legacy_metric) for name in order]
+    dg = _need(f, "dislocations", path)
+    out["dislocations"] = read_dislocations_h5(raw_node(dg))
+    if "points_frame" not in dg.attrs:
+        # written before the line points were put on the grid (issue 17): they were
+        # computed with the origin taken as zero, i.e. relative to the voxel at n//2
+        for d in out["dislocations"]:
+            d.points = d.points + grid.origin
+    for key in ("registration", "mean_lattice"):
+        out[key] = _get(raw_node(f[key])) if key in f else {}
+    return Results(**out)
+
+
+def _read_tensor(t, grid, path):
+    """A TensorField from a group written by :func:`_write_tensor`."""
+    from braggstrain.strain.tensor import TensorField
+
     strain = strain_from_components(_need(t, "strain", path)[()])
     rotation = _need(t, "rotation", path)[()]
     labels = [str(s) for s in _plain(t.attrs["labels"])]
@@ -647,23 +699,7 @@ def _read_all(f, path, version):
                          if k not in ("description", "units")} if "outlier_scores" in t else {}),
         uncertainty_basis=_text(t.attrs.get("uncertainty_basis")) or "",
     )
-    out["tensor"] = tf
-
-    rg = _need(f, "reflections", path)
-    order = [str(s) for s in _plain(rg.attrs["order"])]
-    out["provenance"] = _read_provenance(_need(f, "provenance", path))
-    legacy_metric = _phasing_metric(out["provenance"]["pipeline_text"]) if version == 1 else None
-    out["reflections"] = [_read_reflection(_need(rg, name, path), path, legacy_metric) for name in order]
-    dg = _need(f, "dislocations", path)
-    out["dislocations"] = read_dislocations_h5(raw_node(dg))
-    if "points_frame" not in dg.attrs:
-        # written before the line points were put on the grid (issue 17): they were
-        # computed with the origin taken as zero, i.e. relative to the voxel at n//2
-        for d in out["dislocations"]:
-            d.points = d.points + grid.origin
-    for key in ("registration", "mean_lattice"):
-        out[key] = _get(raw_node(f[key])) if key in f else {}
-    return Results(**out)
+    return tf
 
 
 def _read_provenance(p):

@@ -354,6 +354,27 @@ def _mean_lattice_section(r):
             "in Å).</p>\n" + _table(["quantity", "value"], _plain_rows(ml), text_cols=(0, 1)))
 
 
+def _joint_section(r):
+    """The joint refinement: refused (its message) or each reflection's NLL
+    per measured voxel before and after, and how the fit ended."""
+    j = r.joint
+    if not j:
+        return ""
+    if "error" in j:
+        return f"<h2>Joint refinement</h2>\n<p>Not run: {_e(j['error'])}</p>"
+    rows = [[_e(n), _num(a), _num(b)] for n, a, b in zip(j.get("labels", []), j.get("nll_before", []),
+                                                         j.get("nll_after", []))]
+    free = np.asarray(j.get("free_nll_history", []), float)
+    text = (f"<p>All reflections fitted together (docs/joint.md): {_e(j.get('iterations'))} L-BFGS-B iterations, "
+            f"the iterate with the lowest free log-likelihood kept ({_e(j.get('best_iteration'))}); "
+            f"{_e(j.get('message', ''))}. /tensor comes from the joint objects; the independent route's tensor "
+            f"is /tensor_independent in results.h5.")
+    if free.size > 1 and np.all(np.isfinite(free[[0, -1]])):
+        text += f" Free NLL per held-out voxel {_num(free[0])} → {_num(free[-1])}."
+    return ("<h2>Joint refinement</h2>\n" + text + "</p>\n"
+            + _table(["reflection", "NLL per voxel, start", "NLL per voxel, end"], rows, css="compact"))
+
+
 def _dislocation_section(r):
     from braggstrain.defects.lines import dislocations_to_records
 
@@ -506,6 +527,7 @@ def write_report(results, out_dir, figures=None, *, name="report.html", title=No
         _tensor_section(r),
         _mean_lattice_section(r),
         _registration_section(r),
+        _joint_section(r),
         _dislocation_section(r),
         _figure_section(figures),
         _provenance_section(r),

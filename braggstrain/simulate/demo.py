@@ -37,7 +37,7 @@ from braggstrain.io.scans import write_scan
 from braggstrain.strain.grid import Grid
 from braggstrain.strain.components import STRAIN_COMPONENTS, STRAIN_PAIRS, split_gradient
 
-__all__ = ["simulate_experiment", "truth_fields", "read_truth", "compare_to_truth"]
+__all__ = ["simulate_experiment", "truth_fields", "read_truth", "compare_to_truth", "compare_routes"]
 
 TRUTH_FORMAT = "braggstrain-truth"
 TRUTH_VERSION = 1
@@ -283,7 +283,7 @@ def _coverage(estimate, truth, sigma, mask):
             "median_sigma": float(np.median(s)), "voxels": n}
 
 
-def compare_to_truth(results, truth_path, as_text=True):
+def compare_to_truth(results, truth_path, as_text=True, tensor=None):
     """Compare :class:`~braggstrain.io.results.Results` with the simulator's ground truth.
 
     The reconstruction has no absolute position and may be the twin of the
@@ -303,6 +303,10 @@ def compare_to_truth(results, truth_path, as_text=True):
     component, the fraction of trusted voxels (``tensor.trusted``, away
     from the cores) whose error is within one and two reported σ.
 
+    ``tensor`` compares another TensorField on the same grid (e.g. the
+    results' ``tensor_independent``) over the same voxels; default the
+    results' own tensor.
+
     Returns text (``as_text``) or a dict of the numbers.
     """
     from skimage.registration import phase_cross_correlation
@@ -310,8 +314,8 @@ def compare_to_truth(results, truth_path, as_text=True):
     from braggstrain.strain.fields import trusted_for_gradients
 
     truth = read_truth(truth_path)
-    tf = results.tensor
-    sup = np.asarray(tf.support, bool)
+    sup = np.asarray(results.tensor.support, bool)
+    tf = results.tensor if tensor is None else tensor
     shape = sup.shape
     grid = results.grid
     vs = grid.voxel_size
@@ -438,3 +442,22 @@ def compare_to_truth(results, truth_path, as_text=True):
         else:
             txt.append(f"  dislocation b = [{bt}]: NOT found")
     return "\n".join(txt)
+
+
+def compare_routes(results, truth_path):
+    """The comparison with the truth, and, when the joint stage ran, the
+    strain RMS error of the independent and the joint route side by side
+    (same voxels) with their ratio. Text."""
+    txt = compare_to_truth(results, truth_path)
+    joint = results.joint or {}
+    if results.tensor_independent is None:
+        if "error" in joint:
+            txt += f"\n  joint refinement: not run ({joint['error']})"
+        return txt
+    a = compare_to_truth(results, truth_path, as_text=False)
+    b = compare_to_truth(results, truth_path, as_text=False, tensor=results.tensor_independent)
+    rows = ["  strain RMS error, independent route vs joint refinement (same voxels):",
+            "    " + "  ".join(f"{k} {b['strain_rms'][k]:.1e} → {a['strain_rms'][k]:.1e}" for k in a["strain_rms"]),
+            f"    all six: {b['strain_rms_all']:.2e} → {a['strain_rms_all']:.2e} "
+            f"(ratio joint/independent {a['strain_rms_all'] / b['strain_rms_all']:.2f})"]
+    return txt + "\n" + "\n".join(rows)
