@@ -186,6 +186,12 @@ SCHEMA = _Table(
                                   "along frame, row, column"),
         coherence_rotation=_Spec(list, None, check=_vec(3),
                                  doc="rotation vector (rad) of that blur's axes from the array axes"),
+        reflection_peak_counts=_Spec(dict, {}, doc="reflection name → its own peak counts (e.g. one weak "
+                                                   "reflection); the others get peak_counts"),
+        offset_nm=_Spec(list, [0.0, 0.0, 0.0], check=_vec(3),
+                        doc="the specimen's centre in the sample frame, nm (off-centre in the beam)"),
+        invert=_Spec(bool, False, doc="the truth is the point-inverted specimen (the twin of the one described); "
+                                      "the scans, whose intensity the twin shares exactly, are the same counts"),
         truth_voxel_nm=_Spec(NUM, 10.0, check=_positive),
         truth_shape=_Spec(list, [48, 48, 48], check=_vec(3, int, positive=True)),
         shape=_Table(
@@ -404,6 +410,8 @@ def build_specimen(cfg, crystal):
 
     Returns (shape, field, truth_lines) where truth_lines lists the
     dislocations as dicts (point Å, line unit vector, burgers lattice and Å).
+    ``offset_nm`` moves the whole specimen and ``invert`` point-inverts it
+    first (the twin: same ξ, −b, point −p; :class:`~braggstrain.simulate.forward.PlacedField`).
     """
     from braggstrain.simulate import forward as fw
 
@@ -478,4 +486,14 @@ def build_specimen(cfg, crystal):
             need("rotvec_deg")
             parts.append(fw.RigidRotation(np.radians(f["rotvec_deg"])))
     field_ = fw.FieldSum(parts) if parts else None
+    offset = np.asarray(sim["offset_nm"], float) * 10.0
+    invert = bool(sim["invert"])
+    if invert or np.any(offset):  # the whole specimen moved in the beam and/or point-inverted (its twin)
+        shape = fw.PlacedShape(shape, offset, invert)
+        field_ = None if field_ is None else fw.PlacedField(field_, offset, invert)
+        for ln in lines:
+            ln["point"] = fw.place_point(ln["point"], offset, invert)
+            if invert:
+                ln["burgers"] = -ln["burgers"]
+                ln["burgers_sample"] = -np.asarray(ln["burgers_sample"], float)
     return shape, field_, lines

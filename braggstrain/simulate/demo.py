@@ -31,7 +31,7 @@ import numpy as np
 
 from braggstrain.simulate import forward as fw
 from braggstrain.config import build_crystal, build_instrument, build_specimen
-from braggstrain.errors import ConfigError
+from braggstrain.errors import ConfigError, did_you_mean
 from braggstrain.io.files import atomic_path, mark_version, open_versioned, write_atomic
 from braggstrain.io.scans import write_scan
 from braggstrain.strain.grid import Grid
@@ -43,9 +43,9 @@ TRUTH_FORMAT = "braggstrain-truth"
 TRUTH_VERSION = 1
 
 
-def truth_fields(shape, field_, grid_shape, voxel_size):
-    """Ground truth on a sample-frame grid (origin zero): density, u, D, strain, rotation."""
-    coords = Grid(grid_shape, voxel_size).coordinates()
+def truth_fields(shape, field_, grid_shape, voxel_size, origin=(0.0, 0.0, 0.0)):
+    """Ground truth on a sample-frame grid (centred on ``origin``, Å): density, u, D, strain, rotation."""
+    coords = Grid(grid_shape, voxel_size, origin).coordinates()
     dens = np.zeros(grid_shape, np.float64)
     s = 2
     offs = (np.arange(s) + 0.5) / s - 0.5
@@ -82,11 +82,26 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
     out.mkdir(parents=True, exist_ok=True)
     crystal = build_crystal(cfg)
     inst = build_instrument(cfg)
-    shape, field_, lines = build_specimen(cfg, crystal)
+    shape, field_, lines = build_specimen(cfg, crystal)  # the truth
+    scan_shape, scan_field = shape, field_
+    if cfg["simulate"]["invert"]:
+        # the twin conj ρ(−r) has exactly the intensity of ρ (docs/design.md): the scans are simulated
+        # from the specimen as described, so they are the same counts bit for bit and a reconstruction's
+        # twin relation to the truth is the opposite of the original's; only the truth is inverted
+        scan_shape, scan_field, _ = build_specimen({**cfg, "simulate": {**cfg["simulate"], "invert": False}},
+                                                   crystal)
     sim = cfg["simulate"]
     src = cfg.get("_source", "<pipeline>")
-    rock = sim["rocking_circle"] or inst.sample_circles[0].name
-    inst.circle(rock)
+    rock_default = sim["rocking_circle"] or inst.sample_circles[0].name
+    inst.circle(rock_default)
+    names = [r["name"] for r in cfg["reflection"]]
+    for k, v in sim["reflection_peak_counts"].items():
+        if k not in names:
+            raise ConfigError(f"{src}: key 'simulate.reflection_peak_counts.{k}': no reflection of that name"
+                              f"{did_you_mean(k, names)}; expected one of {names}")
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not v > 0:
+            raise ConfigError(f"{src}: key 'simulate.reflection_peak_counts.{k}': expected positive peak counts, "
+                              f"got {v!r}")
     free = sim["free_circles"]
     if not free:
         raise ConfigError(f"{src}: key 'simulate.free_circles': expected the circles solved for the Bragg condition")
@@ -99,6 +114,12 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
     rng = np.random.default_rng(sim["seed"])
     for i, r in enumerate(cfg["reflection"]):
         name = r["name"]  # checked and defaulted by the schema
+        rock = r["rocking_circle"] or rock_default  # a reflection may be rocked about its own circle
+        try:
+            inst.circle(rock)
+        except Exception as e:
+            raise ConfigError(f"{src}: key 'reflection[{i}].rocking_circle': {e}") from None
+        counts = float(sim["reflection_peak_counts"].get(name, sim["peak_counts"]))
         if r["scan"] is None and r["frames"] is None:
             raise ConfigError(f"{src}: key 'reflection[{i}].scan': expected the scan file to write (or 'frames' "
                               "in a beamline form)")
@@ -121,10 +142,10 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
         n_rep = len(r["frames"]) if isinstance(r["frames"], list) else 1
         sims = []
         for k in range(n_rep):  # repeated scans: independent, peak_counts / n each, drifting k rows
-            scan = fw.simulate_scan(inst, crystal, r["hkl"], shape, field_, rocking_circle=rock,
+            scan = fw.simulate_scan(inst, crystal, r["hkl"], scan_shape, scan_field, rocking_circle=rock,
                                     n_frames=sim["frames"], step_deg=step, free_circles=free,
                                     fixed_angles=sim["fixed_angles"], peak_pixel=sim["peak_pixel"],
-                                    window=tuple(sim["window"]), peak_counts=sim["peak_counts"] / n_rep,
+                                    window=tuple(sim["window"]), peak_counts=counts / n_rep,
                                     background=sim["background"], hot_pixels=sim["hot_pixels"],
                                     coherence_sigma=sim["coherence_sigma"],
                                     coherence_rotation=sim["coherence_rotation"],
@@ -163,7 +184,8 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
             progress.update(1)
     vs = sim["truth_voxel_nm"] * 10.0
     gs = tuple(sim["truth_shape"])
-    dens, u, D, eps, rot = truth_fields(shape, field_, gs, vs)
+    offset = np.asarray(sim["offset_nm"], float) * 10.0  # the truth grid is centred on the specimen
+    dens, u, D, eps, rot = truth_fields(shape, field_, gs, vs, offset)
     truth = out / "truth.h5"
     with atomic_path(truth) as tmp:
         with h5py.File(tmp, "w") as f:
@@ -173,7 +195,7 @@ def simulate_experiment(cfg, out_dir, progress=None, log=print):
                 d = f.create_dataset(k, data=v, compression="gzip")
                 d.attrs["units"] = unit
             gg = f.create_group("grid")
-            tg = Grid(gs, vs)
+            tg = Grid(gs, vs, offset)
             gg.attrs["voxel_size"] = tg.voxel_size
             gg.attrs["origin"] = tg.origin
             gg.attrs["axes"] = "x, y, z (sample frame)"

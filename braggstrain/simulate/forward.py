@@ -49,6 +49,9 @@ __all__ = [
     "StraightDislocation",
     "DislocationLoop",
     "FieldSum",
+    "PlacedShape",
+    "PlacedField",
+    "place_point",
     "complex_object",
     "SimulatedScan",
     "detector_frame_grid",
@@ -511,6 +514,73 @@ class DislocationLoop(_Field):
         om = self.solid_angle(coords)
         b = np.asarray(self.burgers, float).reshape((3,) + (1,) * om.ndim)
         return b * om[None] / (4 * np.pi)
+
+
+# --------------------------------------------------------------------------
+# placement: a specimen moved in the beam, or point-inverted (its twin)
+# --------------------------------------------------------------------------
+
+def _placed_coords(coords, offset, invert):
+    """Where a point of the placed specimen was in the original one:
+    r₀ = r − t, or −(r − t) for the point-inverted specimen."""
+    coords = np.asarray(coords, float)
+    r = coords - np.asarray(offset, float).reshape((3,) + (1,) * (coords.ndim - 1))
+    return -r if invert else r
+
+
+def place_point(point, offset=(0.0, 0.0, 0.0), invert=False):
+    """Where a point of the original specimen goes: t + p, or t − p inverted."""
+    p = np.asarray(point, float)
+    return np.asarray(offset, float) + (-p if invert else p)
+
+
+@dataclass
+class PlacedShape:
+    """A shape translated by ``offset`` (Å, sample frame) and, with
+    ``invert``, point-inverted about its original origin first:
+    density′(r) = density(±(r − t)).
+
+    A translation only multiplies the far field by a phase ramp
+    exp(−i q·t) (the Fourier shift theorem; Bracewell, The Fourier
+    Transform and Its Applications, 3rd ed., 2000, ch. 6), so the measured
+    intensity does not change; the inversion gives the twin, whose
+    intensity is the same too (see :class:`PlacedField`)."""
+
+    base: object
+    offset: Sequence[float] = (0.0, 0.0, 0.0)
+    invert: bool = False
+
+    def signed_distance(self, coords):
+        return self.base.signed_distance(_placed_coords(coords, self.offset, self.invert))
+
+    def density(self, coords, edge_width=0.0):
+        return self.base.density(_placed_coords(coords, self.offset, self.invert), edge_width)
+
+    def inscribed_extent(self):
+        return self.base.inscribed_extent()
+
+
+@dataclass
+class PlacedField(_Field):
+    """A displacement field moved with its specimen (:class:`PlacedShape`).
+
+    Translated: u′(r) = u(r − t), D′(r) = D(r − t). Point-inverted (the
+    twin: ρ′(r) = conj ρ(−r) = s(−r)·exp(−i G·u′(r)) with u′(r) = −u(−r)):
+    D′(r) = D(−r), the same strain at the mirrored point, and a
+    dislocation through p with line ξ and Burgers vector b becomes one
+    through −p with the same ξ and −b (a circuit right-handed about ξ maps
+    to one right-handed about ξ, and u changes sign)."""
+
+    base: object
+    offset: Sequence[float] = (0.0, 0.0, 0.0)
+    invert: bool = False
+
+    def displacement(self, coords):
+        u = self.base.displacement(_placed_coords(coords, self.offset, self.invert))
+        return -u if self.invert else u
+
+    def gradient(self, coords, step=1e-3):
+        return self.base.gradient(_placed_coords(coords, self.offset, self.invert), step)
 
 
 # --------------------------------------------------------------------------
