@@ -60,7 +60,7 @@ COVERAGE_1SIGMA = (0.60, 0.76)
 STRAIN_FLOOR = 2.0e-4
 #: the part of the base error taken to be counting noise at 10⁵ counts;
 #: phase noise from Poisson counts scales as 1/√N (e.g. Cramér–Rao for a
-#: Poisson phase estimate; Williams et al., Phys. Rev. B 73, 094112, 2006)
+#: Poisson phase estimate; Williams et al., Phys. Rev. B 73, 094112, 2006; citation from memory)
 NOISE_AT_1E5 = 1.0e-4
 BASE_COUNTS = 1e5
 
@@ -456,7 +456,7 @@ CONDITIONS = (
               "reconstruction is forced to the opposite twin relation to the truth", STRAIN_FLOOR,
               "the base case's reconstruction: base target", _twin),
     Condition("oversampling_2.2", "oversampling", "oversampling ≈ 2.2 along the rocking axis (larger q step)",
-              1.5 * STRAIN_FLOOR, "near the limit of 2 (Miao et al., J. Opt. Soc. Am. A 15, 1662, 1998) "
+              1.5 * STRAIN_FLOOR, "near the limit of 2 (Miao et al., J. Opt. Soc. Am. A 15, 1662, 1998, from memory) "
               "phasing converges less well: base ×1.5", _oversampling(2.2)),
     Condition("refl3_weak", "reflections", "three reflections, (0 0 2) weak (10× fewer counts)",
               counts_target(1e4), "no redundancy: the weak reflection's noise goes straight into the "
