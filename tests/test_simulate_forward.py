@@ -204,3 +204,15 @@ def test_inverted_dislocation_is_the_twin():
     b = np.asarray(d.burgers, float)
     du -= np.round((b @ du) / (b @ b)) * b[:, None]
     np.testing.assert_allclose(du.sum(axis=1), -b, atol=1e-6)
+
+
+def test_a_rocking_circle_about_g_is_refused_before_any_work():
+    # The real-space grid conjugate to q ≈ M·n needs M invertible (docs/methods.md);
+    # a rocking circle turning about G leaves the frame column of M zero.
+    from braggstrain.errors import GeometryError
+
+    M = np.array([[0.0, 1e-3, 0.0], [0.0, 0.0, 1e-3], [0.0, 2e-4, 1e-4]])
+    with pytest.raises(GeometryError, match="rocking circle"):
+        fw.detector_frame_grid(M, (32, 32, 32))
+    ok = np.diag([1e-3, 2e-3, 3e-3])
+    np.testing.assert_allclose(fw.detector_frame_grid(ok, (32, 32, 32)) @ ok.T, 2 * np.pi / 32 * np.eye(3), atol=1e-12)

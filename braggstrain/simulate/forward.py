@@ -29,7 +29,7 @@ from typing import Sequence
 
 import numpy as np
 
-from braggstrain.errors import InputError
+from braggstrain.errors import GeometryError, InputError
 from braggstrain.geometry.rotation import rotation_from_rotvec
 
 __all__ = [
@@ -654,6 +654,12 @@ def detector_frame_grid(linear_map, shape):
     (3×3, Å per index step; columns along the array's axes)."""
     M = np.asarray(linear_map, float)
     N = np.asarray(shape, float)
+    cols = np.linalg.norm(M, axis=0)
+    if not np.all(cols > 0) or abs(np.linalg.det(M)) <= 1e-9 * np.prod(cols):
+        raise GeometryError(
+            f"linear map {np.round(M, 8).tolist()} (Å⁻¹ per frame, row, column) is singular: the rocking circle "
+            "does not move Q out of the detector plane at these settings (for example it turns about G itself); "
+            "expected a rocking circle whose axis is not parallel to G (fix another circle or rock another one)")
     return 2 * np.pi * np.linalg.inv(M).T / N[None, :]
 
 
