@@ -67,31 +67,23 @@ def coverage_note(rows):
 #: rows whose coverage fails for a reason of their own (their NOTES say it)
 OWN_COVERAGE_REASON = {"distance_1pct"}
 NOTES = {
-    "coherence_1.0": (
-        "the pipeline stopped at registration: the (0 0 2) reconstruction's support overlaps the reference "
-        "(1 1 1)'s with Dice 0.62 (0.7 required). The default phasing has no partial-coherence model "
-        "(`[phasing] coherence = false`), and a blur of σ 1 voxel spoils the reconstruction of at least one "
-        "reflection; at σ 0.5 and with the anisotropic kernel the chain keeps its strain within target. Issue 18 "
-        "(partial coherence) covers it."),
     "gap_near_peak": (
-        "prepare refused the data: with the detector's module gap 8 columns beside the peak, the oversampling "
+        "prepare refuses the data: with the detector's module gap 8 columns beside the peak, the oversampling "
         "estimate along columns falls to 1.95 (the same crystal and geometry with the gap 22 columns away, the "
-        "base case, give 4.94; the same scan simulated without the gap gives 4.94 too), and the check of "
-        "`[prepare] bin = [1, 2, 2]` refuses it. The masked gap columns spoil the estimate in "
-        "braggstrain/prepare/oversampling.py, a fault of that stage; no open issue covers it yet. (Found when "
-        "distance_1pct first put its peak there; that condition now moves its peak away from the gap.)"),
+        "base case, give 4.94; the same scan simulated without the gap gives 4.94 too; measured before the "
+        "rebase onto the joint-refinement merge), and the check of `[prepare] bin = [1, 2, 2]` refuses it. The "
+        "masked gap columns spoil the estimate in braggstrain/prepare/oversampling.py, a fault of that stage; no "
+        "open issue covers it yet. (Found when distance_1pct first put its peak there; that condition now moves "
+        "its peak away from the gap.)"),
     "distance_1pct": (
-        "strain and line pass: absolute RMS 8.2·10⁻⁵, relative (means removed) 7.5·10⁻⁵. The 1 % distance error "
-        "shows as a uniform bias (−4·10⁻⁵ in xx and yy, −6·10⁻⁵ in zz), which σ does not include: it is a "
-        "calibration error, not noise, hence the low coverage (0.20–0.58). Not a fault of the chain: absolute "
-        "strain needs a calibrated geometry (README, Cautions)."),
-    "refl3_weak": (
-        "the closest to calibrated: 1σ coverage 0.59–0.71, only zz and xz at 0.59 (with three reflections σ comes "
-        "from the spread of the kept runs and replicas alone, issue 21)."),
+        "the 1 % distance error shows as a uniform bias (the bias columns: a few 10⁻⁵ on the diagonal), which σ "
+        "does not include: it is a calibration error, not noise, hence the low coverage. Not a fault of the "
+        "chain: absolute strain needs a calibrated geometry (README, Cautions); the relative column is the "
+        "error with each component's mean removed."),
     "twin": (
-        "the base case's counts bit for bit with the truth point-inverted: the same reconstruction, compared "
-        "with the truth as the twin where the base case's is not (or the other way round), and the same numbers: "
-        "the twin bookkeeping of the comparison, the lines and the Burgers vector holds."),
+        "the base case's counts bit for bit with the truth point-inverted: the same reconstruction as the base "
+        "case, compared with the truth under the opposite twin relation (the Dice column says which), and the "
+        "same numbers: the twin bookkeeping of the comparison, the lines and the Burgers vector holds."),
 }
 
 
