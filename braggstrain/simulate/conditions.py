@@ -305,12 +305,26 @@ def _coherence(sigma_prepared, rotation=None):
 
 
 def _rock_inner(cfg):
-    # phi, the innermost circle, for the reflections off its axis; (1 1 1)
-    # lies along the phi axis ([111] up), so phi cannot rock it, and chi
-    # (about the beam) moves Q along the detector's columns (a singular q
-    # map): it stays on eta
+    """phi, the innermost circle, for every reflection phi can rock at the
+    angles the simulator solves for; the others stay on eta. (1 1 1) lies
+    along the phi axis ([111] up), so phi cannot rock it; and where the
+    solver puts chi at 0, phi's axis lies in the vertical scattering plane
+    and turns Q along the detector's columns: the q map is singular."""
+    import tempfile
+
+    from braggstrain.config import build_crystal, build_instrument, load_config
+
+    with tempfile.TemporaryDirectory() as tmp:
+        p = Path(tmp) / "pipeline.toml"
+        p.write_text(to_toml(cfg))
+        checked = load_config(p)
+    crystal, inst, sim = build_crystal(checked), build_instrument(checked), checked["simulate"]
+    pixel = sim["peak_pixel"] or inst.detector.direct_beam
     for r in cfg["reflection"]:
-        r["rocking_circle"] = "eta" if r["hkl"] == [1, 1, 1] else "phi"
+        g = crystal.reflection(r["hkl"], inst.energy_kev).g_sample
+        ang = inst.solve_bragg(g, free=sim["free_circles"], fixed=sim["fixed_angles"], pixel=pixel)
+        M, _, _ = inst.linear_map(ang, "phi", 0.01, pixel)
+        r["rocking_circle"] = "phi" if np.linalg.cond(M) < 100 else "eta"
 
 
 def _nu(value):
@@ -435,7 +449,8 @@ CONDITIONS = (
               "0.5 rad about the column axis from (frame, row, column)",
               1.5 * STRAIN_FLOOR, "as σ 1.0 along its widest axis: base ×1.5",
               _coherence((1.0, 0.3, 0.6), rotation=(0.0, 0.0, 0.5))),
-    Condition("rock_inner", "geometry", "rocked about the innermost circle, phi (the (1 1 1), on phi's axis, about eta)",
+    Condition("rock_inner", "geometry", "rocked about the innermost circle, phi, wherever phi can rock the "
+              "reflection (full size: all but the (1 1 1), on phi's axis; reduced: (2 0 0) and (0 2 0))",
               STRAIN_FLOOR, _GEOMETRY_WHY, _rock_inner),
     Condition("nu_plus", "geometry", "detector arm out of the vertical plane, ν = +6°", STRAIN_FLOOR,
               _GEOMETRY_WHY, _nu(6.0)),
