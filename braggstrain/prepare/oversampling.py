@@ -32,14 +32,19 @@ def estimate_oversampling(intensity, threshold=0.005, mask=None):
     high; with the default threshold 0.005, measured on the simulator's
     faceted crystals, σ is 0–15 % high for peaks of 10⁴–10⁶ counts (a lower
     threshold reaches the noise of weaker peaks). Masked voxels are filled
-    from their neighbours first; a masked plane through the bright centre of
-    the peak (within a few voxels of it) still leaves an error that
-    stretches the autocorrelation across the array along the plane's normal,
-    and σ then comes out too low on that axis (measured: a masked detector
-    row 1–5 pixels from the peak of a 300 nm cube gives 1.99 instead of
-    2.96; 10 or more pixels away, no change). Where the autocorrelation
-    reaches across the whole axis (it wraps around the periodic array:
-    σ < 2), L is read as its width at half maximum instead (a box's tent is
+    from their neighbours first, then refined so that the autocorrelation
+    stays in the central 3/4 of each axis (band-limited extrapolation, 40
+    rounds). A smoothed fill alone leaves, along a masked plane near the
+    bright centre of the peak, an error that stretches the autocorrelation
+    across the array along the plane's normal, and σ came out far too low
+    there; the refinement removes most of it (measured on a 300 nm cube at
+    10⁶ counts, σ 2.96 unmasked, three masked detector rows or columns 1–5
+    pixels from the peak: 1.95 before, 2.36–2.83 after; 8 or more pixels
+    away, no change; the accuracy matrix's gap_near_peak case, full size,
+    module gap 8 columns from the (1 1 1) peak, binned 2 × 2: 1.95 before,
+    3.40 after, 4.94 with the gap 22 columns away). Where the
+    autocorrelation reaches across the whole axis (it wraps around the
+    periodic array: σ < 2), L is read as its width at half maximum instead (a box's tent is
     L wide there) and σ is capped at 1.95. Meant for checks and warnings:
     the preparation records it, ``inspect`` prints it and phase retrieval
     warns with it (:class:`braggstrain.phasing.OversamplingWarning`).
@@ -75,6 +80,7 @@ def estimate_oversampling(intensity, threshold=0.005, mask=None):
         den = ndimage.gaussian_filter(w, 1.5, mode="constant")
         fill = np.where(den > 1e-3, num / np.maximum(den, 1e-3), 0.0)
         i = np.where(m, fill, i)
+        i = _extrapolate_masked(i, m)
     if not np.any(i > 0):
         raise InputError("intensity: all zero, cannot estimate the oversampling")
     ac = np.abs(scipy.fft.fftshift(scipy.fft.ifftn(scipy.fft.ifftshift(i))))
@@ -102,3 +108,32 @@ def estimate_oversampling(intensity, threshold=0.005, mask=None):
             length = max(int(np.count_nonzero(half.any(axis=other))), 1)
             out.append(min(n / length, 1.95))
     return np.asarray(out)
+
+
+def _extrapolate_masked(intensity, mask, iterations=40):
+    """Refine the masked voxels so that the autocorrelation stays inside the
+    central 3/4 of every axis (no crystal sampled with σ > 8/3 reaches
+    further): alternating projections between the measured values and that
+    compact support (band-limited extrapolation: Gerchberg, Optica Acta 21,
+    709 (1974); Papoulis, IEEE Trans. Circuits Syst. 22, 735 (1975); both
+    cited from memory). A smoothed fill leaves an error along a masked
+    plane near the peak that spreads along the plane's normal across the
+    whole autocorrelation; this removes it."""
+    import scipy.fft
+
+    if not mask.any():
+        return intensity
+    keep = np.ones(intensity.shape, bool)
+    for axis, n in enumerate(intensity.shape):
+        c = max(1, n // 8)
+        sl = [slice(None)] * 3
+        sl[axis] = np.r_[0:c, n - c:n]
+        keep[tuple(sl)] = False
+    keep = scipy.fft.ifftshift(keep)  # the autocorrelation's origin at index 0
+    i = intensity.copy()
+    for _ in range(iterations):
+        ac = scipy.fft.ifftn(i)
+        ac[~keep] = 0
+        model = scipy.fft.fftn(ac).real
+        i[mask] = np.maximum(model[mask], 0.0)
+    return i
