@@ -61,3 +61,35 @@ def test_bad_arguments_name_the_argument():
         poisson_replicas(clean_intensity(N), None, obj, support, replicas=1)
     with pytest.raises(InputError, match="support: expected the shape"):
         poisson_replicas(clean_intensity(N), None, obj, support[:-1])
+
+
+def test_a_replica_phased_with_a_kernel_stays_finite():
+    # A Gaussian crystal (its far field falls far below the float32 rounding
+    # of the blurred model, about 1e-7 of the peak, at high q) and one stray
+    # count per voxel, as a detector background gives: the modulus step
+    # against the blurred model must not divide by a model rounded to zero.
+    # The check is the bound of a convolution of non-negative terms,
+    # (k * I)(q) >= k(0) I(q) (every term of the sum is >= 0), against the
+    # reference convolution of scipy.ndimage (wrap mode, as the FFT's).
+    import scipy.ndimage
+
+    from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings
+    from braggstrain.phasing.metrics import far_field
+    from braggstrain.simulate.forward import gaussian_coherence_kernel
+
+    r = np.indices((N, N, N)) - N // 2
+    obj = (np.exp(-(r ** 2).sum(0) / (2 * 3.0 ** 2)) * np.exp(0.3j * r[0])).astype(np.complex64)
+    kernel = gaussian_coherence_kernel(0.5, half_width=2)
+    clean = np.abs(far_field(obj).astype(np.complex128)) ** 2
+    blurred = scipy.ndimage.convolve(clean, kernel, mode="wrap")
+    scale = 1e5 / blurred.max()
+    rs = poisson_replicas(blurred * scale + 1.0, None, obj * np.float32(np.sqrt(scale)), np.abs(obj) > 1e-2,
+                          replicas=2, iterations=12, seed=1, coherence_kernel=kernel)
+    assert np.isfinite(rs.baseline).all() and np.isfinite(rs.replicas).all()
+    coh = CoherenceModel((N, N, N), CoherenceSettings(half_width=2))
+    coh.kernel, coh.is_delta = kernel, False
+    model = np.fft.ifftshift(clean * scale).astype(np.float32)
+    out = coh.blur(model.copy())
+    assert np.all(out >= np.float32(kernel[2, 2, 2]) * model)
+    ref = np.fft.ifftshift(blurred * scale)
+    assert np.abs(out - ref).max() < 1e-5 * ref.max()

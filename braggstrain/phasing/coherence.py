@@ -212,15 +212,26 @@ class CoherenceModel:
         return scipy.fft.rfftn(full, workers=self.threads)
 
     def blur(self, model):
-        """Convolve ``model`` (float32, FFT order, flat or 3-D) with the kernel, in place."""
+        """Convolve ``model`` (float32, FFT order, flat or 3-D) with the kernel, in place.
+
+        Every term of the convolution of a non-negative ``model`` with the
+        non-negative kernel is >= 0, so the result is at least the kernel's
+        centre k(0) times ``model``; the result is held to that bound.  The
+        FFT's rounding (about 1e-7 of the largest value in float32) would
+        otherwise leave zeros or negative values where the model is weak, and
+        a modulus step dividing by the blurred model there sends the iterate
+        to infinity; with the bound, |psi| / sqrt(blurred) <= 1 / sqrt(k(0)).
+        """
         if self.is_delta:
             return model
         if self._khat is None:
             self._khat = self._embed()
+        w = self.settings.half_width
         m3 = model.reshape(self.shape)
+        floor = m3 * np.float32(self.kernel[w, w, w])
         m3[...] = scipy.fft.irfftn(scipy.fft.rfftn(m3, workers=self.threads) * self._khat,
                                    s=self.shape, workers=self.threads)
-        np.maximum(m3, 0, out=m3)
+        np.maximum(m3, floor, out=m3)
         return model
 
     def update(self, coherent, intensity, measured, background=0.0):

@@ -23,6 +23,7 @@ import numpy as np
 
 from braggstrain.errors import InputError
 from braggstrain.phasing.coherence import CoherenceModel, CoherenceSettings
+from braggstrain.phasing import kernels as _k
 from braggstrain.phasing.fft import FFTBackend
 
 __all__ = ["ReplicaSet", "poisson_replicas"]
@@ -83,15 +84,19 @@ def _phase_one(args):
     if kernel is not None:  # the partial-coherence model the object was phased with, kernel fixed
         coh = CoherenceModel(shape, CoherenceSettings(half_width=kernel.shape[0] // 2))
         coh.kernel, coh.is_delta = np.asarray(kernel, float), False
+        bflat = buf.reshape(-1)
+        model = np.empty(buf.size, np.float32)
+        amp_model = np.where(meas, amp, -1).astype(np.float32).reshape(-1)  # < 0: left free
     for it in range(iterations):
         buf[...] = x
         fft.forward()
         if coh is None:
-            mod = np.abs(buf)
-        else:  # modulus of the model intensity |Psi|^2 convolved with the kernel
-            mod = np.sqrt(coh.blur((np.abs(buf) ** 2).astype(np.float32)))
-        scale = np.where(meas, amp / np.maximum(mod, 1e-30), 1.0).astype(np.float32)
-        buf *= scale
+            scale = np.where(meas, amp / np.maximum(np.abs(buf), 1e-30), 1.0).astype(np.float32)
+            buf *= scale
+        else:  # the phasing engine's modulus step against |Psi|^2 convolved with the kernel
+            _k.intensity_of(bflat, model)
+            coh.blur(model)
+            _k.modulus_step_model(bflat, amp_model, model, np.float32(0.0), np.float32(1.0))
         fft.backward()
         y = buf * n
         if it < n_raar:
