@@ -31,15 +31,16 @@ from braggstrain.simulate.conditions import BASE_REDUCED, by_name, run_condition
 #:
 #: Measured at the reduced size, after the rebase onto the joint-refinement
 #: merge (strain RMS / target and line distance in voxels, seed +0; seed +1):
-#: roi 1.13, 0.12; 1.03, 0.32 — off_centre 0.86, 0.54; 1.26, 0.39 —
-#: rock_inner 1.23, 0.20 (seed +1). Every condition measured (also base,
-#: nu_minus, columns_minus_x, distance_1pct) found the line with the right
-#: Burgers vector in both draws. "roi" stands for the base case as well: it stores the same counts as a detector region,
-#: and its rows equal the base case's to the last digit; "twin" is left to
-#: the benchmark, being the same reconstruction as "roi" compared under the
-#: opposite twin relation; "rock_inner" (the slowest, 115 s of a loaded
-#: suite run) is left to the benchmark too. Two conditions keep this near a
-#: minute on two cores (about 35 s each on an idle machine).
+#: roi 1.13, 0.12; 1.03, 0.32 — off_centre 0.86, 0.54; 1.26, 0.39 — rock_inner
+#: 1.23, 0.20 (seed +1). Every condition measured (also base, nu_minus,
+#: columns_minus_x, distance_1pct) found the line with the right Burgers
+#: vector in both draws. "roi" stands for the base case as well: it stores the
+#: same counts as a detector region, and its rows equal the base case's to the
+#: last digit; "twin" is left to the benchmark, being the same reconstruction
+#: as "roi" compared under the opposite twin relation; "rock_inner" (the
+#: slowest, 115 s of a loaded suite run) is left to the benchmark too. Two
+#: conditions keep this near a minute on two cores (about 35 s each on an idle
+#: machine).
 STRAIN_GUARD = 1.5
 ASSERTED = {
     "roi": ("burgers", "strain_guard"),
