@@ -133,6 +133,9 @@ def main(argv=None):
                     help="the soft-edged crystal half the array across, or the small one (--frac)")
     ap.add_argument("--frac", type=float, default=0.3,
                     help="(small crystal) its size as a fraction of the array (oversampling about 1/frac)")
+    ap.add_argument("--no-gap", action="store_true", help="no masked detector columns")
+    ap.add_argument("--free-fraction", type=float, default=0.03,
+                    help="(clean, ceiling) fraction of measured voxels held out")
     ap.add_argument("--average", type=int, default=0,
                     help="(ceiling) iterations of an averaged HIO stage before the closing ER")
     ap.add_argument("--thresholds", type=float, nargs="+", default=[0.2, 0.03, 0.01, 0.001],
@@ -152,7 +155,7 @@ def main(argv=None):
     n = args.size
     obj = (soft_crystal(n, args.edge, args.phase_span) if args.crystal == "soft"
            else small_crystal(n, args.frac, args.edge))
-    mask = gap_mask(n)
+    mask = None if args.no_gap else gap_mask(n)
     clean = np.abs(far_field(obj).astype(np.complex128)) ** 2
     amp = np.abs(obj)
     from braggstrain.prepare.oversampling import estimate_oversampling
@@ -169,7 +172,8 @@ def main(argv=None):
         errors = []
         for s in range(args.seeds):
             t0 = time.perf_counter()
-            rec = reconstruct(clean, mask, seed=s, threads=args.threads, raise_on_failure=False)
+            rec = reconstruct(clean, mask, seed=s, threads=args.threads, raise_on_failure=False,
+                              free_fraction=args.free_fraction)
             e = err(rec.obj, rec.ramp) if rec.ok else float("nan")
             errors.append(e)
             print(f"seed {s}: {rec.status}, complex error {e:.4f}, support {rec.metrics.support_size}, "
@@ -205,13 +209,14 @@ def main(argv=None):
             support = amp > t * amp.max()
             outside = float((amp[~support] ** 2).sum() / (amp ** 2).sum())
             rec = reconstruct(clean, mask, support=support, start=obj * support, plan=polish, seed=0,
-                              threads=args.threads, remove_ramp=False)
+                              threads=args.threads, remove_ramp=False, free_fraction=args.free_fraction)
             line = (f"support above {t:g} of the maximum: {int(support.sum())} voxels, "
                     f"{outside:.1e} of |rho|^2 outside; from the truth: complex error "
                     f"{err(rec.obj, np.zeros(3)):.4f} misfit {rec.metrics.amplitude_error:.1e}")
             starts = []
             for s in range(args.seeds):
-                rec = reconstruct(clean, mask, support=support, plan=search, seed=s, threads=args.threads)
+                rec = reconstruct(clean, mask, support=support, plan=search, seed=s, threads=args.threads,
+                                  free_fraction=args.free_fraction)
                 starts.append(f"{err(rec.obj, rec.ramp):.4f} ({rec.metrics.amplitude_error:.1e})")
             print(line + "; random starts: " + ", ".join(starts), flush=True)
     else:
