@@ -96,10 +96,6 @@ def test_masked_gap_is_filled_in():
     assert err <= 0.03, f"complex error {err:.4f}"
 
 
-# The gap 3-4 voxels from the peak makes the oversampling estimate read 1.95
-# along axis 2 (a limitation documented in prepare.oversampling); the
-# crystal's true oversampling is about 3.5 on every axis.
-@pytest.mark.filterwarnings("ignore::braggstrain.phasing.OversamplingWarning")
 def test_soft_edge_needs_a_support_that_keeps_it():
     # Noise-free data of a soft-edged crystal (test_phasing_helpers.soft_crystal,
     # 40^3, edge blurred by 0.6 voxel, a two-column gap), started from the
