@@ -16,6 +16,13 @@ Cases (``--case``):
   noise floor, the error of a run started from the true object running the
   closing stages of the default plan (stages 3 and 4) on the same counts;
   the line ``ensemble/noise_floor=<ratio>``;
+* ``ceiling``: what the support alone can give on the noise-free data,
+  without any support rule: for each ``--thresholds`` value t, the *true*
+  support (voxels above t of the maximum density, held fixed) is used (a)
+  from the true object (ER only: how far the truth itself moves on that
+  support) and (b) from ``--seeds`` random starts (600 HIO, then
+  ``--average`` HIO iterations averaged when that is > 0, then ER); the
+  errors and the final misfits;
 * ``blurred``: the noise-free intensity convolved with a Gaussian coherence
   function (``--blur`` sigma(s) in voxels, ``--blur-rotation`` a rotation
   vector for axes that are not the array axes), phased with and without the
@@ -31,6 +38,7 @@ Usage::
 
     python benchmarks/phasing_accuracy.py --case clean --seeds 10 --size 48
     python benchmarks/phasing_accuracy.py --case noisy --seeds 2
+    python benchmarks/phasing_accuracy.py --case ceiling --crystal small --frac 0.4 --size 40 --seeds 3
     python benchmarks/phasing_accuracy.py --case blurred --blur 1.0 --seeds 2
     python benchmarks/phasing_accuracy.py --case blurred --blur 0.5 --ensemble --runs 6 --keep 3
     python benchmarks/phasing_accuracy.py --case blurred --crystal small --size 40 --counted \
@@ -106,7 +114,7 @@ def gaussian_coherence_kernel(sigmas, rotvec=(0.0, 0.0, 0.0), half_width=6):
 
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--case", choices=("clean", "noisy", "blurred"), default="clean")
+    ap.add_argument("--case", choices=("clean", "noisy", "ceiling", "blurred"), default="clean")
     ap.add_argument("--size", type=int, default=48)
     ap.add_argument("--seeds", type=int, default=10)
     ap.add_argument("--edge", type=float, default=0.6, help="Gaussian blur of the density, voxels")
@@ -122,7 +130,16 @@ def main(argv=None):
                     help="(blurred) one ensemble (--runs, --keep, seed 1) instead of single runs")
     ap.add_argument("--threads", type=int, default=1)
     ap.add_argument("--crystal", choices=("soft", "small"), default="soft",
-                    help="the soft-edged crystal half the array across, or the small one (0.3)")
+                    help="the soft-edged crystal half the array across, or the small one (--frac)")
+    ap.add_argument("--frac", type=float, default=0.3,
+                    help="(small crystal) its size as a fraction of the array (oversampling about 1/frac)")
+    ap.add_argument("--no-gap", action="store_true", help="no masked detector columns")
+    ap.add_argument("--free-fraction", type=float, default=0.03,
+                    help="(clean, ceiling) fraction of measured voxels held out")
+    ap.add_argument("--average", type=int, default=0,
+                    help="(ceiling) iterations of an averaged HIO stage before the closing ER")
+    ap.add_argument("--thresholds", type=float, nargs="+", default=[0.2, 0.03, 0.01, 0.001],
+                    help="(ceiling) thresholds of the true support, fractions of the maximum density")
     ap.add_argument("--counted", action="store_true",
                     help="(blurred) Poisson counts at --peak in the brightest voxel (seed 50 + --seed)")
     ap.add_argument("--seed", type=int, default=1, help="(blurred --ensemble) the ensemble's seed")
@@ -132,17 +149,21 @@ def main(argv=None):
 
     from scipy.ndimage import convolve
 
-    from braggstrain.phasing import complex_error, default_plan, ensemble, reconstruct
+    from braggstrain.phasing import PhasingStage, complex_error, default_plan, ensemble, reconstruct
     from braggstrain.phasing.metrics import far_field, remove_phase_ramp
 
     n = args.size
-    obj = soft_crystal(n, args.edge, args.phase_span) if args.crystal == "soft" else small_crystal(n)
-    mask = gap_mask(n)
+    obj = (soft_crystal(n, args.edge, args.phase_span) if args.crystal == "soft"
+           else small_crystal(n, args.frac, args.edge))
+    mask = None if args.no_gap else gap_mask(n)
     clean = np.abs(far_field(obj).astype(np.complex128)) ** 2
     amp = np.abs(obj)
+    from braggstrain.prepare.oversampling import estimate_oversampling
+
     print(f"crystal {n}^3: {int((amp > 0.2 * amp.max()).sum())} voxels above 20 % of the "
           f"maximum density, edge {args.edge} voxel, phase span inside "
-          f"{np.ptp(np.angle(obj[amp > 0.5 * amp.max()])):.2f} rad", flush=True)
+          f"{np.ptp(np.angle(obj[amp > 0.5 * amp.max()])):.2f} rad, oversampling "
+          + ", ".join(f"{r:.2f}" for r in estimate_oversampling(clean, mask=mask)), flush=True)
 
     def err(o, ramp, truth=obj):
         return complex_error(o, remove_phase_ramp(truth, ramp))
@@ -151,7 +172,8 @@ def main(argv=None):
         errors = []
         for s in range(args.seeds):
             t0 = time.perf_counter()
-            rec = reconstruct(clean, mask, seed=s, threads=args.threads, raise_on_failure=False)
+            rec = reconstruct(clean, mask, seed=s, threads=args.threads, raise_on_failure=False,
+                              free_fraction=args.free_fraction)
             e = err(rec.obj, rec.ramp) if rec.ok else float("nan")
             errors.append(e)
             print(f"seed {s}: {rec.status}, complex error {e:.4f}, support {rec.metrics.support_size}, "
@@ -177,6 +199,26 @@ def main(argv=None):
             print(f"seed {s}: noise floor {floor:.4f}, ensemble average {e_avg:.4f}, best run "
                   f"{e_best:.4f}, kept {res.kept}, outliers {sorted(res.outliers)}", flush=True)
         print(f"ensemble/noise_floor={max(ratios):.3f} (worst of {len(ratios)})")
+    elif args.case == "ceiling":
+        polish = [PhasingStage("ER", 200, None, "none")]
+        search = [PhasingStage("HIO", 600, 0.9, "none")]
+        if args.average:
+            search.append(PhasingStage("HIO", args.average, 0.9, "none", average=True))
+        search.append(PhasingStage("ER", 200 if not args.average else 100, None, "none"))
+        for t in args.thresholds:
+            support = amp > t * amp.max()
+            outside = float((amp[~support] ** 2).sum() / (amp ** 2).sum())
+            rec = reconstruct(clean, mask, support=support, start=obj * support, plan=polish, seed=0,
+                              threads=args.threads, remove_ramp=False, free_fraction=args.free_fraction)
+            line = (f"support above {t:g} of the maximum: {int(support.sum())} voxels, "
+                    f"{outside:.1e} of |rho|^2 outside; from the truth: complex error "
+                    f"{err(rec.obj, np.zeros(3)):.4f} misfit {rec.metrics.amplitude_error:.1e}")
+            starts = []
+            for s in range(args.seeds):
+                rec = reconstruct(clean, mask, support=support, plan=search, seed=s, threads=args.threads,
+                                  free_fraction=args.free_fraction)
+                starts.append(f"{err(rec.obj, rec.ramp):.4f} ({rec.metrics.amplitude_error:.1e})")
+            print(line + "; random starts: " + ", ".join(starts), flush=True)
     else:
         if max(args.blur) > 0:
             kernel = gaussian_coherence_kernel(args.blur if len(args.blur) == 3 else args.blur[0],

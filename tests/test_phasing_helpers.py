@@ -33,6 +33,40 @@ def crystal(n=48):
 
 
 @lru_cache(maxsize=None)
+def soft_crystal(n=40, edge=0.6):
+    """A soft-edged crystal (complex64, centred at n//2): a rotated truncated
+    octahedron 0.4 of the array across (oversampling about 3.5) with one flat
+    facet, its density blurred by a Gaussian of ``edge`` voxels (the soft edge
+    that resolution gives every real crystal), and a smooth displacement whose
+    phase spans about 3 rad inside it (d = 2 Å)."""
+    import scipy.ndimage
+
+    from braggstrain.geometry.rotation import rotation_from_rotvec
+
+    shape = (n, n, n)
+    vs = 10.0  # Å
+    size = 0.4 * n * vs
+    density = forward.truncated_octahedron(shape, vs, size=size, truncation=0.7, supersample=2,
+                                           flat=((0.3, -0.5, 0.8), 0.3 * size),
+                                           rotation=rotation_from_rotvec(np.array([0.3, -0.2, 0.45])))
+    density = scipy.ndimage.gaussian_filter(density.astype(np.float64), edge)
+    r = forward.grid_coordinates(shape, vs)
+    half = size / 2
+    u = np.zeros((3,) + shape)
+    u[2] = (1.0 * np.exp(-((r[0] - 0.3 * half) ** 2 + (r[1] + 0.2 * half) ** 2 + r[2] ** 2)
+                         / (2 * (0.8 * half) ** 2))
+            + 0.15 * (r[0] / half) * (r[1] / half))
+    return forward.complex_object(density, u, (0.0, 0.0, 2 * np.pi / 2.0)).astype(np.complex64)
+
+
+def gap_mask(n):
+    """Two masked detector columns, 3 and 4 voxels from the peak along axis 2."""
+    mask = np.zeros((n, n, n), bool)
+    mask[:, :, n // 2 + 3:n // 2 + 5] = True
+    return mask
+
+
+@lru_cache(maxsize=None)
 def clean_intensity(n=48):
     """Noise-free intensity |far field|^2 (float64) of :func:`crystal`."""
     return np.abs(far_field(crystal(n)).astype(np.complex128)) ** 2
