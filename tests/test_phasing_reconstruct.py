@@ -48,21 +48,28 @@ def test_partial_coherence_estimates_the_kernel_width():
     # Clark et al., Nat. Commun. 3, 993 (2012): measured intensity = coherent
     # intensity convolved with the coherence function.  The data here are
     # blurred by a known Gaussian (sigma = 1 voxel) with scipy.ndimage
-    # (reference library); the estimate must be within 20 % and the
-    # reconstruction better than a fully coherent one.
-    sigma = 1.0
-    blurred = scipy.ndimage.gaussian_filter(clean_intensity(N), sigma, mode="wrap")
-    coherent = reconstruct(blurred, seed=2, raise_on_failure=False)
-    partial = reconstruct(blurred, seed=2, coherence=True)
-    assert partial.ok, partial.message
-    np.testing.assert_allclose(partial.coherence_sigma, sigma, rtol=0.2)
-    e_part = error_to_truth(partial.obj, crystal(N), partial.ramp)
-    e_coh = (error_to_truth(coherent.obj, crystal(N), coherent.ramp) if coherent.ok else np.inf)
-    assert e_part < e_coh, (e_part, e_coh)
-    assert partial.coherence_kernel.shape == (9, 9, 9)
-    np.testing.assert_allclose(partial.coherence_widths, sigma, rtol=0.2)
-    assert partial.coherence_axes.shape == (3, 3) and coherent.coherence_widths is None
-    assert partial.coherence_kernel.sum() == pytest.approx(1.0)
+    # (reference library).  A success rate over four random starts (32^3, the
+    # issue's 20 % on the widths; measured over seeds 0-5: widths within
+    # 0.88-1.12 voxel, complex error 22-39 % against 72-76 % for the coherent
+    # model): at least three of four runs estimate the kernel's principal
+    # widths within 20 % and end at less than half the coherent run's error.
+    n, sigma = 32, 1.0
+    blurred = scipy.ndimage.gaussian_filter(clean_intensity(n), sigma, mode="wrap")
+    coherent = reconstruct(blurred, seed=0, raise_on_failure=False)
+    e_coh = error_to_truth(coherent.obj, crystal(n), coherent.ramp) if coherent.ok else np.inf
+    assert coherent.coherence_widths is None
+    good = []
+    for seed in range(4):
+        partial = reconstruct(blurred, seed=seed, coherence=True, raise_on_failure=False)
+        if not partial.ok:
+            good.append(False)
+            continue
+        assert partial.coherence_kernel.shape == (9, 9, 9) and partial.coherence_axes.shape == (3, 3)
+        assert partial.coherence_kernel.sum() == pytest.approx(1.0)
+        e_part = error_to_truth(partial.obj, crystal(n), partial.ramp)
+        good.append(bool(np.all(np.abs(partial.coherence_widths / sigma - 1) <= 0.2)
+                         and np.all(np.abs(partial.coherence_sigma / sigma - 1) <= 0.2) and e_part < 0.5 * e_coh))
+    assert sum(good) >= 3, good
 
 
 def test_flat_background_is_fitted():
