@@ -72,30 +72,24 @@ def coverage_note(rows):
 
 #: rows whose coverage fails for a reason of their own (their NOTES say it)
 OWN_COVERAGE_REASON = {"distance_1pct"}
-_COHERENCE_NAN = (
-    "the pipeline stopped in the spread step (pipeline._spread_tree): a Poisson replica phased with the "
-    "partial-coherence model that the ensemble kept (phasing/replicas.py, coherence_kernel) holds NaN or "
-    "infinity, which the frame stage refuses (strain/frame.py: \"recon: expected finite values\"). A fault of "
-    "the partial-coherence replicas merged for issue 18; issue 18 (partial coherence) and issue 12 §3 (error "
-    "bars) cover it.")
+_COHERENCE_NAN_FIXED = (
+    "runs to the end since commit 765e86f: before it the pipeline stopped in the spread step, a Poisson replica "
+    "phased with the partial-coherence kernel holding NaN (the single-precision blurred model rounded to 0 "
+    "where the model is weak, and the replica's modulus step divided by it; the blurred model is now held to "
+    "its exact lower bound k(0)·|Ψ|², docs/phasing.md).")
 NOTES = {
-    "coherence_0.5": _COHERENCE_NAN + (" Before that merge the same condition ran to the end with its strain and "
-                                       "line within target (the table at commit 8d1153e)."),
-    "coherence_aniso": _COHERENCE_NAN + (" Before that merge the condition, then with its kernel along the array "
-                                         "axes, ran to the end with its strain and line within target (the table "
-                                         "at commit 8d1153e)."),
+    "coherence_0.5": _COHERENCE_NAN_FIXED,
+    "coherence_aniso": _COHERENCE_NAN_FIXED + " The kernel's axes are turned 0.5 rad from the array's.",
     "coherence_1.0": (
         "runs to the end since the partial-coherence merge (issue 18, `[phasing] coherence = \"auto\"`): before "
         "it the pipeline stopped at registration, the (0 0 2) support overlapping the reference's with Dice "
         "0.62 (the table at commit 8d1153e)."),
     "gap_near_peak": (
-        "prepare refuses the data: with the detector's module gap 8 columns beside the peak, the oversampling "
-        "estimate along columns falls to 1.95 (the same crystal and geometry with the gap 22 columns away, the "
-        "base case, give 4.94; the same scan simulated without the gap gives 4.94 too; measured before the "
-        "rebase onto the joint-refinement merge), and the check of `[prepare] bin = [1, 2, 2]` refuses it. The "
-        "masked gap columns spoil the estimate in braggstrain/prepare/oversampling.py, a fault of that stage; no "
-        "open issue covers it yet. (Found when distance_1pct first put its peak there; that condition now moves "
-        "its peak away from the gap.)"),
+        "runs to the end since commit cfb98e6: before it prepare refused the data, the module gap 8 columns "
+        "beside the (1 1 1) peak dragging the oversampling estimate along columns to its cap 1.95 and the check "
+        "of `[prepare] bin = [1, 2, 2]` failing. The masked voxels are now extrapolated so that the "
+        "autocorrelation stays compact (docs/methods.md); the estimate reads 3.40 there (4.94 with the gap 22 "
+        "columns away), still low but above 2."),
     "distance_1pct": (
         "the 1 % distance error shows as a uniform bias (the bias columns: a few 10⁻⁵ on the diagonal), which σ "
         "does not include: it is a calibration error, not noise, hence the low coverage. Not a fault of the "
