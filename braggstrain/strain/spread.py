@@ -16,14 +16,17 @@ propagates through the solve (docs/strain.md, "Error bars"):
   reconstruction after the replicas' iterations on the measured counts.
   The reported reconstruction is not a fixed point of those iterations; how
   far they move it is an error that the replicas' spread does not show (the
-  counts are the same for both). The kept runs' spread sees part of it
-  already: if each run stops short in its own direction, their mean stops
-  short by about C_runs/K. So only the excess is added, the method-of-moments
-  estimate of a systematic offset (DerSimonian & Laird, Control. Clin.
-  Trials 7, 177, 1986, as for the misfit between reflections in
-  :mod:`braggstrain.strain.tensor`):
+  counts are the same for both). Two spreads see part of |δ|² already: if
+  each run stops short in its own direction, their mean stops short by about
+  C_runs/K; and the iterations' own wander (RAAR on noisy counts) moves the
+  baseline as it moves every replica, so it is in C_rep. So only the excess
+  is added, the method-of-moments estimate of a systematic offset
+  (DerSimonian & Laird, Control. Clin. Trials 7, 177, 1986, as for the
+  misfit between reflections in :mod:`braggstrain.strain.tensor`):
 
-      f = max(0, 1 − ⟨tr C_runs/K⟩ / ⟨|δ|²⟩),   C += f δδᵀ
+      f = max(0, 1 − ⟨tr C_runs/K + tr C_rep⟩ / ⟨|δ|²⟩),   C += f δδᵀ
+
+  (C_runs/K is left out when fewer than two runs were kept).
 
   with ⟨·⟩ the Gaussian-weighted mean over the voxels around
   (:data:`POOL_SIGMA` voxels, :func:`local_mean`). An offset added in
@@ -110,17 +113,19 @@ def reconstruction_covariance(reconstruction, voxel_size, support, *, runs=(), r
         add(c_runs)
         parts.append(f"the spread of the {len(runs)} kept random starts (variance of their mean)")
     if len(replicas) >= 2:
-        add(phase_gradient_covariance(replicas, voxel_size, support, order=order))
+        c_rep = phase_gradient_covariance(replicas, voxel_size, support, order=order)
+        add(c_rep)
         dd = phase_gradient_covariance([reconstruction], voxel_size, support, center=baseline, order=order)
-        if c_runs is not None:
-            inside = np.asarray(support, bool)
-            seen = local_mean(np.trace(c_runs).astype(float), inside)
-            off = local_mean(np.trace(dd).astype(float), inside)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                f = np.clip(1.0 - seen / off, 0.0, 1.0)
-            dd = dd * np.where(np.isfinite(f), f, 0.0).astype(np.float32)
-        add(dd)
+        # what the spreads already explain of |δ|²: the runs' stopping short (C_runs/K) and the
+        # iterations' own wander, which moves the baseline as it moves every replica (C_rep)
+        seen = np.trace(c_rep) if c_runs is None else np.trace(c_rep) + np.trace(c_runs)
+        inside = np.asarray(support, bool)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            f = np.clip(1.0 - local_mean(seen.astype(float), inside) / local_mean(np.trace(dd).astype(float), inside),
+                        0.0, 1.0)
+        add(dd * np.where(np.isfinite(f), f, 0.0).astype(np.float32))
         parts.append(f"the spread of {len(replicas)} Poisson replicas of the counts, each phased from the "
                      f"converged object, and the reconstruction's offset from the point those iterations "
-                     f"settle to on the measured counts (beyond what the kept runs' spread shows)")
+                     f"settle to on the measured counts (beyond what the kept runs' and the replicas' "
+                     f"spreads show)")
     return C, parts
