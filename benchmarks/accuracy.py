@@ -119,13 +119,16 @@ def machine():
             f"{load[0]:.1f}")
 
 
-def commit():
-    """The short commit hash, with "+changes" when the work tree differs from it."""
+def commit(own=()):
+    """The short commit hash, with "+changes" when the work tree differs from
+    it in files other than ``own`` (the table this run writes)."""
     try:
         head = subprocess.run(["git", "-C", str(ROOT), "rev-parse", "--short", "HEAD"], capture_output=True,
                               text=True, check=True).stdout.strip()
         dirty = subprocess.run(["git", "-C", str(ROOT), "status", "--porcelain", "--untracked-files=no"],
-                               capture_output=True, text=True, check=True).stdout.strip()
+                               capture_output=True, text=True, check=True).stdout.splitlines()
+        own = {Path(p).resolve() for p in own}
+        dirty = [line for line in dirty if (ROOT / line[3:].strip()).resolve() not in own]
         return head + ("+changes" if dirty else "")
     except (OSError, subprocess.CalledProcessError):
         return "unknown"
@@ -266,20 +269,24 @@ def main(argv=None):
                 previous[r["name"]] = r  # the last row of a condition counts
     elif rows_path.exists():
         rows_path.unlink()
-    meta = {"size": args.size, "seed": args.seed, "commit": commit(), "machine": machine(), "workers": args.workers or os.cpu_count(),
+    meta = {"size": args.size, "seed": args.seed, "commit": commit(own=[table]), "machine": machine(), "workers": args.workers or os.cpu_count(),
             "started": datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC"),
             "command": "python benchmarks/accuracy.py " + " ".join(argv if argv is not None else sys.argv[1:])}
     meta_path = out / "meta.json"
     if (args.resume or args.table_only) and meta_path.exists():  # the run goes on: when, where and at which commit it started
         old = json.loads(meta_path.read_text())
         if old.get("size") == args.size and old.get("seed", 0) == args.seed:
-            meta.update({k: old[k] for k in ("commit", "machine", "workers", "started", "command") if k in old})
+            meta.update({k: old[k] for k in ("commit", "machine", "workers", "started", "command", "finished")
+                         if k in old})
             if args.resume and not meta["command"].endswith("(then --resume)"):
                 meta["command"] += " (then --resume)"
     if not args.table_only:
         meta_path.write_text(json.dumps(meta))
     if args.table_only:
         done = [previous[c.name] for c in conds if c.name in previous]
+        if "finished" not in meta and rows_path.exists():  # a run before the time was recorded: its last row
+            meta["finished"] = datetime.datetime.fromtimestamp(rows_path.stat().st_mtime, datetime.timezone.utc
+                                                               ).strftime("%Y-%m-%d %H:%M UTC")
         write_table(table, done, meta, conds, verdict, final=len(done) == len(conds))
         print(summary(done, verdict), flush=True)
         return
@@ -296,13 +303,14 @@ def main(argv=None):
                 r = {"name": c.name, "size": args.size, "error": f"{type(e).__name__}: {e}".replace("\n", " ")[:400],
                      "seconds": time.perf_counter() - t0}
                 traceback.print_exc()
-            r["commit"] = commit()
+            r["commit"] = commit(own=[table])
             with open(rows_path, "a", encoding="utf-8") as fh:
                 fh.write(json.dumps(r) + "\n")
         rows.append(r)
         print(row_line(r, verdict), flush=True)
         write_table(table, rows, meta, conds, verdict, final=False)
     meta["finished"] = datetime.datetime.now(datetime.timezone.utc).strftime("%Y-%m-%d %H:%M UTC")
+    meta_path.write_text(json.dumps(meta))
     write_table(table, rows, meta, conds, verdict, final=True)
     print(summary(rows, verdict), flush=True)
 
