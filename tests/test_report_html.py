@@ -59,6 +59,10 @@ def test_report_is_self_contained_and_holds_the_tables(bundle, results_file, fig
     # the pipeline text is shown escaped, never as markup
     assert "<b>not html</b>" not in text and "&lt;b&gt;not html&lt;/b&gt; &amp; more" in text
     assert not [q for q in tmp_path.iterdir() if ".part" in q.name]
+    # a PRTF that stays above 1/e is said in words, as in the PRTF figure
+    flat = dict(bundle, reflections=[dict(x, prtf=dict(x["prtf"], resolution=np.nan)) for x in bundle["reflections"]])
+    text = write_report(Results.from_dict(flat), tmp_path / "flat", []).read_text(encoding="utf-8")
+    assert text.count("above 1/e to the q edge") == len(bundle["reflections"])
 
 
 

@@ -179,10 +179,13 @@ def _reflection_section(r):
     rows = []
     for x in refl:
         res = x.prtf["resolution"] if x.prtf is not None else np.nan
+        # a PRTF that never falls below 1/e: the runs agree up to the edge of the q range
+        res_text = ("above 1/e to the q edge" if x.prtf is not None and not np.isfinite(res)
+                    else _num(res / 10.0, "{:.1f}"))
         rows.append([_e(x.name), _e(format_hkl(x.hkl)), _num(np.linalg.norm(x.g_vector)),
                      _num(x.max_counts, "{:.3g}"),
                      ", ".join(_num(v, "{:.2f}") for v in x.oversampling), str(x.runs), str(x.kept),
-                     _num(res / 10.0, "{:.1f}"),
+                     res_text,
                      ", ".join(_num(v, "{:.2f}") for v in x.shift_vox), "yes" if x.twin else "no"])
     out = ["<h2>Reflections</h2>", _table(header, rows, text_cols=(0, 1), css="compact")]
     if metric_cols:
