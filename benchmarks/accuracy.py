@@ -282,7 +282,7 @@ def main(argv=None):
                 meta["command"] += " (then --resume)"
     if not args.table_only:
         meta_path.write_text(json.dumps(meta))
-    if args.table_only:
+    else:
         done = [previous[c.name] for c in conds if c.name in previous]
         if "finished" not in meta and rows_path.exists():  # a run before the time was recorded: its last row
             meta["finished"] = datetime.datetime.fromtimestamp(rows_path.stat().st_mtime, datetime.timezone.utc
