@@ -342,10 +342,10 @@ def _executor(scheduler, workers):
     """Yield (executor, description) for the random starts."""
     n = int(workers) if workers else (os.cpu_count() or 1)
     if scheduler is None:
-        from braggstrain.phasing.ensemble import worker_pool
+        from braggstrain.phasing.ensemble import InProcess, worker_pool
 
-        if n <= 1:
-            yield None, "in-process (1 worker)"
+        if n <= 1:  # no pool at all, not the ensemble's own default pool
+            yield InProcess(), "in-process (1 worker)"
             return
         ex = worker_pool(n)
         try:

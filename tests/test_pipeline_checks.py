@@ -10,6 +10,7 @@ Pt a = 3.9242 Å (xrayutilities' database).
 """
 
 import errno
+import importlib
 import os
 import re
 import signal
@@ -478,6 +479,30 @@ def test_bad_worker_counts_exit_2(sim, tmp_path, capsys, n):
     assert "--workers" in capsys.readouterr().err
     assert not (tmp_path / "out").exists()
 
+
+
+def test_one_worker_runs_in_process_without_any_pool(monkeypatch):
+    """`--workers 1` means no worker processes: the ensemble must not fall
+    back to its own default pool (behaviour of the tool, no outside source)."""
+    from braggstrain import pipeline
+    from braggstrain.phasing import PhasingStage
+
+    ensemble_module = importlib.import_module("braggstrain.phasing.ensemble")  # the module, not the function
+
+    def no_pool(*args, **kwargs):
+        raise AssertionError("a worker pool was made for --workers 1")
+
+    monkeypatch.setattr(ensemble_module, "worker_pool", no_pool)
+    with pipeline._executor(None, 1) as (executor, where):
+        assert executor is not None and "in-process" in where
+        assert list(executor.map(abs, [-2, 3])) == [2, 3]
+    cube = np.zeros((16, 16, 16))
+    cube[6:10, 6:10, 6:10] = 1.0
+    intensity = 100.0 * np.abs(np.fft.fftn(cube)) ** 2
+    res = ensemble_module.ensemble(intensity, runs=2, keep=1, seed=0, executor=executor, coherence=False,
+                                   plan=[PhasingStage("ER", 5, None, "none")],
+                                   free_fraction=0.0, metric="nll")
+    assert len(res.runs) == 2
 
 def test_inspect_says_which_preparation_options(sim, capsys):
     assert main(["inspect", str(sim / "scans" / "r0.h5")]) == 0

@@ -28,7 +28,7 @@ from braggstrain.phasing.metrics import PRTF, align, prtf, twin
 
 __all__ = ["ensemble", "partial_runs", "EnsembleResult", "RunSummary", "RANKING_METRICS", "DEFAULT_METRIC", "METRIC_LABELS",
            "metric_label",
-           "worker_pool", "DEFAULT_RUNS", "DEFAULT_KEEP"]
+           "worker_pool", "InProcess", "DEFAULT_RUNS", "DEFAULT_KEEP"]
 
 #: Random starts and runs averaged when nothing else is asked (the pipeline's
 #: ``[phasing] runs`` and ``keep`` default to these too).
@@ -199,7 +199,9 @@ def _task(args):
     return _run(data, stages, opts, run)
 
 
-class _Serial:
+class InProcess:
+    """An executor that runs every task in the calling process, one after another."""
+
     def map(self, fn, iterable):
         return map(fn, iterable)
 
@@ -410,7 +412,7 @@ def ensemble(intensity, mask=None, *, runs=DEFAULT_RUNS, keep=DEFAULT_KEEP, plan
             own_pool = worker_pool(workers)
             executor = own_pool
         else:
-            executor = _Serial()
+            executor = InProcess()
     try:
         raw = executor.map(_task, tasks)
         if progress:
