@@ -309,8 +309,8 @@ def main(argv=None):
         search.append(PhasingStage("ER", 200 if not args.average else 100, None, "none"))
         # The random starts stay in the frame of the data (no centring, no ramp
         # removal) so that they can be continued; err() aligns them anyway.
-        fixed = dict(threads=args.threads, free_fraction=args.free_fraction, center=False,
-                     remove_ramp=False)
+        fixed = {"threads": args.threads, "free_fraction": args.free_fraction, "center": False,
+                 "remove_ramp": False}
         zero = np.zeros(3)
         for t in args.thresholds:
             support = amp > t * amp.max()
@@ -324,7 +324,7 @@ def main(argv=None):
                 t0 = time.perf_counter()
                 w, vecs, idx = gauss_newton_spectrum(obj * support, support, mask)
                 weak = w < args.weak
-                line += (f"; J^T J at the truth: smallest eigenvalues "
+                line += ("; J^T J at the truth: smallest eigenvalues "
                          + ", ".join(f"{v:.1e}" for v in w[:6])
                          + f", {int(weak.sum())} below {args.weak:g} of {w.size}, largest {w[-1]:.3f} "
                          f"({time.perf_counter() - t0:.0f} s)")
