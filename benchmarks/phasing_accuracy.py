@@ -22,7 +22,21 @@ Cases (``--case``):
   from the true object (ER only: how far the truth itself moves on that
   support) and (b) from ``--seeds`` random starts (600 HIO, then
   ``--average`` HIO iterations averaged when that is > 0, then ER); the
-  errors and the final misfits;
+  errors and the final misfits; ``--extra-er`` continues each random start
+  with more ER iterations on the same support and ``--lbfgs`` minimises the
+  same amplitude misfit from its end state with L-BFGS (scipy.optimize): is
+  the gap to the truth slow convergence, or a point the iterations cannot
+  leave?
+* ``conditioning``: why random starts stop short of the truth on a loose
+  support.  For each ``--thresholds`` value, the Gauss-Newton matrix J^T J
+  of the amplitude misfit at the true object (J the derivative of the
+  measured moduli |F x| with respect to the real and imaginary parts of x on
+  the true support) is built column by column and diagonalised; its
+  smallest eigenvalues (1 = a unit change of the object changes the moduli
+  by as much) are the directions the data hardly constrain.  With
+  ``--seeds`` > 0 the random starts of ``ceiling`` are aligned to the first
+  and averaged, and the share of the mean's error that lies in the weak
+  directions (eigenvalue < ``--weak``) is printed;
 * ``blurred``: the noise-free intensity convolved with a Gaussian coherence
   function (``--blur`` sigma(s) in voxels, ``--blur-rotation`` a rotation
   vector for axes that are not the array axes), phased with and without the
@@ -39,6 +53,10 @@ Usage::
     python benchmarks/phasing_accuracy.py --case clean --seeds 10 --size 48
     python benchmarks/phasing_accuracy.py --case noisy --seeds 2
     python benchmarks/phasing_accuracy.py --case ceiling --crystal small --frac 0.4 --size 40 --seeds 3
+    python benchmarks/phasing_accuracy.py --case ceiling --crystal small --frac 0.4 --size 40 \
+        --thresholds 0.001 --seeds 3 --extra-er 800 4800 --lbfgs 1000
+    python benchmarks/phasing_accuracy.py --case conditioning --crystal small --frac 0.4 --size 40 \
+        --thresholds 0.2 0.01 0.001 --seeds 8
     python benchmarks/phasing_accuracy.py --case blurred --blur 1.0 --seeds 2
     python benchmarks/phasing_accuracy.py --case blurred --blur 0.5 --ensemble --runs 6 --keep 3
     python benchmarks/phasing_accuracy.py --case blurred --crystal small --size 40 --counted \
@@ -112,9 +130,85 @@ def gaussian_coherence_kernel(sigmas, rotvec=(0.0, 0.0, 0.0), half_width=6):
     return kernel(sigmas, rotvec, half_width)
 
 
+def _in_fft_order(obj):
+    import scipy.fft
+
+    return scipy.fft.ifftshift(np.asarray(obj, dtype=np.complex128))
+
+
+def _moduli(intensity, mask):
+    """Measured moduli (FFT order, unitary FFT) and the measured voxels."""
+    import scipy.fft
+
+    n_vox = intensity.size
+    amp = np.sqrt(scipy.fft.ifftshift(intensity) / n_vox)
+    measured = np.ones(intensity.shape, bool) if mask is None else ~scipy.fft.ifftshift(mask)
+    return amp, measured
+
+
+def lbfgs_polish(obj, support, intensity, mask, iterations):
+    """Minimise sum over measured voxels of (|F x| - sqrt(I))^2 over the complex x on
+    ``support`` (centred layout) with L-BFGS, from ``obj``; the gradient is
+    2 (x - P_M x) on the support (unitary F).  Returns (object, relative misfit)."""
+    import scipy.fft
+    import scipy.optimize
+
+    amp, measured = _moduli(intensity, mask)
+    sup = scipy.fft.ifftshift(support)
+    idx = np.flatnonzero(sup)
+    m = idx.size
+
+    def unpack(v):
+        x = np.zeros(sup.shape, np.complex128)
+        x.flat[idx] = v[:m] + 1j * v[m:]
+        return x
+
+    def value_and_gradient(v):
+        f = scipy.fft.fftn(unpack(v), norm="ortho")
+        mod = np.maximum(np.abs(f), 1e-300)
+        r = np.where(measured, mod - amp, 0.0)
+        g = 2 * scipy.fft.ifftn(r * f / mod, norm="ortho").flat[idx]
+        return float((r ** 2).sum()), np.concatenate([g.real, g.imag])
+
+    x0 = _in_fft_order(obj).flat[idx]
+    res = scipy.optimize.minimize(value_and_gradient, np.concatenate([x0.real, x0.imag]), jac=True,
+                                  method="L-BFGS-B", options={"maxiter": iterations, "maxcor": 20,
+                                                              "ftol": 1e-20, "gtol": 1e-18})
+    misfit = res.fun / float((amp[measured] ** 2).sum())
+    return scipy.fft.fftshift(unpack(res.x)), misfit
+
+
+def gauss_newton_spectrum(obj, support, mask):
+    """Eigenvalues and eigenvectors of J^T J at ``obj`` (centred layout) for the
+    measured moduli of its own far field; J has one column per real and per
+    imaginary part of a voxel of ``support`` (unitary FFT)."""
+    import scipy.fft
+
+    x = _in_fft_order(obj)
+    f = scipy.fft.fftn(x, norm="ortho")
+    u = f / np.maximum(np.abs(f), 1e-300)
+    measured = np.ones(x.shape, bool) if mask is None else ~scipy.fft.ifftshift(mask)
+    u = np.where(measured, u, 0)
+    idx = np.flatnonzero(scipy.fft.ifftshift(support))
+    m = idx.size
+    # Column k of J^T J is J^T (J e_k): J e = Re(conj(u) F e) on the measured
+    # voxels, J^T r = (Re, Im) of F^H(u r) on the support.
+    normal = np.empty((2 * m, 2 * m))
+    d = np.zeros(x.shape, np.complex128)
+    for k in range(2 * m):
+        d.flat[idx[k % m]] = 1.0 if k < m else 1j
+        back = scipy.fft.ifftn(u * (np.conj(u) * scipy.fft.fftn(d, norm="ortho")).real,
+                               norm="ortho").flat[idx]
+        normal[:m, k], normal[m:, k] = back.real, back.imag
+        d.flat[idx[k % m]] = 0
+    w, v = np.linalg.eigh(normal)
+    return w, v, idx
+
+
 def main(argv=None):
     ap = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
-    ap.add_argument("--case", choices=("clean", "noisy", "ceiling", "blurred"), default="clean")
+    ap.add_argument("--case", choices=("clean", "noisy", "ceiling", "conditioning", "blurred"),
+                    default="clean")
     ap.add_argument("--size", type=int, default=48)
     ap.add_argument("--seeds", type=int, default=10)
     ap.add_argument("--edge", type=float, default=0.6, help="Gaussian blur of the density, voxels")
@@ -140,6 +234,14 @@ def main(argv=None):
                     help="(ceiling) iterations of an averaged HIO stage before the closing ER")
     ap.add_argument("--thresholds", type=float, nargs="+", default=[0.2, 0.03, 0.01, 0.001],
                     help="(ceiling) thresholds of the true support, fractions of the maximum density")
+    ap.add_argument("--extra-er", type=int, nargs="+", default=[],
+                    help="(ceiling) total ER iterations after the search at which the random "
+                         "starts' error is printed again, e.g. 800 4800")
+    ap.add_argument("--lbfgs", type=int, default=0,
+                    help="(ceiling) L-BFGS iterations on the amplitude misfit from each random "
+                         "start's end state")
+    ap.add_argument("--weak", type=float, default=1e-4,
+                    help="(conditioning) eigenvalue below which a direction counts as weak")
     ap.add_argument("--counted", action="store_true",
                     help="(blurred) Poisson counts at --peak in the brightest voxel (seed 50 + --seed)")
     ap.add_argument("--seed", type=int, default=1, help="(blurred --ensemble) the ensemble's seed")
@@ -199,12 +301,17 @@ def main(argv=None):
             print(f"seed {s}: noise floor {floor:.4f}, ensemble average {e_avg:.4f}, best run "
                   f"{e_best:.4f}, kept {res.kept}, outliers {sorted(res.outliers)}", flush=True)
         print(f"ensemble/noise_floor={max(ratios):.3f} (worst of {len(ratios)})")
-    elif args.case == "ceiling":
+    elif args.case in ("ceiling", "conditioning"):
         polish = [PhasingStage("ER", 200, None, "none")]
         search = [PhasingStage("HIO", 600, 0.9, "none")]
         if args.average:
             search.append(PhasingStage("HIO", args.average, 0.9, "none", average=True))
         search.append(PhasingStage("ER", 200 if not args.average else 100, None, "none"))
+        # The random starts stay in the frame of the data (no centring, no ramp
+        # removal) so that they can be continued; err() aligns them anyway.
+        fixed = {"threads": args.threads, "free_fraction": args.free_fraction, "center": False,
+                 "remove_ramp": False}
+        zero = np.zeros(3)
         for t in args.thresholds:
             support = amp > t * amp.max()
             outside = float((amp[~support] ** 2).sum() / (amp ** 2).sum())
@@ -212,13 +319,44 @@ def main(argv=None):
                               threads=args.threads, remove_ramp=False, free_fraction=args.free_fraction)
             line = (f"support above {t:g} of the maximum: {int(support.sum())} voxels, "
                     f"{outside:.1e} of |rho|^2 outside; from the truth: complex error "
-                    f"{err(rec.obj, np.zeros(3)):.4f} misfit {rec.metrics.amplitude_error:.1e}")
-            starts = []
+                    f"{err(rec.obj, zero):.4f} misfit {rec.metrics.amplitude_error:.1e}")
+            if args.case == "conditioning":
+                t0 = time.perf_counter()
+                w, vecs, idx = gauss_newton_spectrum(obj * support, support, mask)
+                weak = w < args.weak
+                line += ("; J^T J at the truth: smallest eigenvalues "
+                         + ", ".join(f"{v:.1e}" for v in w[:6])
+                         + f", {int(weak.sum())} below {args.weak:g} of {w.size}, largest {w[-1]:.3f} "
+                         f"({time.perf_counter() - t0:.0f} s)")
+            starts, ends = [], []
             for s in range(args.seeds):
-                rec = reconstruct(clean, mask, support=support, plan=search, seed=s, threads=args.threads,
-                                  free_fraction=args.free_fraction)
-                starts.append(f"{err(rec.obj, rec.ramp):.4f} ({rec.metrics.amplitude_error:.1e})")
+                rec = reconstruct(clean, mask, support=support, plan=search, seed=s, **fixed)
+                entry = f"{err(rec.obj, zero):.4f} ({rec.metrics.amplitude_error:.1e})"
+                done, cur = 0, rec
+                for total in args.extra_er:
+                    cur = reconstruct(clean, mask, support=support, start=cur.obj, seed=s,
+                                      plan=[PhasingStage("ER", total - done, None, "none")], **fixed)
+                    done = total
+                    entry += f" -> ER {total}: {err(cur.obj, zero):.4f} ({cur.metrics.amplitude_error:.1e})"
+                if args.lbfgs:
+                    polished, misfit = lbfgs_polish(rec.obj, support, clean, mask, args.lbfgs)
+                    entry += (f" | L-BFGS {args.lbfgs} from ER 200: {err(polished.astype(np.complex64), zero):.4f}"
+                              f" ({misfit:.1e})")
+                starts.append(entry)
+                ends.append(rec.obj)
             print(line + "; random starts: " + ", ".join(starts), flush=True)
+            if args.case == "conditioning" and ends:
+                from braggstrain.phasing.metrics import align
+
+                mean = np.mean([ends[0]] + [align(e, ends[0])[0] for e in ends[1:]], axis=0)
+                aligned = np.asarray(align(mean, obj)[0], dtype=np.complex128)
+                scale = abs(np.vdot(aligned, obj)) / np.vdot(aligned, aligned).real
+                diff = _in_fft_order(scale * aligned - obj).flat[idx]
+                c = vecs.T @ np.concatenate([diff.real, diff.imag])
+                print(f"  mean of the {len(ends)} random starts (aligned to the first): complex error "
+                      f"{err(mean.astype(np.complex64), zero):.4f}; share of its squared error in the "
+                      f"{int(weak.sum())} weak directions {float((c[weak] ** 2).sum() / (c ** 2).sum()):.2f}",
+                      flush=True)
     else:
         if max(args.blur) > 0:
             kernel = gaussian_coherence_kernel(args.blur if len(args.blur) == 3 else args.blur[0],
