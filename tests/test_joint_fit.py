@@ -4,7 +4,7 @@ refusals of the stage and of the pipeline file's [joint] table."""
 import numpy as np
 import pytest
 
-from braggstrain.errors import ConfigError
+from braggstrain.errors import ConfigError, InputError
 from braggstrain.joint.fit import JointError, _held_out, _Objective, joint_refine, upsample_displacement
 from braggstrain.joint.model import FarField, MeasuredVoxels, fine_grid, interpolation_matrix
 from braggstrain.strain.grid import Grid
@@ -153,10 +153,10 @@ def test_held_out_frames_leave_out_whole_frames():
     (work,) = _held_out([d], 0.1, "frames", rng)
     out = np.unique(frames[~work])
     assert out.size == 2 and not np.any(np.isin(frames[work], out))
-    with pytest.raises(Exception, match="frames"):
+    with pytest.raises(InputError, match="frames"):
         _held_out([MeasuredVoxels(counts=np.ones(4), q_sample=np.zeros((3, 4)), g_vector=[1, 0, 0], name="r0")],
                   0.1, "frames", rng)
-    with pytest.raises(Exception, match="frames"):
+    with pytest.raises(InputError, match="frames"):
         MeasuredVoxels(counts=np.ones(4), q_sample=np.zeros((3, 4)), g_vector=[1, 0, 0], frames=[0, 1], name="r0")
 
 

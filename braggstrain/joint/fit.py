@@ -270,8 +270,7 @@ def _check(data, grid, support, amplitude, displacement, g_labels):
 
 def joint_refine(data, grid, support, amplitude, displacement, *, reference_objects=None,
                  max_iterations=DEFAULT_ITERATIONS, held_out=DEFAULT_HELD_OUT, support_dilation=1, seed=0,
-                 subdivide=True, held_out_by="voxels", eps=DEFAULT_EPS, threads=1,
-                 progress=None):
+                 subdivide=True, held_out_by="voxels", eps=DEFAULT_EPS, threads=1, progress=None):
     """Fit one amplitude and one displacement field to all reflections' counts.
 
     Parameters
@@ -443,6 +442,7 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
                        iterations=int(res.nit), best_iteration=int(best["it"]), message=str(res.message),
                        labels=labels, g_vectors=G, grid=grid,
                        options={"max_iterations": int(max_iterations), "held_out": float(held_out),
-                                "held_out_by": str(held_out_by), "support_dilation": int(support_dilation), "seed": int(seed), "eps": float(eps),
+                                "held_out_by": str(held_out_by), "support_dilation": int(support_dilation),
+                                "seed": int(seed), "eps": float(eps),
                                 "subdivision": [int(v) for v in factor],
                                 "fitted_voxels": n_work, "held_out_voxels": n_free})

@@ -58,6 +58,9 @@ class MeasuredVoxels:
         Flat background added to the model, counts per voxel (0 when the
         prepared counts have it removed).
     name : str
+    frames : (P,) int, optional
+        Each voxel's frame (index along the prepared array's first axis,
+        the rocking frames), for leaving out whole frames.
     """
 
     counts: np.ndarray
