@@ -84,8 +84,8 @@ def main():
 
     t_nufft = _best(nuffts, args.repeat)
     work = [np.ones(d.size, bool) for d in data]
-    obj = _Objective(data, F, support, G, work, MODEL_FLOOR)
-    x = np.concatenate([s[support], (u[:, support] * obj.gbar).ravel(), np.full(len(G), -5.0)])
+    obj = _Objective(data, F, support, G, work, MODEL_FLOOR, u[:, support])
+    x = np.concatenate([s[support], np.zeros(3 * obj.n), np.full(len(G), -5.0)])
     t_eval = _best(lambda: obj(x), args.repeat)
     t0 = time.perf_counter()
     res = joint_refine(data, grid, support, s, u, max_iterations=args.iterations, held_out=0.0,

@@ -204,7 +204,12 @@ def check_options(cfg):
     v = jo.get("eps")
     if v is not None and (isinstance(v, bool) or not isinstance(v, (int, float)) or not 1e-15 < v < 1e-2):
         raise ConfigError(f"{src}: key 'joint.eps': value {v!r}; expected a precision between 1e-15 and 1e-2")
+    from braggstrain.joint.fit import HELD_OUT_BY
     from braggstrain.joint.model import Q_MAPS
+
+    if jo.get("held_out_by", "voxels") not in HELD_OUT_BY:
+        raise ConfigError(f"{src}: key 'joint.held_out_by': value {jo['held_out_by']!r}; expected one of "
+                          f"{list(HELD_OUT_BY)}")
 
     if jo.get("q_map", "exact") not in Q_MAPS:
         raise ConfigError(f"{src}: key 'joint.q_map': value {jo['q_map']!r}; expected one of {list(Q_MAPS)}")

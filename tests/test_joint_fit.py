@@ -4,9 +4,9 @@ refusals of the stage and of the pipeline file's [joint] table."""
 import numpy as np
 import pytest
 
-from braggstrain.errors import ConfigError
-from braggstrain.joint.fit import JointError, _Objective, joint_refine
-from braggstrain.joint.model import FarField, MeasuredVoxels
+from braggstrain.errors import ConfigError, InputError
+from braggstrain.joint.fit import JointError, _held_out, _Objective, joint_refine, upsample_displacement
+from braggstrain.joint.model import FarField, MeasuredVoxels, fine_grid, interpolation_matrix
 from braggstrain.strain.grid import Grid
 
 N = 16
@@ -48,8 +48,9 @@ def test_gradients_agree_with_central_differences():
     data = _data(grid, support, s, u, seed=0)
     rng = np.random.default_rng(5)
     work = [rng.random(d.size) > 0.1 for d in data]
-    obj = _Objective(data, [FarField(grid, d.q, threads=1) for d in data], support, G, work, 1e-3)
-    n = obj.n
+    n = int(support.sum())
+    obj = _Objective(data, [FarField(grid, d.q, threads=1) for d in data], support, G, work, 1e-3,
+                     rng.normal(0, 0.3, (3, n)))
     x = np.concatenate([rng.uniform(0.5, 1.0, n), rng.normal(0, 1, 3 * n), np.full(len(G), -8.0)])
     _, grad = obj(x)
     idx = np.concatenate([rng.choice(n, 4, replace=False), n + rng.choice(3 * n, 6, replace=False),
@@ -104,6 +105,61 @@ def test_a_perturbed_start_moves_back_towards_the_truth(seed):
     assert np.all(res.nll_after < res.nll_before)
 
 
+def test_the_start_on_the_fine_grid_keeps_every_phase_across_a_cut():
+    # A lattice translation b leaves exp(−i G·u) unchanged when G·b is a
+    # multiple of 2π (the reciprocal lattice's definition, e^{iG·R} = 1;
+    # Ashcroft & Mermin, Solid State Physics (1976), ch. 5, from memory).
+    # u here: a smooth invented field plus b = a/2 [0 1 −1] (an fcc lattice
+    # vector; G·b = 0, 0, 2π, −2π for the four G) beyond the plane x = 3 Å,
+    # a cut as the tensor stage's unwrapping leaves one. On the fine grid,
+    # every reflection's phase must match the field's own (the smooth part's
+    # interpolation error only); trilinear interpolation of u itself puts
+    # phases of neither side on the fine voxels next to the cut.
+    grid = Grid((N,) * 3, VOXEL)
+    b = 3.92 / 2 * np.array([0.0, 1.0, -1.0])
+
+    def field(X, cut=True):
+        smooth = np.stack([0.3 * (X[2] / 40.0) ** 2, 0.2 * X[0] * X[2] / 1600.0, -0.15 * X[1] / 40.0])
+        return smooth + cut * b[:, None, None, None] * (X[0] > 3.0)
+
+    factor = (2, 2, 2)
+    fine = fine_grid(grid, factor)
+    P = interpolation_matrix(grid, fine)
+
+    def up(a):
+        return (P @ np.asarray(a).ravel()).reshape(fine.shape)
+
+    inside = (slice(2, -2),) * 3  # away from the grid's edge, where P has no neighbour to interpolate from
+
+    def phase_error(cut, how):
+        u, want = field(grid.coordinates(), cut), field(fine.coordinates(), cut)
+        v = upsample_displacement(u, G, factor, up) if how == "wrap-safe" else np.stack([up(c) for c in u])
+        d = np.tensordot(G, v - want, axes=1)[(slice(None),) + inside]
+        return np.abs(np.angle(np.exp(-1j * d))).max()
+
+    smooth_only = phase_error(False, "wrap-safe")
+    assert smooth_only < 0.05  # rad: the interpolation error of the smooth part (measured 0.019)
+    assert phase_error(True, "wrap-safe") <= smooth_only + 1e-9  # the cut adds nothing
+    assert phase_error(True, "trilinear u") > 1.0  # measured π/2
+
+
+def test_held_out_frames_leave_out_whole_frames():
+    # Cross-validation by blocks, so that a left-out datum is not predicted by
+    # its correlated neighbours (common practice, no source).
+    rng = np.random.default_rng(0)
+    frames = np.repeat(np.arange(20), 50)
+    d = MeasuredVoxels(counts=np.ones(frames.size), q_sample=np.zeros((3, frames.size)), g_vector=[1, 0, 0],
+                       frames=frames, name="r0")
+    (work,) = _held_out([d], 0.1, "frames", rng)
+    out = np.unique(frames[~work])
+    assert out.size == 2 and not np.any(np.isin(frames[work], out))
+    with pytest.raises(InputError, match="frames"):
+        _held_out([MeasuredVoxels(counts=np.ones(4), q_sample=np.zeros((3, 4)), g_vector=[1, 0, 0], name="r0")],
+                  0.1, "frames", rng)
+    with pytest.raises(InputError, match="frames"):
+        MeasuredVoxels(counts=np.ones(4), q_sample=np.zeros((3, 4)), g_vector=[1, 0, 0], frames=[0, 1], name="r0")
+
+
 def test_the_stage_refuses_too_few_or_failed_reflections():
     from braggstrain.joint.stage import joint_stage
 
@@ -122,6 +178,7 @@ def test_the_stage_refuses_too_few_or_failed_reflections():
     ("[joint]\nenabled = true\nmax_iteration = 10\n", "did you mean 'max_iterations'"),
     ("[joint]\nenabled = true\nheld_out = 0.7\n", "joint.held_out"),
     ("[joint]\nenabled = \"yes\"\n", "joint.enabled"),
+    ("[joint]\nenabled = true\nheld_out_by = \"frame\"\n", "joint.held_out_by"),
 ])
 def test_pipeline_file_joint_table_is_checked(tmp_path, table, match):
     from conftest import small_toml

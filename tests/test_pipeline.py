@@ -506,7 +506,10 @@ def test_joint_stage_writes_both_tensors_and_its_likelihoods(simulated, referenc
     assert not np.array_equal(r.tensor.strain, r.tensor_independent.strain)
     j = r.joint
     assert list(j["labels"]) == r.names and j["iterations"] >= 1
-    assert np.all(np.asarray(j["nll_after"]) < np.asarray(j["nll_before"]))
+    # the fit lowers the likelihood of all reflections together (a descent
+    # method on L; one reflection's share may rise)
+    assert np.mean(j["nll_after"]) < np.mean(j["nll_before"])
+    assert j["nll_history"][j["best_iteration"]] < j["nll_history"][0]
     assert len(j["nll_history"]) == j["iterations"] + 1
     from braggstrain.report.html import write_report
 

@@ -54,8 +54,8 @@ from braggstrain.joint.model import (DEFAULT_EPS, FarField, MeasuredVoxels, fine
                                      subdivision)
 from braggstrain.strain.grid import Grid
 
-__all__ = ["JointError", "JointResult", "joint_refine", "MODEL_FLOOR", "DEFAULT_ITERATIONS",
-           "DEFAULT_HELD_OUT"]
+__all__ = ["JointError", "JointResult", "joint_refine", "upsample_displacement", "MODEL_FLOOR",
+           "DEFAULT_ITERATIONS", "DEFAULT_HELD_OUT", "HELD_OUT_BY"]
 
 MODEL_FLOOR = 1e-3
 """Counts added to every model intensity so that ln I stays finite where the
@@ -63,6 +63,7 @@ model vanishes (common practice, no source)."""
 
 DEFAULT_ITERATIONS = 150
 DEFAULT_HELD_OUT = 0.05
+HELD_OUT_BY = ("voxels", "frames")
 
 
 class JointError(InputError):
@@ -134,21 +135,25 @@ def fill_nearest(u):
 
 
 class _Objective:
-    """L and its gradient over x = [s (n), u·ḡ (3n), ln k (J)], s and u on
-    the support's voxels of the evaluation grid."""
+    """L and its gradient over x = [s (n), v (3n), ln k (J)] on the
+    support's n voxels of the evaluation grid: u = u_base + v/ḡ, the
+    correction v to the starting displacement in radians of the mean |G|
+    (variables of one scale for L-BFGS-B, and u_base keeps the start's cut
+    surfaces exactly)."""
 
-    def __init__(self, data, transforms, support, g_vectors, work, floor):
+    def __init__(self, data, transforms, support, g_vectors, work, floor, u_base):
         self.data, self.F, self.support = data, transforms, support
         self.G = g_vectors
         self.n = int(support.sum())
         self.gbar = float(np.mean(np.linalg.norm(g_vectors, axis=1)))
         self.work = work
         self.floor = float(floor)
+        self.u_base = u_base
         self.last = None
 
     def split(self, x):
         n = self.n
-        return x[:n], x[n:4 * n].reshape(3, n) / self.gbar, x[4 * n:]
+        return x[:n], self.u_base + x[n:4 * n].reshape(3, n) / self.gbar, x[4 * n:]
 
     def field(self, s, u, j):
         """ρ_j on the support (n,) and e^{−iφ_j}."""
@@ -192,6 +197,46 @@ class _Objective:
         return total, np.concatenate([gs, (gu / self.gbar).ravel(), gk])
 
 
+def upsample_displacement(u, g_vectors, factor, interpolate):
+    """u (3, grid) on the finer grid of ``factor``, wrap-safe across the cut
+    surfaces of u.
+
+    Interpolating u itself mixes the values on the two sides of a cut, where
+    u jumps by a lattice vector b that no exp(−i G_j·u) sees, and fills a
+    sheet of fine voxels with phases that belong to neither side. Instead
+    each fine voxel starts from its own coarse voxel's u (the fine voxels of
+    a coarse voxel are its block, :func:`~braggstrain.joint.model.fine_grid`)
+    and is corrected by the least-squares δu of the wrapped phase residuals
+    r_j = arg(P[e^{−i G_j·u}] · e^{+i G_j·u_block}) = −G_j·δu, P the
+    ``interpolate`` function (e.g. trilinear) applied to each reflection's
+    complex phase factor, which is continuous across a cut."""
+    m = tuple(int(v) for v in factor)
+    block = u
+    for ax, k in enumerate(m):
+        block = np.repeat(block, k, axis=ax + 1)
+    G = np.asarray(g_vectors, float)
+    res = np.stack([np.angle(interpolate(np.exp(-1j * np.tensordot(g, u, axes=1)))
+                             * np.exp(1j * np.tensordot(g, block, axes=1))) for g in G])
+    return block - np.tensordot(np.linalg.pinv(G), res, axes=1)
+
+
+def _held_out(data, fraction, by, rng):
+    """Per reflection, True where a voxel is fitted: ``fraction`` of the
+    voxels left out at random ("voxels"), or of the frames ("frames": every
+    voxel of a left-out frame; needs ``MeasuredVoxels.frames``)."""
+    out = []
+    for d in data:
+        if by == "voxels" or float(fraction) == 0:
+            out.append(rng.random(d.size) >= float(fraction))
+            continue
+        if d.frames is None:
+            raise InputError(f"held_out_by = 'frames': reflection '{d.name}' has no frame index per voxel")
+        f = np.unique(d.frames)
+        n_out = max(1, int(round(float(fraction) * f.size)))
+        out.append(~np.isin(d.frames, rng.choice(f, n_out, replace=False)))
+    return out
+
+
 def _block_mean(a, factor):
     """Means over blocks of ``factor`` voxels on the last three axes."""
     m = tuple(int(v) for v in factor)
@@ -225,7 +270,7 @@ def _check(data, grid, support, amplitude, displacement, g_labels):
 
 def joint_refine(data, grid, support, amplitude, displacement, *, reference_objects=None,
                  max_iterations=DEFAULT_ITERATIONS, held_out=DEFAULT_HELD_OUT, support_dilation=1, seed=0,
-                 subdivide=True, eps=DEFAULT_EPS, threads=1, progress=None):
+                 subdivide=True, held_out_by="voxels", eps=DEFAULT_EPS, threads=1, progress=None):
     """Fit one amplitude and one displacement field to all reflections' counts.
 
     Parameters
@@ -252,14 +297,19 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
     support_dilation : int
         Voxels by which the support is dilated before the fit (lets the
         edges move; s ≥ 0 may shrink them back).
+    held_out_by : "voxels" or "frames"
+        Leave out ``held_out`` of each reflection's voxels at random, or of
+        its frames (every voxel of a left-out frame; a stricter test, as a
+        frame is not interpolated by measured voxels of the same frame).
     seed : int
         Seed of the held-out choice.
     subdivide : bool
         Fit on a grid whose voxels split the common grid's
         (:func:`~braggstrain.joint.model.subdivision`) so that no measured q
-        folds back: the starting s and u are interpolated onto it
-        (trilinear) and the fitted objects, amplitude and displacement come
-        back onto the common grid as block means. False: the common grid
+        folds back: the starting s is interpolated onto it (trilinear), the
+        starting u by :func:`upsample_displacement` (wrap-safe across its
+        cut surfaces), and the fitted objects, amplitude and displacement
+        come back onto the common grid as block means. False: the common grid
         itself (data beyond its Nyquist band are then modelled folded).
     eps : float
         Precision of the non-uniform FFTs.
@@ -289,6 +339,8 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
     G, sup, amp, u0 = _check(data, grid, support, amplitude, displacement, labels)
     if not (0 <= float(held_out) < 0.5):
         raise InputError(f"held_out: expected a fraction in [0, 0.5), got {held_out!r}")
+    if held_out_by not in HELD_OUT_BY:
+        raise InputError(f"held_out_by: {held_out_by!r}; expected one of {list(HELD_OUT_BY)}")
     if int(max_iterations) < 1:
         raise InputError(f"max_iterations: expected a positive integer, got {max_iterations!r}")
     coarse_sup = np.asarray(support, bool)
@@ -317,13 +369,13 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
 
     sup_f = up(sup.astype(float)) >= 0.5
     s0 = up(s0)
-    u0 = np.stack([up(c) for c in u0])
+    u0 = upsample_displacement(u0, G, factor, up)
     rng = np.random.default_rng(seed)
-    work = [rng.random(d.size) >= float(held_out) for d in data]
+    work = _held_out(data, held_out, held_out_by, rng)
     transforms = [FarField(fine, d.q, eps=eps, threads=threads) for d in data]
-    obj = _Objective(data, transforms, sup_f, G, work, MODEL_FLOOR)
+    obj = _Objective(data, transforms, sup_f, G, work, MODEL_FLOOR, u0[:, sup_f])
     n = obj.n
-    x0 = np.concatenate([s0[sup_f], (u0[:, sup_f] * obj.gbar).ravel(), np.zeros(len(data))])
+    x0 = np.concatenate([s0[sup_f], np.zeros(3 * n), np.zeros(len(data))])
     # closed-form starting scales: k_j = Σ (n − b) / Σ |A|² (Poisson ML for one scale)
     for j, d in enumerate(data):
         a2 = obj.model(x0, j) - d.background - MODEL_FLOOR
@@ -390,6 +442,7 @@ def joint_refine(data, grid, support, amplitude, displacement, *, reference_obje
                        iterations=int(res.nit), best_iteration=int(best["it"]), message=str(res.message),
                        labels=labels, g_vectors=G, grid=grid,
                        options={"max_iterations": int(max_iterations), "held_out": float(held_out),
-                                "support_dilation": int(support_dilation), "seed": int(seed), "eps": float(eps),
+                                "held_out_by": str(held_out_by), "support_dilation": int(support_dilation),
+                                "seed": int(seed), "eps": float(eps),
                                 "subdivision": [int(v) for v in factor],
                                 "fitted_voxels": n_work, "held_out_voxels": n_free})

@@ -58,6 +58,9 @@ class MeasuredVoxels:
         Flat background added to the model, counts per voxel (0 when the
         prepared counts have it removed).
     name : str
+    frames : (P,) int, optional
+        Each voxel's frame (index along the prepared array's first axis,
+        the rocking frames), for leaving out whole frames.
     """
 
     counts: np.ndarray
@@ -65,6 +68,7 @@ class MeasuredVoxels:
     g_vector: np.ndarray
     background: float = 0.0
     name: str = ""
+    frames: np.ndarray = None
     meta: dict = field(default_factory=dict)
 
     def __post_init__(self):
@@ -78,6 +82,10 @@ class MeasuredVoxels:
             raise InputError(f"{who}: no measured voxel")
         if not (np.all(np.isfinite(self.counts)) and np.all(np.isfinite(self.q_sample))):
             raise InputError(f"{who}: counts and Q must be finite")
+        if self.frames is not None:
+            self.frames = np.asarray(self.frames).reshape(-1)
+            if self.frames.shape != self.counts.shape or not np.issubdtype(self.frames.dtype, np.integer):
+                raise InputError(f"{who}: frames: expected one integer frame index per voxel ({self.counts.size})")
         if np.any(self.counts < 0):
             raise InputError(f"{who}: counts: expected ≥ 0, found {self.counts.min():g}")
         if not (np.isfinite(self.background) and self.background >= 0):
@@ -128,6 +136,7 @@ def measured_voxels(prepared, g_vector, *, name="", q_map="exact"):
     keep = ~np.asarray(prepared.mask, bool) & np.all(np.isfinite(q), axis=0)
     counts = np.maximum(np.asarray(prepared.intensity, float)[keep], 0.0)
     return MeasuredVoxels(counts=counts, q_sample=q[:, keep], g_vector=g_vector, name=name,
+                          frames=np.nonzero(keep)[0],
                           meta={"source": prepared.source, "shape": list(prepared.shape)})
 
 
