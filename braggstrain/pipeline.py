@@ -889,7 +889,9 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
     tensor_independent, joint_summary, phase_objects, k_phases = None, None, registered, k_reg
     jo_opts = dict(opts["joint"])
     if jo_opts.pop("enabled", False):
-        k_joint = hash_inputs("joint", k_ten, [p["key"] for p in per_refl], jo_opts)
+        from braggstrain.joint.fit import FIT_VERSION
+
+        k_joint = hash_inputs("joint", k_ten, [p["key"] for p in per_refl], jo_opts, FIT_VERSION)
         with run.timed("joint"):
             jt = run.cached("joint", "all", k_joint)
             if jt is None:

@@ -55,7 +55,12 @@ from braggstrain.joint.model import (DEFAULT_EPS, FarField, MeasuredVoxels, fine
 from braggstrain.strain.grid import Grid
 
 __all__ = ["JointError", "JointResult", "joint_refine", "upsample_displacement", "MODEL_FLOOR",
-           "DEFAULT_ITERATIONS", "DEFAULT_HELD_OUT", "HELD_OUT_BY"]
+           "DEFAULT_ITERATIONS", "DEFAULT_HELD_OUT", "HELD_OUT_BY", "FIT_VERSION"]
+
+#: Version of the fit (its start, parameters and objective) in the joint stage's checkpoint key, so that a
+#: resumed run does not reuse a joint result of an older fit (2: the wrap-safe fine-grid start and u as a
+#: correction in radians; docs/joint.md)
+FIT_VERSION = 2
 
 MODEL_FLOOR = 1e-3
 """Counts added to every model intensity so that ln I stays finite where the
