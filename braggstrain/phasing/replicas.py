@@ -10,9 +10,10 @@ new counts I* ~ Poisson(λ) from the converged object's own model intensity λ
 one, scaled to the measured total), a fresh measurement of the fitted
 object, and is phased from the converged object with its support held fixed
 (RAAR, then ER, the closing stages of the default plan). Drawing from the
-measured counts instead, I* ~ Poisson(I), gives counts whose variance about
-the truth is twice the measurement's; measured on the demo crystal at 10⁴
-peak counts, it widened the strain σ by about a tenth more than the error
+measured counts instead, I* ~ Poisson(I), gives the same scatter where
+counts are many, but not where they are few: a pixel that counted 0 never
+varies, and one that counted 3 varies as if its mean were 3. Measured on the
+demo crystal at 10⁴ peak counts, that draw gave σ wider than the error
 (docs/strain.md, "Measured error-bar coverage"). The same iterations on the measured counts give
 the *baseline*; a replica's deviation from the baseline is then due to the
 counts alone, not to the few closing iterations themselves.
