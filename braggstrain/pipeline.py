@@ -815,7 +815,7 @@ def run_pipeline(cfg, out_dir, *, resume=False, scheduler=None, workers=None, pr
                     run.save("frame", name, k_frame, ft)
             so = tree_to_sample(ft)
             # -- spread: the kept runs and Poisson replicas on the sample-frame grid of `so`
-            k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter, REPLICA_RAAR_FRACTION)
+            k_spread = hash_inputs("spread", k_frame, n_rep, rep_iter, REPLICA_RAAR_FRACTION, tns.UNCERTAINTY_MODEL)
             with run.timed("spread"):
                 st = run.cached("spread", name, k_spread)
                 if st is None:

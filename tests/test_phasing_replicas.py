@@ -54,6 +54,28 @@ def test_replicas_are_reproducible_from_the_seed():
     assert not np.array_equal(a.replicas[0], a.replicas[1])
 
 
+def test_replica_counts_come_from_the_model_not_from_the_measured_counts():
+    # Parametric bootstrap (Efron & Tibshirani, An Introduction to the
+    # Bootstrap, 1993, §6.5, from memory): each replica is a new measurement
+    # of the fitted object, so two measurements with the same total give the
+    # same replicas (same seed), while their baselines, phased from the
+    # measured counts themselves, differ.
+    obj = crystal(N)
+    scale = 1e4 / clean_intensity(N).max()
+    clean = clean_intensity(N) * scale
+    obj = obj * np.float32(np.sqrt(scale))
+    support = np.abs(obj) > 0.1 * np.abs(obj).max()
+    rng = np.random.default_rng(4)
+    a_counts = rng.poisson(clean).astype(np.float32)
+    b_counts = rng.poisson(clean).astype(np.float32)
+    b_counts[N // 2, N // 2, N // 2] += a_counts.sum() - b_counts.sum()  # same total, whole counts
+    assert a_counts.sum() == b_counts.sum() and not np.array_equal(a_counts, b_counts)
+    a = poisson_replicas(a_counts, None, obj, support, replicas=2, iterations=6, seed=9)
+    b = poisson_replicas(b_counts, None, obj, support, replicas=2, iterations=6, seed=9)
+    np.testing.assert_allclose(a.replicas, b.replicas, atol=1e-6 * np.abs(a.replicas).max())
+    assert not np.allclose(a.baseline, b.baseline)
+
+
 def test_bad_arguments_name_the_argument():
     obj = crystal(N)
     support = np.abs(obj) > 0

@@ -175,6 +175,11 @@ def test_trusted_for_gradients_erodes_and_thresholds(grid):
     assert not t[low].any()
     assert not (t & ~ndi.binary_erosion(support)).any()
     assert t[N // 2, N // 2, N // 2]
+    # a bright voxel whose central difference reads a dim neighbour is not trusted; one voxel further is
+    c = N // 2
+    i0 = int(np.argmax(low[:, c, c]))
+    assert support[i0 - 2:i0, c, c].all() and not low[i0 - 1, c, c]
+    assert not t[i0 - 1, c, c] and t[i0 - 2, c, c]
     # an amplitude array gives the same; threshold 0 leaves the eroded support
     np.testing.assert_array_equal(fields.trusted_for_gradients(amp, support, amplitude_threshold=0.3), t)
     np.testing.assert_array_equal(fields.trusted_for_gradients(amp, support, amplitude_threshold=0.0),

@@ -123,8 +123,13 @@ def trusted_for_gradients(obj, support=None, amplitude_threshold=GRADIENT_AMPLIT
 
     The support eroded by ``erosion`` voxels (face-connected structuring
     element, so every remaining voxel has both neighbours along every axis
-    inside the support) and with an amplitude of at least
+    inside the support), where the voxel and the six face neighbours that
+    its central differences read all have an amplitude of at least
     ``amplitude_threshold`` times the median amplitude inside the support.
+    A difference that reads a dim voxel takes that voxel's phase, which at
+    the crystal's edge is pulled towards its neighbours' by the finite
+    resolution; measured on the demo crystal, such voxels carried the
+    largest strain errors (docs/strain.md, "Measured error-bar coverage").
     This is the region of strain statistics and of the tensor's ``trusted``
     mask; :func:`trusted_for_windings` is the wider region of the phase
     windings around dislocation cores.
@@ -153,7 +158,7 @@ def trusted_for_gradients(obj, support=None, amplitude_threshold=GRADIENT_AMPLIT
     if erosion > 0:
         mask = ndi.binary_erosion(support, iterations=int(erosion))
     bright, _ = _bright(amp, support, amplitude_threshold)
-    return mask & bright
+    return mask & ndi.binary_erosion(bright)
 
 
 def trusted_for_windings(obj, support, amplitude_threshold=0.1, dilation=2):

@@ -633,8 +633,10 @@ def strain_tensor(objects, g_vectors, voxel_size, support=None, weights=None, *,
 #: version of the error-bar model; part of the tensor stage's checkpoint key, so that a resumed run
 #: recomputes σ when the model changes (4: misfit variance per gradient direction; replicas about their
 #: mean; the reconstruction's offset from the replicas' baseline beyond the runs' spread; 5: that offset
-#: beyond the runs' and the replicas' spreads; docs/strain.md)
-UNCERTAINTY_MODEL = 5
+#: beyond the runs' and the replicas' spreads; 6: replicas drawn from the object's model intensity, and
+#: trusted voxels whose central differences read only bright voxels; docs/strain.md). Also part of the
+#: spread stage's key, so that the replicas are drawn again when the model changes.
+UNCERTAINTY_MODEL = 6
 
 # the (p, q) of each rotation ω = (D_pq − D_qp)/2 (strain components: STRAIN_PAIRS)
 _ROT = ((2, 1), (0, 2), (1, 0))
