@@ -480,7 +480,6 @@ def test_bad_worker_counts_exit_2(sim, tmp_path, capsys, n):
     assert not (tmp_path / "out").exists()
 
 
-
 def test_one_worker_runs_in_process_without_any_pool(monkeypatch):
     """`--workers 1` means no worker processes: the ensemble must not fall
     back to its own default pool (behaviour of the tool, no outside source)."""

@@ -26,10 +26,9 @@ propagates through the solve (docs/strain.md, "Error bars"):
 
       f = max(0, 1 − ⟨tr C_runs/K + tr C_rep⟩ / ⟨|δ|²⟩),   C += f δδᵀ
 
-  (C_runs/K is left out when fewer than two runs were kept).
-
   with ⟨·⟩ the Gaussian-weighted mean over the voxels around
-  (:data:`POOL_SIGMA` voxels, :func:`local_mean`). An offset added in
+  (:data:`POOL_SIGMA` voxels, :func:`local_mean`); C_runs/K is left out
+  when fewer than two runs were kept. An offset added in
   quadrature is an uncorrected systematic effect (JCGM 100:2008, F.2.4.5,
   from memory).
 """
